@@ -1,0 +1,106 @@
+"""Site configuration: one TOML file drives a run. Paths are relative to the file."""
+
+from __future__ import annotations
+
+import hashlib
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from pipeline.errors import ConfigError
+from pipeline.profile import Profile, load_profile
+
+
+@dataclass(frozen=True)
+class InputSource:
+    path: Path  # a file or a folder
+    profile: Profile
+    pattern: str = "*"
+
+    def files(self) -> list[Path]:
+        if self.path.is_file():
+            return [self.path]
+        return sorted(p for p in self.path.glob(self.pattern) if p.is_file() and not p.name.startswith("."))
+
+
+@dataclass(frozen=True)
+class SiteConfig:
+    path: Path | None
+    site_name: str
+    store_path: Path
+    output_folder: Path
+    key_file: Path | None
+    inputs: tuple[InputSource, ...]
+    altitude_m: float | None = None
+    barometric_pressure_mmhg: float | None = None
+    keep_patient_id: bool = True
+    small_cell_threshold: int = 11
+    thresholds: dict[str, Any] = field(default_factory=dict)
+    sha256: str = ""
+
+
+def _resolve(base: Path, value: object, what: str) -> Path:
+    if not isinstance(value, str) or not value:
+        raise ConfigError(f"{what} must be a path string")
+    path = Path(value).expanduser()
+    return path if path.is_absolute() else (base / path)
+
+
+def load_config(path: Path | str, *, store: Path | None = None, output: Path | None = None) -> SiteConfig:
+    """Read the site configuration; ``store``/``output`` override it (command-line options)."""
+    path = Path(path)
+    try:
+        data = path.read_bytes()
+        raw = tomllib.loads(data.decode("utf-8"))
+    except FileNotFoundError:
+        raise ConfigError(f"{path}: site configuration not found") from None
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as err:
+        raise ConfigError(f"{path}: not valid TOML ({err})") from None
+    base = path.resolve().parent
+    site = raw.get("site", {})
+    store_section = raw.get("store", {})
+    privacy = raw.get("privacy", {})
+    inputs_raw = raw.get("inputs", [])
+    if not isinstance(inputs_raw, list) or not inputs_raw:
+        raise ConfigError(f"{path}: needs at least one [[inputs]] entry with path and profile")
+    profiles: dict[Path, Profile] = {}
+    inputs = []
+    for number, item in enumerate(inputs_raw, start=1):
+        if "path" not in item or "profile" not in item:
+            raise ConfigError(f"{path}: [[inputs]] entry {number} needs both path and profile")
+        profile_path = _resolve(base, item["profile"], f"[[inputs]] {number} profile")
+        if profile_path not in profiles:
+            profiles[profile_path] = load_profile(profile_path)
+        inputs.append(
+            InputSource(
+                path=_resolve(base, item["path"], f"[[inputs]] {number} path"),
+                profile=profiles[profile_path],
+                pattern=str(item.get("pattern", "*")),
+            )
+        )
+    altitude = site.get("altitude_m")
+    pressure = site.get("barometric_pressure_mmhg")
+    for name, value in (("altitude_m", altitude), ("barometric_pressure_mmhg", pressure)):
+        if value is not None and not isinstance(value, (int, float)):
+            raise ConfigError(f"{path}: [site] {name} must be a number")
+    if pressure is not None and not 300 <= pressure <= 800:
+        raise ConfigError(f"{path}: [site] barometric_pressure_mmhg {pressure} is outside 300-800 mmHg")
+    threshold = privacy.get("small_cell_threshold", 11)
+    if not isinstance(threshold, int) or threshold < 1:
+        raise ConfigError(f"{path}: [privacy] small_cell_threshold must be a positive integer")
+    key_file = privacy.get("key_file")
+    return SiteConfig(
+        path=path,
+        site_name=str(site.get("name", "unnamed site")),
+        store_path=store or _resolve(base, store_section.get("path", "store/abg_audit.duckdb"), "[store] path"),
+        output_folder=output or _resolve(base, raw.get("output", {}).get("folder", "out"), "[output] folder"),
+        key_file=_resolve(base, key_file, "[privacy] key_file") if key_file else None,
+        inputs=tuple(inputs),
+        altitude_m=float(altitude) if altitude is not None else None,
+        barometric_pressure_mmhg=float(pressure) if pressure is not None else None,
+        keep_patient_id=bool(store_section.get("keep_patient_id", True)),
+        small_cell_threshold=threshold,
+        thresholds=dict(raw.get("thresholds", {})),
+        sha256=hashlib.sha256(data).hexdigest(),
+    )

@@ -1,0 +1,63 @@
+"""Keyed pseudonyms for patient identifiers.
+
+``HMAC-SHA256(key, identifier)``, hex, truncated to 32 characters (128 bits). A keyed
+hash, unlike a plain hash, cannot be reversed by hashing every possible MRN; the key is
+kept outside the store (a file or an environment variable), so the store alone does not
+re-identify anyone. Pseudonyms made with different keys are never comparable.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import hmac
+import os
+import secrets
+from pathlib import Path
+
+import polars as pl
+
+from pipeline.errors import ConfigError
+
+KEY_ENV = "ABG_AUDIT_PSEUDONYM_KEY"
+PSEUDONYM_CHARS = 32
+
+
+def load_key(key_file: Path | None, *, create: bool = False) -> bytes:
+    """The secret key: from ``$ABG_AUDIT_PSEUDONYM_KEY``, else the key file.
+
+    ``create`` makes a new random key file (owner-only) when none exists; the demo uses it.
+    """
+    env = os.environ.get(KEY_ENV)
+    if env:
+        return env.encode("utf-8")
+    if key_file is None:
+        raise ConfigError(f"no pseudonym key: set {KEY_ENV} or [privacy] key_file in the site configuration")
+    if not key_file.exists():
+        if not create:
+            raise ConfigError(f"pseudonym key file {key_file} does not exist")
+        key_file.parent.mkdir(parents=True, exist_ok=True, mode=0o700)
+        fd = os.open(key_file, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
+        with os.fdopen(fd, "w") as handle:
+            handle.write(secrets.token_hex(32))
+    mode = key_file.stat().st_mode
+    if mode & 0o077:
+        raise ConfigError(f"pseudonym key file {key_file} is readable by others; run chmod 600 on it")
+    key = key_file.read_text(encoding="utf-8").strip()
+    if len(key) < 16:
+        raise ConfigError(f"pseudonym key file {key_file} holds fewer than 16 characters")
+    return key.encode("utf-8")
+
+
+def pseudonym(key: bytes, identifier: str) -> str:
+    return hmac.new(key, identifier.strip().encode("utf-8"), hashlib.sha256).hexdigest()[:PSEUDONYM_CHARS]
+
+
+def add_patient_key(frame: pl.DataFrame, key: bytes, column: str = "patient_id") -> pl.DataFrame:
+    """Add ``patient_key``; each distinct identifier is hashed once."""
+    if column not in frame.columns:
+        return frame.with_columns(pl.lit(None, dtype=pl.String).alias("patient_key"))
+    distinct = frame.select(pl.col(column).drop_nulls().unique()).to_series().to_list()
+    mapping = {ident: pseudonym(key, ident) for ident in distinct}
+    return frame.with_columns(
+        pl.col(column).replace_strict(mapping, default=None, return_dtype=pl.String).alias("patient_key")
+    )

@@ -1,0 +1,62 @@
+"""The embedded DuckDB store: opening it safely and creating its tables."""
+
+from __future__ import annotations
+
+import os
+import re
+from pathlib import Path
+
+import duckdb
+import polars as pl
+
+from pipeline.errors import StorageError, StoreBusyError
+from pipeline.schema import FIELDS
+from pipeline.sql_files import SQL_DIR, install_macros
+
+_LOCK_PATTERN = re.compile(r"Could not set lock on file .*?\(PID (\d+)\)", re.DOTALL)
+
+
+def open_store(path: Path, *, read_only: bool = False) -> duckdb.DuckDBPyConnection:
+    """Open (creating if needed) the store, with UTC sessions, offline settings and macros."""
+    path = Path(path)
+    if not read_only:
+        try:
+            path.parent.mkdir(parents=True, exist_ok=True, mode=0o700)
+        except OSError as err:
+            raise StorageError(f"cannot create the store folder {path.parent}: {err.strerror}") from None
+    elif not path.exists():
+        raise StorageError(f"no store at {path}; run the pipeline first")
+    old_umask = os.umask(0o077)  # the store, its WAL and spill files hold identifiers: owner only
+    try:
+        con = duckdb.connect(str(path), read_only=read_only)
+    except duckdb.IOException as err:
+        match = _LOCK_PATTERN.search(str(err))
+        if match:
+            raise StoreBusyError(
+                f"the store {path.name} is in use by another process (pid {match.group(1)}); "
+                "close it (notebooks and dashboards hold the file too) and retry"
+            ) from None
+        raise StorageError(f"cannot open the store {path}: {err}") from None
+    finally:
+        os.umask(old_umask)
+    con.execute("set TimeZone = 'UTC'")
+    con.execute("set autoinstall_known_extensions = false")
+    con.execute("set autoload_known_extensions = false")
+    install_macros(con)
+    if not read_only:
+        for ddl in sorted((SQL_DIR / "schema").glob("*.sql")):
+            con.execute(ddl.read_text(encoding="utf-8"))
+    _install_field_limits(con)
+    return con
+
+
+def _install_field_limits(con: duckdb.DuckDBPyConnection) -> None:
+    """Hard limits from the canonical catalogue, as a temp table the ingest SQL joins."""
+    limits = pl.DataFrame(
+        [(f.name, f.hard_min, f.hard_max) for f in FIELDS if f.hard_min is not None],
+        schema={"field": pl.String, "hard_min": pl.Float64, "hard_max": pl.Float64},
+        orient="row",
+    )
+    con.register("field_limits_frame", limits)
+    con.execute("create or replace temp table field_limits as select * from field_limits_frame")
+    con.unregister("field_limits_frame")
