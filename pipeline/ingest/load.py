@@ -70,6 +70,9 @@ class FileOutcome:
 
     @property
     def balanced(self) -> bool:
+        """Rows in = loaded + quarantined + duplicates + superseded; a rejected file takes in nothing."""
+        if self.outcome != "loaded":
+            return self.rows_loaded == self.rows_quarantined == self.rows_duplicate == 0
         parts = self.rows_loaded + self.rows_quarantined + self.rows_duplicate + self.rows_superseded_in_file
         return self.rows_in == parts
 
@@ -87,10 +90,12 @@ def _stage_frame(values: pl.DataFrame, key: bytes, keep_patient_id: bool) -> pl.
     frame = add_patient_key(values, key)
     if not keep_patient_id and "patient_id" in frame.columns:
         frame = frame.with_columns(pl.lit(None, dtype=pl.String).alias("patient_id"))
-    missing = [
-        pl.lit(None, dtype=_POLARS_TYPES[f.kind]).alias(f.name) for f in FIELDS if f.name not in frame.columns
+    missing = [pl.lit(None, dtype=_POLARS_TYPES[f.kind]).alias(f.name) for f in FIELDS if f.name not in frame.columns]
+    units = [
+        pl.lit(None, dtype=pl.String).alias(f"{n}{UNIT_SUFFIX}")
+        for n in UNIT_FIELDS
+        if f"{n}{UNIT_SUFFIX}" not in frame.columns
     ]
-    units = [pl.lit(None, dtype=pl.String).alias(f"{n}{UNIT_SUFFIX}") for n in UNIT_FIELDS if f"{n}{UNIT_SUFFIX}" not in frame.columns]
     return frame.with_columns(missing + units)
 
 
@@ -108,9 +113,11 @@ def _check_units(con: duckdb.DuckDBPyConnection, path: Path, profile: Profile) -
         for alternative in UNIT_CHOICES[family or ""]:
             if alternative == declared or raw_median is None or raw_median[0] is None:
                 continue
-            converted = con.execute(f"select {_CONVERTER[field_name]}(?, ?)", [raw_median[0], alternative]).fetchall()[0]
+            converted = con.execute(f"select {_CONVERTER[field_name]}(?, ?)", [raw_median[0], alternative]).fetchall()[
+                0
+            ]
             if converted and converted[0] is not None and low <= converted[0] <= high:
-                hint = f"; the values look like {alternative}: set [units] {field_name} = \"{alternative}\""
+                hint = f'; the values look like {alternative}: set [units] {field_name} = "{alternative}"'
                 break
         raise FileRejected(
             "UNIT_MISMATCH",
@@ -179,9 +186,18 @@ def ingest_file(
         con.execute(
             "insert into ingested_files values (?, ?, ?, ?, ?, now()::timestamp, ?, ?, ?, ?, ?, ?, ?)",
             [
-                result.sha256, str(path), profile.name, result.size_bytes, run_id, result.rows_in,
-                result.rows_loaded, result.rows_quarantined, result.rows_duplicate,
-                result.rows_superseded_in_file, result.corrections, "; ".join(result.notes),
+                result.sha256,
+                str(path),
+                profile.name,
+                result.size_bytes,
+                run_id,
+                result.rows_in,
+                result.rows_loaded,
+                result.rows_quarantined,
+                result.rows_duplicate,
+                result.rows_superseded_in_file,
+                result.corrections,
+                "; ".join(result.notes),
             ],
         )
         con.execute("commit")
@@ -211,13 +227,13 @@ def _quarantine_rows(
 ) -> None:
     """Quarantine rows with the original cells as JSON, from the classified stage."""
     bad = con.sql(
-        "select source_row, sample_id, reason_code, failed_columns from stage_checked "
-        "where outcome = 'quarantined'"
+        "select source_row, sample_id, reason_code, failed_columns from stage_checked where outcome = 'quarantined'"
     ).pl()
     header = [c for c in cells.columns if c != ROW]
     if bad.height:
         original = cells.join(bad.select(pl.col("source_row").alias(ROW)), on=ROW, how="semi").select(
-            pl.col(ROW), pl.struct([pl.col(h).cast(pl.String) for h in header]).struct.json_encode().alias("original_text")
+            pl.col(ROW),
+            pl.struct([pl.col(h).cast(pl.String) for h in header]).struct.json_encode().alias("original_text"),
         )
         rows = bad.join(original, left_on="source_row", right_on=ROW, how="left")
     else:
@@ -231,8 +247,13 @@ def _quarantine_rows(
                 "failed_columns": [None] * len(malformed),
                 "original_text": [json.dumps(m[2]) for m in malformed],
             },
-            schema={"source_row": pl.Int64, "sample_id": pl.String, "reason_code": pl.String,
-                    "failed_columns": pl.String, "original_text": pl.String},
+            schema={
+                "source_row": pl.Int64,
+                "sample_id": pl.String,
+                "reason_code": pl.String,
+                "failed_columns": pl.String,
+                "original_text": pl.String,
+            },
         )
         rows = pl.concat([rows.cast(extra.schema), extra])  # type: ignore[arg-type]
     if rows.height == 0:
@@ -247,4 +268,4 @@ def _quarantine_rows(
         con.unregister("quarantine_frame")
 
 
-__all__ = ["FileOutcome", "ingest_file", "file_sha256", "FAILED", "STATUS"]
+__all__ = ["FAILED", "STATUS", "FileOutcome", "file_sha256", "ingest_file"]

@@ -283,8 +283,14 @@ def parse_export(raw: RawExport, profile: Profile) -> ParsedExport:
     typed = typed.with_columns(
         pl.coalesce([pl.col(c) for c in fail_columns] + [e for e in required_missing]).alias(REASON),
         pl.concat_str(
-            [pl.when(pl.col(c).is_not_null()).then(pl.lit(c.removesuffix("__fail") + ":") + pl.col(c)) for c in fail_columns]
-            + [pl.when(e.is_not_null()).then(pl.lit(f + ":MISSING_REQUIRED")) for f, e in zip(REQUIRED_FIELDS, required_missing, strict=True)],
+            [
+                pl.when(pl.col(c).is_not_null()).then(pl.lit(c.removesuffix("__fail") + ":") + pl.col(c))
+                for c in fail_columns
+            ]
+            + [
+                pl.when(e.is_not_null()).then(pl.lit(f + ":MISSING_REQUIRED"))
+                for f, e in zip(REQUIRED_FIELDS, required_missing, strict=True)
+            ],
             separator="; ",
             ignore_nulls=True,
         ).alias(FAILED),
@@ -293,8 +299,12 @@ def parse_export(raw: RawExport, profile: Profile) -> ParsedExport:
 
     notes = _value_notes(raw, typed, number_fields, mapped)
     drop = fail_columns + [f"{f}__cmp" for f in number_fields] + [f"{f}__status" for f in number_fields]
-    values = typed.drop(drop).with_columns(pl.when(pl.col(FAILED) == "").then(None).otherwise(pl.col(FAILED)).alias(FAILED))
-    return ParsedExport(values=values, notes=notes, mapped=mapped, missing_optional=missing_optional, extra_columns=extra)
+    values = typed.drop(drop).with_columns(
+        pl.when(pl.col(FAILED) == "").then(None).otherwise(pl.col(FAILED)).alias(FAILED)
+    )
+    return ParsedExport(
+        values=values, notes=notes, mapped=mapped, missing_optional=missing_optional, extra_columns=extra
+    )
 
 
 def _reject_systematic_failures(
@@ -347,6 +357,12 @@ def _value_notes(raw: RawExport, typed: pl.DataFrame, number_fields: list[str], 
             parts.append(part.join(original, on=ROW, how="left"))
     if not parts:
         return pl.DataFrame(
-            schema={ROW: pl.Int64, "field": pl.String, "comparator": pl.String, "result_status": pl.String, "original_text": pl.String}
+            schema={
+                ROW: pl.Int64,
+                "field": pl.String,
+                "comparator": pl.String,
+                "result_status": pl.String,
+                "original_text": pl.String,
+            }
         )
     return pl.concat(parts)

@@ -52,7 +52,7 @@ def _decode(path: Path, data: bytes, profile: Profile) -> tuple[str | None, list
             raise FileRejected(
                 "ENCODING_INVALID",
                 f"{path.name}: line {line} is not valid UTF-8 (byte 0x{data[err.start]:02x}); "
-                "the profile declares utf-8 - if the export is Latin-1 set encoding = \"latin-1\"",
+                'the profile declares utf-8 - if the export is Latin-1 set encoding = "latin-1"',
             ) from None
         return None, notes
     try:
@@ -150,8 +150,7 @@ def read_export(path: Path, profile: Profile) -> RawExport:
         hint = f" but the header contains {others[0]!r}" if others else ""
         raise FileRejected(
             "DIALECT_MISMATCH",
-            f"{path.name}: header has a single column: the profile declares delimiter "
-            f"{profile.delimiter!r}{hint}",
+            f"{path.name}: header has a single column: the profile declares delimiter {profile.delimiter!r}{hint}",
         )
 
     ends_with_newline = data.endswith((b"\n", b"\r"))
@@ -190,7 +189,7 @@ def read_export(path: Path, profile: Profile) -> RawExport:
 def _read_parquet(path: Path) -> RawExport:
     try:
         frame = pl.read_parquet(path)
-    except Exception as err:  # noqa: BLE001 - any parquet decoding failure means the file is unusable
+    except Exception as err:
         detail = type(err).__name__
         raise FileRejected("PARQUET_CORRUPT", f"{path.name}: not a readable Parquet file ({detail})") from None
     header = frame.columns

@@ -1,0 +1,232 @@
+"""Command line: ``abg-audit``. Thin commands over the stage functions.
+
+Only this module turns ``PipelineError`` into a one-line message and an exit code.
+"""
+
+from __future__ import annotations
+
+import functools
+import sys
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
+
+import click
+
+from pipeline import __version__
+from pipeline.errors import PipelineError
+
+EXIT_CODES_HELP = """\b
+Exit codes (BSD sysexits):
+  0   every file loaded or already loaded
+  65  data error: at least one file was rejected (the others loaded)
+  66  no input: an input file or folder does not exist
+  70  internal error (a bug; please report it with the log)
+  74  I/O error: the store or output cannot be written
+  75  temporary failure: another run or program holds the store; retry later
+  78  configuration error: site configuration, profile or pseudonym key"""
+
+
+def handle_errors(func: Callable[..., Any]) -> Callable[..., Any]:
+    """Expected problems become one line on stderr and their exit code; no traceback."""
+
+    @functools.wraps(func)
+    def wrapper(*args: Any, **kwargs: Any) -> Any:
+        try:
+            return func(*args, **kwargs)
+        except PipelineError as err:
+            click.echo(f"error: {err}", err=True)
+            sys.exit(err.exit_code)
+
+    return wrapper
+
+
+config_option = click.option(
+    "--config",
+    "config_path",
+    type=click.Path(dir_okay=False, path_type=Path),
+    required=True,
+    help="Site configuration file (TOML): inputs with their profiles, store, output folder.",
+)
+store_option = click.option(
+    "--store", type=click.Path(dir_okay=False, path_type=Path), help="DuckDB store file (overrides the configuration)."
+)
+output_option = click.option(
+    "--output", type=click.Path(file_okay=False, path_type=Path), help="Output folder (overrides the configuration)."
+)
+log_format_option = click.option(
+    "--log-format", type=click.Choice(["text", "json"]), default="text", show_default=True, help="Log line format."
+)
+
+
+@click.group(context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 100})
+@click.version_option(__version__, prog_name="abg-audit")
+def main() -> None:
+    """Audit arterial blood gas records: load exports into a DuckDB store and check them.
+
+    An audit aid for laboratory and quality teams, not a diagnostic device: thresholds
+    follow local policy and licensed clinical judgement.
+    """
+
+
+@main.command(epilog=EXIT_CODES_HELP)
+@config_option
+@store_option
+@output_option
+@log_format_option
+@handle_errors
+def run(config_path: Path, store: Path | None, output: Path | None, log_format: str) -> None:
+    """Load new export files and run every stage (the nightly job).
+
+    Files already loaded (same content hash) are skipped, so re-running is safe.
+
+    \b
+    Example:
+      abg-audit run --config site.toml
+    """
+    from pipeline.config import load_config
+    from pipeline.log import Log
+    from pipeline.run import run_pipeline
+    from pipeline.summary import print_run_summary
+
+    config = load_config(config_path, store=store, output=output)
+    result = run_pipeline(config, Log(log_format))
+    print_run_summary(result, config)
+    sys.exit(result.exit_code)
+
+
+@main.command(epilog=EXIT_CODES_HELP)
+@click.option(
+    "--rows",
+    type=click.IntRange(100, 10_000_000),
+    default=20_000,
+    show_default=True,
+    help="Number of invented blood gas samples to generate.",
+)
+@click.option("--seed", type=int, default=7, show_default=True, help="Random seed (same seed, same data).")
+@click.option(
+    "--workdir",
+    type=click.Path(file_okay=False, path_type=Path),
+    default=Path("demo"),
+    show_default=True,
+    help="Folder for the demo exports, store and outputs.",
+)
+@log_format_option
+@handle_errors
+def demo(rows: int, seed: int, workdir: Path, log_format: str) -> None:
+    """Generate invented demo exports and run the whole pipeline on them.
+
+    The data describes an invented hospital; no real patient is in it. A pseudonym key
+    for the demo is created in the work folder.
+
+    \b
+    Example:
+      abg-audit demo --rows 20000
+    """
+    from pipeline.config import load_config
+    from pipeline.demo import prepare_demo
+    from pipeline.log import Log
+    from pipeline.run import run_pipeline
+    from pipeline.summary import print_run_summary
+
+    log = Log(log_format)
+    config_path = prepare_demo(workdir, rows=rows, seed=seed, log=log)
+    config = load_config(config_path)
+    result = run_pipeline(config, log, command="demo", create_key=True)
+    print_run_summary(result, config)
+    sys.exit(result.exit_code)
+
+
+@main.command()
+@click.option(
+    "--config",
+    "config_path",
+    type=click.Path(dir_okay=False, path_type=Path),
+    help="Site configuration naming the store.",
+)
+@store_option
+@click.option("--limit", type=click.IntRange(1, 1000), default=10, show_default=True, help="How many runs to list.")
+@handle_errors
+def runs(config_path: Path | None, store: Path | None, limit: int) -> None:
+    """List recent runs with their outcome and counts, newest first.
+
+    \b
+    Example:
+      abg-audit runs --config site.toml --limit 5
+    """
+    from pipeline.config import load_config
+    from pipeline.errors import ConfigError
+    from pipeline.store import open_store
+
+    if store is None:
+        if config_path is None:
+            raise ConfigError("give --config or --store")
+        store = load_config(config_path).store_path
+    con = open_store(store, read_only=True)
+    rows = con.execute(
+        "select run_id, command, started_at, outcome, exit_code, summary from runs order by started_at desc limit ?",
+        [limit],
+    ).fetchall()
+    con.close()
+    if not rows:
+        click.echo("no runs recorded yet")
+    for run_id, command, started, outcome, code, summary in rows:
+        click.echo(f"{run_id}  {command:<5} {started:%Y-%m-%d %H:%M}  {outcome} (exit {code})\n    {summary}")
+
+
+@main.command("check-profile")
+@click.argument("profile_path", type=click.Path(dir_okay=False, path_type=Path))
+@click.argument("export_files", nargs=-1, type=click.Path(dir_okay=False, path_type=Path))
+@handle_errors
+def check_profile(profile_path: Path, export_files: tuple[Path, ...]) -> None:
+    """Check a mapping profile, and optionally try it on export files without loading them.
+
+    For each file, prints whether it would be rejected and how many rows would parse or
+    be quarantined (before unit conversion and duplicate checks). Nothing is written.
+
+    \b
+    Example:
+      abg-audit check-profile profiles/demo_us_style.toml exports/2026-11-30.csv
+    """
+    from pipeline.errors import FileRejected
+    from pipeline.ingest.parse import REASON, parse_export
+    from pipeline.ingest.read import read_export
+    from pipeline.profile import load_profile
+
+    profile = load_profile(profile_path)
+    click.echo(
+        f"profile {profile.name}: {len(profile.columns)} columns mapped, format {profile.format}, "
+        f"delimiter {profile.delimiter!r}, decimal mark {profile.decimal_mark!r}, "
+        f"encoding {profile.encoding}, time zone {profile.timezone}"
+    )
+    failed = False
+    for path in export_files:
+        try:
+            raw = read_export(path, profile)
+            parsed = parse_export(raw, profile)
+        except FileRejected as err:
+            click.echo(f"  {path.name}: would be REJECTED ({err.reason_code}): {err}")
+            failed = True
+            continue
+        bad = parsed.values.filter(parsed.values[REASON].is_not_null()).height + len(raw.malformed)
+        total = raw.cells.height + len(raw.malformed)
+        click.echo(
+            f"  {path.name}: {total} rows, {total - bad} parse, {bad} would be quarantined"
+            + (f"; absent optional columns: {', '.join(parsed.missing_optional)}" if parsed.missing_optional else "")
+        )
+    sys.exit(65 if failed else 0)
+
+
+@main.command()
+def fields() -> None:
+    """Print the canonical record: every field, its type and canonical unit."""
+    from pipeline.schema import FIELDS
+
+    for f in FIELDS:
+        unit = f.canonical_unit or ""
+        flag = " (required)" if f.required else ""
+        click.echo(f"{f.name:<28} {f.kind.value:<9} {unit:<8} {f.description}{flag}")
+
+
+if __name__ == "__main__":
+    main()
