@@ -22,10 +22,13 @@ import polars as pl
 
 from pipeline import __version__
 from pipeline.config import SiteConfig
+from pipeline.derive import derive
 from pipeline.errors import NoInputError, StoreBusyError
 from pipeline.ingest.load import FileOutcome, ingest_file
 from pipeline.log import Log
 from pipeline.pseudonym import load_key
+from pipeline.rules import Catalogue, evaluate_rules, load_catalogue
+from pipeline.sql_files import run_sql
 from pipeline.store import open_store
 
 EXIT_OK = 0
@@ -36,6 +39,8 @@ EXIT_DATA_ERROR = 65  # some file was rejected; the others loaded
 class RunResult:
     run_id: str
     files: list[FileOutcome] = field(default_factory=list)
+    scope_size: int = 0
+    flag_counts: dict[str, int] = field(default_factory=dict)
     missing_inputs: list[str] = field(default_factory=list)
     exit_code: int = EXIT_OK
 
@@ -135,9 +140,35 @@ def _record_file_event(con: duckdb.DuckDBPyConnection, run_id: str, f: FileOutco
     )
 
 
-def run_pipeline(config: SiteConfig, log: Log, *, command: str = "run", create_key: bool = False) -> RunResult:
+def analyse(
+    con: duckdb.DuckDBPyConnection,
+    config: SiteConfig,
+    catalogue: Catalogue,
+    result: RunResult,
+    log: Log,
+    *,
+    rebuild: bool,
+) -> None:
+    """Derive metrics and evaluate rules for the samples this run touched, in one transaction."""
+    con.execute("begin transaction")
+    try:
+        run_sql(con, "derive/00_scope.sql", run_id=result.run_id, rebuild=rebuild)
+        result.scope_size = con.execute("select count(*) from scope_samples").fetchall()[0][0]
+        log.info(f"deriving metrics and checking rules for {result.scope_size} samples", scope=result.scope_size)
+        derive(con, catalogue, config)
+        result.flag_counts = evaluate_rules(con, catalogue, result.run_id)
+        con.execute("commit")
+    except BaseException:
+        con.execute("rollback")
+        raise
+
+
+def run_pipeline(
+    config: SiteConfig, log: Log, *, command: str = "run", create_key: bool = False, rebuild: bool = False
+) -> RunResult:
     """Load every new input file, then run the later stages; returns counts and the exit code."""
     key = load_key(config.key_file, create=create_key)
+    catalogue = load_catalogue(config.thresholds)
     result = RunResult(run_id=new_run_id())
     started = time.monotonic()
     with run_lock(config.store_path):
@@ -158,6 +189,7 @@ def run_pipeline(config: SiteConfig, log: Log, *, command: str = "run", create_k
                     result.files.append(outcome)
                     _record_file_event(con, result.run_id, outcome)
                     _log_file(log, outcome, number, len(files))
+            analyse(con, config, catalogue, result, log, rebuild=rebuild)
             if any(f.outcome == "rejected" for f in result.files):
                 result.exit_code = EXIT_DATA_ERROR
             _record_run_end(con, result, time.monotonic() - started)

@@ -1,0 +1,164 @@
+"""The rule catalogue and its evaluation in DuckDB.
+
+The catalogue (``pipeline/catalogue.toml``) lists every rule once with its metadata and
+parameters; each record-level rule is one SELECT in ``sql/rules/<id>.sql`` returning
+``sample_id, severity, message, evidence``. Evaluation writes the ``flags`` table (one
+row per sample and rule) and the ``audit_status`` of each record, for the samples in
+``scope_samples`` only, so a nightly run costs what its new data costs.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import duckdb
+import polars as pl
+
+from pipeline.errors import ConfigError
+from pipeline.sql_files import SQL_DIR, read_sql, run_sql
+
+CATALOGUE_PATH = Path(__file__).resolve().parent / "catalogue.toml"
+KINDS = ("data_quality", "clinical", "analyser_qc")
+SEVERITIES = ("high", "medium", "low", "info")
+_RESERVED = {"rule_id", "rule_kind", "default_severity", "run_id"}
+
+
+@dataclass(frozen=True)
+class Rule:
+    id: str
+    title: str
+    kind: str
+    severity: str
+    excludes_from_oxygenation: bool
+    rationale: str
+    reference: str
+    parameters: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def sql_path(self) -> Path:
+        return SQL_DIR / "rules" / f"{self.id}.sql"
+
+
+@dataclass(frozen=True)
+class Catalogue:
+    version: str
+    sha256: str
+    derive: dict[str, Any]
+    rules: tuple[Rule, ...]
+
+    def rule(self, rule_id: str) -> Rule:
+        return next(r for r in self.rules if r.id == rule_id)
+
+
+def load_catalogue(overrides: dict[str, Any] | None = None, path: Path = CATALOGUE_PATH) -> Catalogue:
+    """Read the catalogue and apply a site's ``[thresholds]`` overrides (unknown names are errors)."""
+    data = path.read_bytes()
+    raw = tomllib.loads(data.decode("utf-8"))
+    overrides = dict(overrides or {})
+    derive = dict(raw["derive"])
+    derive_overrides = overrides.pop("derive", {})
+    for name, value in derive_overrides.items():
+        if name not in derive:
+            raise ConfigError(f"[thresholds.derive] {name} is not a derive parameter; known: {', '.join(derive)}")
+        derive[name] = value
+    rules = []
+    for item in raw["rule"]:
+        params = dict(item.get("parameters", {}))
+        for name, value in overrides.pop(item["id"], {}).items():
+            if name not in params:
+                known = ", ".join(params) or "none"
+                raise ConfigError(f"[thresholds.{item['id']}] {name} is not a parameter of this rule; known: {known}")
+            params[name] = value
+        if item["kind"] not in KINDS or item["severity"] not in SEVERITIES:
+            raise ConfigError(f"catalogue rule {item['id']}: bad kind or severity")
+        if _RESERVED & params.keys():
+            raise ConfigError(f"catalogue rule {item['id']}: parameter names {_RESERVED & params.keys()} are reserved")
+        rules.append(
+            Rule(
+                id=item["id"],
+                title=item["title"],
+                kind=item["kind"],
+                severity=item["severity"],
+                excludes_from_oxygenation=bool(item["excludes_from_oxygenation"]),
+                rationale=" ".join(item["rationale"].split()),
+                reference=item["reference"],
+                parameters=params,
+            )
+        )
+    if overrides:
+        raise ConfigError(f"[thresholds] names unknown rules: {', '.join(sorted(overrides))}")
+    effective = json.dumps({"derive": derive, "rules": [(r.id, r.parameters) for r in rules]}, sort_keys=True)
+    digest = hashlib.sha256(data + effective.encode()).hexdigest()
+    return Catalogue(version=str(raw["version"]), sha256=digest, derive=derive, rules=tuple(rules))
+
+
+def catalogue_frame(catalogue: Catalogue) -> pl.DataFrame:
+    return pl.DataFrame(
+        [
+            {
+                "rule_id": r.id,
+                "title": r.title,
+                "kind": r.kind,
+                "severity": r.severity,
+                "excludes_from_oxygenation": r.excludes_from_oxygenation,
+                "rationale": r.rationale,
+                "reference": r.reference,
+                "parameters": json.dumps(r.parameters),
+                "catalogue_version": catalogue.version,
+            }
+            for r in catalogue.rules
+        ]
+    )
+
+
+def store_catalogue(con: duckdb.DuckDBPyConnection, catalogue: Catalogue) -> None:
+    """Keep the catalogue in effect in the store so analysts and the report can read it."""
+    frame = catalogue_frame(catalogue)
+    con.register("catalogue_frame", frame)
+    try:
+        con.execute("create or replace table rule_catalogue as select * from catalogue_frame")
+    finally:
+        con.unregister("catalogue_frame")
+
+
+def evaluate_rules(con: duckdb.DuckDBPyConnection, catalogue: Catalogue, run_id: str) -> dict[str, int]:
+    """Replace flags and audit status of the samples in ``scope_samples``; return flag counts per rule."""
+    store_catalogue(con, catalogue)
+    run_sql(con, "rules/00_rule_input.sql")
+    con.execute(read_sql("rules/10_flags_table.sql"))
+    con.execute("delete from flags where sample_id in (select sample_id from scope_samples)")
+    counts: dict[str, int] = {}
+    for rule in catalogue.rules:
+        if rule.kind == "analyser_qc":
+            run_sql(con, f"rules/{rule.id}.sql", **rule.parameters)
+            counts[rule.id] = con.execute("select count(*) from analyser_qc where signal").fetchall()[0][0]
+            continue
+        select = read_sql(f"rules/{rule.id}.sql").strip().rstrip(";")
+        statement = (
+            "insert into flags (sample_id, rule_id, kind, severity, message, evidence, run_id) "
+            "select sample_id, $rule_id, $rule_kind, coalesce(severity, $default_severity), message, "
+            f"evidence::varchar, $run_id from ({select})"
+        )
+        params = {
+            **rule.parameters,
+            "rule_id": rule.id,
+            "rule_kind": rule.kind,
+            "default_severity": rule.severity,
+            "run_id": run_id,
+        }
+        used = con.extract_statements(statement)[0].named_parameters
+        con.execute(statement, {k: v for k, v in params.items() if k in used})
+        counts[rule.id] = con.execute(
+            "select count(*) from flags where rule_id = ? and run_id = ?", [rule.id, run_id]
+        ).fetchall()[0][0]
+    run_sql(con, "rules/90_audit_status.sql", run_id=run_id)
+    return counts
+
+
+def rule_sql_files() -> list[Path]:
+    return sorted(p for p in (SQL_DIR / "rules").glob("*.sql") if not p.name[0].isdigit())

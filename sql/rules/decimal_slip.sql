@@ -1,0 +1,37 @@
+-- A value ten times too large or too small: impossible as stored, consistent after moving
+-- the decimal point (Henderson-Hasselbalch for PCO2; measured SaO2, or the alveolar limit
+-- when SaO2 is not measured, for PO2).
+with candidates as (
+    select
+        *,
+        abs(acid_base_residual(ph, paco2_mmhg / 10.0, hco3_mmol_l)) <= $tolerance_ph as paco2_fits_divided,
+        abs(acid_base_residual(ph, paco2_mmhg * 10.0, hco3_mmol_l)) <= $tolerance_ph as paco2_fits_multiplied,
+        case when sao2_pct is not null and predicted_sao2_pct(pao2_mmhg / 10.0) <= 97
+             then abs(sao2_pct - predicted_sao2_pct(pao2_mmhg / 10.0, ph := coalesce(ph, 7.4))) <= $tolerance_sat_pct
+             else pao2_mmhg / 10.0 <= pao2_alveolar_max_mmhg end as pao2_fits_divided,
+        case when sao2_pct is not null
+             then abs(sao2_pct - predicted_sao2_pct(pao2_mmhg * 10.0, ph := coalesce(ph, 7.4))) <= $tolerance_sat_pct
+             else pao2_mmhg * 10.0 <= pao2_alveolar_max_mmhg end as pao2_fits_multiplied
+    from rule_input
+    where is_arterial_or_unknown
+)
+select
+    sample_id,
+    null as severity,
+    case
+        when paco2_mmhg > 100 and paco2_fits_divided
+            then printf('PaCO2 %.0f mmHg fits pH and HCO3 only as %.1f mmHg (decimal point shifted)', paco2_mmhg, paco2_mmhg / 10)
+        when paco2_mmhg < 15 and paco2_fits_multiplied
+            then printf('PaCO2 %.1f mmHg fits pH and HCO3 only as %.0f mmHg (decimal point shifted)', paco2_mmhg, paco2_mmhg * 10)
+        when pao2_mmhg < 20 and pao2_fits_multiplied
+            then printf('PaO2 %.1f mmHg is only plausible as %.0f mmHg (decimal point shifted)', pao2_mmhg, pao2_mmhg * 10)
+        else printf('PaO2 %.0f mmHg exceeds the alveolar limit of %.0f mmHg; %.1f mmHg would fit (decimal point shifted)',
+                    pao2_mmhg, pao2_alveolar_max_mmhg, pao2_mmhg / 10)
+    end as message,
+    json_object('paco2_mmhg', paco2_mmhg, 'pao2_mmhg', pao2_mmhg, 'pao2_alveolar_max_mmhg',
+                round(pao2_alveolar_max_mmhg, 1), 'sao2_pct', sao2_pct, 'ph', ph, 'hco3_mmol_l', hco3_mmol_l) as evidence
+from candidates
+where (paco2_mmhg > 100 and paco2_fits_divided)
+   or (paco2_mmhg < 15 and paco2_fits_multiplied)
+   or (pao2_mmhg < 20 and pao2_fits_multiplied)
+   or (pao2_mmhg > pao2_alveolar_max_mmhg + 5 and pao2_mmhg / 10.0 >= 20 and pao2_fits_divided);

@@ -1,0 +1,8 @@
+-- Collection to result longer than the limit for a syringe at room temperature.
+select
+    sample_id,
+    case when turnaround_min > $strong_minutes then 'high' end as severity,
+    printf('analysed %.0f minutes after collection (limit %.0f)', turnaround_min, $warn_minutes) as message,
+    json_object('minutes_to_analysis', round(turnaround_min, 1), 'limit_minutes', $warn_minutes) as evidence
+from rule_input
+where turnaround_min > $warn_minutes;

@@ -1,0 +1,39 @@
+-- One value in the other pressure unit: implausible as stored, consistent after converting
+-- by 7.50062 (kPa <-> mmHg). PCO2 is judged by Henderson-Hasselbalch, PO2 by the measured
+-- SaO2 on the dissociation curve.
+with candidates as (
+    select
+        *,
+        abs(acid_base_residual(ph, kpa_to_mmhg(paco2_mmhg), hco3_mmol_l)) <= $tolerance_ph as paco2_fits_as_kpa,
+        abs(acid_base_residual(ph, mmhg_to_kpa(paco2_mmhg), hco3_mmol_l)) <= $tolerance_ph as paco2_fits_as_mmhg,
+        abs(sao2_pct - predicted_sao2_pct(kpa_to_mmhg(pao2_mmhg), ph := coalesce(ph, 7.4))) <= $tolerance_sat_pct
+            as pao2_fits_as_kpa,
+        abs(sao2_pct - predicted_sao2_pct(mmhg_to_kpa(pao2_mmhg), ph := coalesce(ph, 7.4))) <= $tolerance_sat_pct
+            as pao2_fits_as_mmhg
+    from rule_input
+    where is_arterial_or_unknown
+)
+select
+    sample_id,
+    null as severity,
+    case
+        when paco2_mmhg < 15 and paco2_fits_as_kpa
+            then printf('PaCO2 %.1f looks like kPa: as %.0f mmHg it fits pH %.2f and HCO3 %.0f', paco2_mmhg,
+                        kpa_to_mmhg(paco2_mmhg), ph, hco3_mmol_l)
+        when paco2_mmhg > 100 and paco2_fits_as_mmhg
+            then printf('PaCO2 %.0f mmHg looks like a mmHg value read as kPa: %.0f mmHg fits pH %.2f and HCO3 %.0f',
+                        paco2_mmhg, mmhg_to_kpa(paco2_mmhg), ph, hco3_mmol_l)
+        when pao2_mmhg < 20 and pao2_fits_as_kpa
+            then printf('PaO2 %.1f looks like kPa: as %.0f mmHg it fits the measured SaO2 %.0f %%', pao2_mmhg,
+                        kpa_to_mmhg(pao2_mmhg), sao2_pct)
+        else printf('PaO2 %.0f mmHg looks like a mmHg value read as kPa: %.0f mmHg fits the measured SaO2 %.0f %%',
+                    pao2_mmhg, mmhg_to_kpa(pao2_mmhg), sao2_pct)
+    end as message,
+    json_object('paco2_mmhg', paco2_mmhg, 'pao2_mmhg', pao2_mmhg, 'ph', ph, 'hco3_mmol_l', hco3_mmol_l,
+                'sao2_pct', sao2_pct) as evidence
+from candidates
+where (paco2_mmhg < 15 and paco2_fits_as_kpa)
+   or (paco2_mmhg > 100 and paco2_fits_as_mmhg)
+   or (pao2_mmhg < 20 and pao2_fits_as_kpa)
+   or (pao2_mmhg > pao2_alveolar_max_mmhg + 5 and pao2_fits_as_mmhg
+       and mmhg_to_kpa(pao2_mmhg) < pao2_alveolar_max_mmhg);
