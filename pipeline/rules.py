@@ -65,7 +65,7 @@ def load_catalogue(overrides: dict[str, Any] | None = None, path: Path = CATALOG
     for name, value in derive_overrides.items():
         if name not in derive:
             raise ConfigError(f"[thresholds.derive] {name} is not a derive parameter; known: {', '.join(derive)}")
-        derive[name] = value
+        derive[name] = _like(derive[name], value, f"[thresholds.derive] {name}")
     rules = []
     for item in raw["rule"]:
         params = dict(item.get("parameters", {}))
@@ -73,7 +73,7 @@ def load_catalogue(overrides: dict[str, Any] | None = None, path: Path = CATALOG
             if name not in params:
                 known = ", ".join(params) or "none"
                 raise ConfigError(f"[thresholds.{item['id']}] {name} is not a parameter of this rule; known: {known}")
-            params[name] = value
+            params[name] = _like(params[name], value, f"[thresholds.{item['id']}] {name}")
         if item["kind"] not in KINDS or item["severity"] not in SEVERITIES:
             raise ConfigError(f"catalogue rule {item['id']}: bad kind or severity")
         if _RESERVED & params.keys():
@@ -95,6 +95,20 @@ def load_catalogue(overrides: dict[str, Any] | None = None, path: Path = CATALOG
     effective = json.dumps({"derive": derive, "rules": [(r.id, r.parameters) for r in rules]}, sort_keys=True)
     digest = hashlib.sha256(data + effective.encode()).hexdigest()
     return Catalogue(version=str(raw["version"]), sha256=digest, derive=derive, rules=tuple(rules))
+
+
+def _like(default: Any, value: Any, where: str) -> Any:
+    """An override takes the type of the catalogue default (20 for 20.0 is fine, "20" is not)."""
+    if isinstance(default, bool) or isinstance(value, bool):
+        if isinstance(default, bool) and isinstance(value, bool):
+            return value
+    elif isinstance(default, float) and isinstance(value, (int, float)):
+        return float(value)
+    elif isinstance(default, int) and isinstance(value, int):
+        return value
+    elif isinstance(default, str) and isinstance(value, str):
+        return value
+    raise ConfigError(f"{where} = {value!r}: expected a {type(default).__name__} like the default {default!r}")
 
 
 def catalogue_frame(catalogue: Catalogue) -> pl.DataFrame:

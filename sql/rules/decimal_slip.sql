@@ -6,9 +6,12 @@ with candidates as (
         *,
         abs(acid_base_residual(ph, paco2_mmhg / 10.0, hco3_mmol_l)) <= $tolerance_ph as paco2_fits_divided,
         abs(acid_base_residual(ph, paco2_mmhg * 10.0, hco3_mmol_l)) <= $tolerance_ph as paco2_fits_multiplied,
+        -- Without a measured SaO2 only a PaO2 impossible on any FiO2 (above the FiO2 1.0 limit) is
+        -- read as a slip; below that, an under-documented FiO2 explains it as well.
         case when sao2_pct is not null and predicted_sao2_pct(pao2_mmhg / 10.0) <= 97
              then abs(sao2_pct - predicted_sao2_pct(pao2_mmhg / 10.0, ph := coalesce(ph, 7.4))) <= $tolerance_sat_pct
-             else pao2_mmhg / 10.0 <= pao2_alveolar_max_mmhg end as pao2_fits_divided,
+             else pao2_mmhg > alveolar_po2_max_mmhg(1.0, paco2_mmhg, pb_mmhg := pb_mmhg) + 5
+                  and pao2_mmhg / 10.0 <= pao2_alveolar_max_mmhg end as pao2_fits_divided,
         case when sao2_pct is not null
              then abs(sao2_pct - predicted_sao2_pct(pao2_mmhg * 10.0, ph := coalesce(ph, 7.4))) <= $tolerance_sat_pct
              else pao2_mmhg * 10.0 <= pao2_alveolar_max_mmhg end as pao2_fits_multiplied

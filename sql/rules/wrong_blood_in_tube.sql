@@ -1,5 +1,7 @@
 -- Delta check on haemoglobin and sodium against the same patient's previous and next
 -- samples within the window. A jump away and back is flagged; a lasting change is not.
+-- Without a later sample, the one before the previous must agree with the previous, so
+-- the sample after a wrong-blood sample (a jump back to normal) is not blamed.
 with ordered as (
     select
         sample_id,
@@ -10,6 +12,9 @@ with ordered as (
         lag(hb_g_dl) over w as hb_prev,
         lead(hb_g_dl) over w as hb_next,
         lag(na_mmol_l) over w as na_prev,
+        lag(hb_g_dl, 2) over w as hb_prev2,
+        lag(na_mmol_l, 2) over w as na_prev2,
+        epoch(collected_at - lag(collected_at, 2) over w) / 3600.0 as hours_since_prev2,
         lead(na_mmol_l) over w as na_next,
         epoch(collected_at - lag(collected_at) over w) / 3600.0 as hours_since_prev,
         epoch(lead(collected_at) over w - collected_at) / 3600.0 as hours_to_next
@@ -28,15 +33,20 @@ deltas as (
         abs(hb_g_dl - hb_next) > $hb_delta_g_dl and sign(hb_g_dl - hb_next) = sign(hb_g_dl - hb_prev) as hb_jump_back,
         abs(na_mmol_l - na_prev) > $na_delta_mmol_l as na_jump_prev,
         abs(na_mmol_l - na_next) > $na_delta_mmol_l
-            and sign(na_mmol_l - na_next) = sign(na_mmol_l - na_prev) as na_jump_back
+            and sign(na_mmol_l - na_next) = sign(na_mmol_l - na_prev) as na_jump_back,
+        -- the previous sample is itself out of line with the one before it
+        hours_since_prev2 <= $window_hours and abs(hb_prev - hb_prev2) > $hb_delta_g_dl as hb_prev_odd,
+        hours_since_prev2 <= $window_hours and abs(na_prev - na_prev2) > $na_delta_mmol_l as na_prev_odd
     from ordered
 ),
 judged as (
     select
         *,
-        has_prev and coalesce(hb_jump_prev, false) and (not coalesce(has_next, false) or coalesce(hb_jump_back, false))
+        has_prev and coalesce(hb_jump_prev, false)
+            and (coalesce(hb_jump_back, false) or (not coalesce(has_next, false) and not coalesce(hb_prev_odd, false)))
             as hb_flag,
-        has_prev and coalesce(na_jump_prev, false) and (not coalesce(has_next, false) or coalesce(na_jump_back, false))
+        has_prev and coalesce(na_jump_prev, false)
+            and (coalesce(na_jump_back, false) or (not coalesce(has_next, false) and not coalesce(na_prev_odd, false)))
             as na_flag
     from deltas
 )
