@@ -1,0 +1,546 @@
+"""Faults injected into the demo data, and the ground truth that records them.
+
+Each fault type has a default rate (share of all samples, ``DEFAULT_FAULT_RATES``); a sample
+gets at most one fault. The ground truth has one row per faulted sample: ``sample_id``,
+``fault_type``, ``detail`` (what was done, in words), ``physically_visible``, and for the
+writers and for evaluation ``field`` (the canonical column hit), ``value_before`` and
+``value_after`` (canonical units), ``cell_text`` (text written instead of a number) and
+``resend_delay_days``.
+
+Fault types (how each lands):
+
+- ``venous_as_arterial``: the syringe holds the patient's venous blood (forward model step
+  6) but is labelled arterial; PO2 falls, PCO2 and HCO3 rise, the analyser re-measures; SpO2
+  stays the patient's.
+- ``air_contamination``: PO2 pulled 30-80 % of the way to the PO2 of room air
+  (``inspired_po2_mmhg(0.2095, PB, water_vapour_pressure_mmhg(22))``, about 150 mmHg), PCO2
+  down by 0.4 times that share, HCO3 down 3 % of it; re-measured.
+- ``fio2_under_documented``: the patient is on a nasal cannula or a simple, Venturi or
+  reservoir mask but the chart says room air, flow 0, FiO2 0.21.
+- ``fio2_device_mismatch``: the charted FiO2 is one the charted device and flow cannot give:
+  0.10-0.35 above ``device_fio2_max`` (0.10-0.25 below ``device_fio2_min`` for a reservoir
+  mask). The patient's physiology is unchanged.
+- ``ph_transcription``: pH typed wrongly: decimals swapped (60 %), one tenth off (25 %) or
+  one hundredth off (15 %). PCO2 and HCO3 stay as measured.
+- ``wrong_unit``: one PCO2 (40 %) or PO2 (60 %) written in the other pressure unit: a kPa
+  number in an mmHg column (US-style CSV, Parquet) or an mmHg number in a kPa column
+  (European-style CSV). The canonical record holds what a correct reading of the export gives.
+- ``wrong_blood_in_tube``: every analyte (pH, gases, HCO3, BE, SaO2, Hb, Na, K, Cl, lactate)
+  comes from another patient's sample; label, times, oxygen chart and SpO2 stay.
+- ``late_analysis``: resulted 45-180 min after collection; meanwhile PO2 falls 0.15 %/min,
+  PCO2 rises 0.04 mmHg/min, lactate rises 0.012 mmol/L/min and HCO3 falls as much; re-measured.
+- ``decimal_slip``: PO2 (50 %), PCO2 (20 %), Hb (15 %) or lactate (15 %) written ten times
+  too large or too small (84.5 -> 845 or 8.45).
+- ``duplicate_export``: the identical row appears again in the export 1-3 days later.
+- ``corrected_resend``: the sample was first sent with a different PO2 (5-20 % off), FiO2
+  (0.10 off) or temperature (the analyser default 37.0) and re-sent 1-2 days later with the
+  value kept in the canonical record. ``value_before`` is the first-sent value.
+- ``text_result``: one measured cell holds text instead of a number: "haemolysed" (K),
+  "clotted" (PO2) or "see comment" (lactate). CSV sources only; the canonical value is NULL.
+
+**Physically visible.** A fault is marked visible when the faulted record carries physical
+evidence on its own (``sql/evidence.sql``: PaO2 above the alveolar bound at the documented
+FiO2's upper device bound plus max(5 mmHg, 5 %); |acid-base residual| > 0.03; measured SaO2
+more than 4 points off the curve; SpO2 more than 10 points off the arterial curve; PaO2,
+PaCO2, pH, Hb or lactate outside plausible ranges) - for venous blood, air contamination,
+under-documented FiO2, pH transcription, wrong units and decimal slips. So air in a sample
+whose PO2 was already near 150 mmHg, a unit error whose value lands in range, or a pH one
+hundredth off are not visible. Wrong blood in tube is visible when the patient has another
+sample and the analytes differ from the patient's own by at least 2.0 g/dL Hb or 6 mmol/L Na
+(delta-check limits, common practice), or the record carries evidence. Late analysis (the
+time stamps), an impossible charted FiO2 (the device table), duplicates, corrections and text
+results are always visible in the export itself.
+"""
+
+from __future__ import annotations
+
+import duckdb
+import numpy as np
+import polars as pl
+
+from synthetic_data.forward_model import analyser_report, assemble_records, run_query
+
+DEFAULT_FAULT_RATES: dict[str, float] = {
+    "venous_as_arterial": 0.010,
+    "air_contamination": 0.008,
+    "fio2_under_documented": 0.010,
+    "fio2_device_mismatch": 0.006,
+    "ph_transcription": 0.005,
+    "wrong_unit": 0.004,
+    "wrong_blood_in_tube": 0.003,
+    "late_analysis": 0.008,
+    "decimal_slip": 0.004,
+    "duplicate_export": 0.006,
+    "corrected_resend": 0.003,
+    "text_result": 0.004,
+}
+FAULT_TYPES: tuple[str, ...] = tuple(DEFAULT_FAULT_RATES)
+STATE_FAULTS = ("venous_as_arterial", "air_contamination", "late_analysis")
+EVIDENCE_FAULTS = (
+    "venous_as_arterial",
+    "air_contamination",
+    "fio2_under_documented",
+    "ph_transcription",
+    "wrong_unit",
+    "decimal_slip",
+)
+EVIDENCE_COLUMNS = (
+    "pao2_above_alveolar",
+    "acid_base_mismatch",
+    "sao2_off_curve",
+    "spo2_discordant",
+    "out_of_range",
+)
+WBIT_ANALYTES = (
+    "ph",
+    "paco2_mmhg",
+    "pao2_mmhg",
+    "hco3_mmol_l",
+    "base_excess_mmol_l",
+    "sao2_pct",
+    "sao2_is_calculated",
+    "hb_g_dl",
+    "na_mmol_l",
+    "k_mmol_l",
+    "cl_mmol_l",
+    "lactate_mmol_l",
+)
+WBIT_HB_DELTA_G_DL = 2.0
+WBIT_NA_DELTA_MMOL_L = 6.0
+TEXT_RESULTS = {"haemolysed": "k_mmol_l", "clotted": "pao2_mmhg", "see comment": "lactate_mmol_l"}
+
+GROUND_TRUTH_SCHEMA: dict[str, pl.DataType] = {
+    "sample_id": pl.String(),
+    "fault_type": pl.String(),
+    "detail": pl.String(),
+    "physically_visible": pl.Boolean(),
+    "field": pl.String(),
+    "value_before": pl.Float64(),
+    "value_after": pl.Float64(),
+    "cell_text": pl.String(),
+    "resend_delay_days": pl.Int64(),
+}
+
+
+def scale_fault_rates(total: float, base: dict[str, float] | None = None) -> dict[str, float]:
+    """The default mix of fault types, scaled so that the rates add up to ``total``."""
+    base = DEFAULT_FAULT_RATES if base is None else base
+    if total < 0 or total > 0.5:
+        raise ValueError(f"total fault rate must be between 0 and 0.5, got {total}")
+    s = sum(base.values())
+    return {k: (v * total / s if s else 0.0) for k, v in base.items()}
+
+
+def check_fault_rates(rates: dict[str, float]) -> dict[str, float]:
+    """Fill in missing fault types with 0 and reject unknown names or impossible rates."""
+    unknown = sorted(set(rates) - set(FAULT_TYPES))
+    if unknown:
+        raise ValueError(f"unknown fault types {unknown}; known: {list(FAULT_TYPES)}")
+    full = {k: float(rates.get(k, 0.0)) for k in FAULT_TYPES}
+    if any(v < 0 for v in full.values()) or sum(full.values()) > 0.5:
+        raise ValueError("fault rates must be >= 0 and add up to at most 0.5")
+    return full
+
+
+def assign_faults(rng: np.random.Generator, state: pl.DataFrame, rates: dict[str, float]) -> pl.DataFrame:
+    """Choose the faulted samples (at most one fault each) and the random details of each fault.
+
+    ``state`` is the forward model's output, one row per sample in ``_row`` order. Returns one
+    row per faulted sample, sorted by ``_row``.
+    """
+    n = state.height
+    taken = np.zeros(n, dtype=bool)
+    masks = state.select(
+        (pl.col("sample_type") == "arterial").alias("arterial"),
+        (
+            pl.col("true_device").is_in(["nasal_cannula", "simple_mask", "reservoir_mask", "venturi_mask"])
+            & (pl.col("o2_device") == pl.col("true_device"))
+        )
+        .fill_null(False)
+        .alias("on_oxygen_charted"),
+        pl.col("o2_device")
+        .is_in(["room_air", "nasal_cannula", "simple_mask", "venturi_mask", "reservoir_mask"])
+        .fill_null(False)
+        .alias("bounded_device"),
+        pl.col("source").is_in(["eu_style", "us_style"]).alias("csv_source"),
+    )
+    eligible: dict[str, np.ndarray] = {
+        "venous_as_arterial": masks["arterial"].to_numpy(),
+        "air_contamination": masks["arterial"].to_numpy(),
+        "fio2_under_documented": masks["on_oxygen_charted"].to_numpy(),
+        "fio2_device_mismatch": masks["bounded_device"].to_numpy(),
+        "text_result": masks["csv_source"].to_numpy(),
+    }
+    parts: list[pl.DataFrame] = []
+    for fault in FAULT_TYPES:
+        k = round(rates.get(fault, 0.0) * n)
+        if k == 0:
+            continue
+        ok = eligible.get(fault, np.ones(n, dtype=bool)) & ~taken
+        candidates = np.flatnonzero(ok)
+        chosen = np.sort(rng.choice(candidates, size=min(k, candidates.size), replace=False))
+        taken[chosen] = True
+        m = chosen.size
+        field: np.ndarray = np.full(m, None, dtype=object)
+        mode: np.ndarray = np.full(m, None, dtype=object)
+        text: np.ndarray = np.full(m, None, dtype=object)
+        delay = np.full(m, -1, dtype=np.int64)
+        resend = np.full(m, -1, dtype=np.int64)
+        if fault == "ph_transcription":
+            field[:] = "ph"
+            mode = rng.choice(np.array(["swap", "tenth", "hundredth"], dtype=object), m, p=[0.6, 0.25, 0.15])
+        elif fault == "wrong_unit":
+            field = rng.choice(np.array(["paco2_mmhg", "pao2_mmhg"], dtype=object), m, p=[0.4, 0.6])
+        elif fault == "decimal_slip":
+            field = rng.choice(
+                np.array(["pao2_mmhg", "paco2_mmhg", "hb_g_dl", "lactate_mmol_l"], dtype=object),
+                m,
+                p=[0.5, 0.2, 0.15, 0.15],
+            )
+            mode = rng.choice(np.array(["times_10", "div_10"], dtype=object), m)
+        elif fault == "text_result":
+            pick = rng.choice(len(TEXT_RESULTS), m, p=[0.4, 0.3, 0.3])
+            text = np.array(list(TEXT_RESULTS), dtype=object)[pick]
+            field = np.array(list(TEXT_RESULTS.values()), dtype=object)[pick]
+        elif fault == "late_analysis":
+            delay = 45 + rng.integers(0, 136, m)
+        elif fault == "duplicate_export":
+            resend = 1 + rng.integers(0, 3, m)
+        elif fault == "corrected_resend":
+            field = rng.choice(np.array(["pao2_mmhg", "fio2", "temperature_c"], dtype=object), m)
+            resend = 1 + rng.integers(0, 2, m)
+        parts.append(
+            pl.DataFrame(
+                {
+                    "_row": chosen.astype(np.int64),
+                    "fault": np.full(m, fault, dtype=object),
+                    "fault_field": field,
+                    "fault_mode": mode,
+                    "cell_text": text,
+                    "delay_min": delay,
+                    "resend_delay_days": resend,
+                    "f_u1": rng.random(m),
+                    "f_u2": rng.random(m),
+                },
+                schema_overrides={
+                    "fault": pl.String,
+                    "fault_field": pl.String,
+                    "fault_mode": pl.String,
+                    "cell_text": pl.String,
+                },
+            )
+        )
+    if not parts:
+        return _empty_assignments()
+    out = (
+        pl.concat(parts)
+        .sort("_row")
+        .with_columns(
+            pl.col("delay_min", "resend_delay_days").replace(-1, None),
+        )
+    )
+    return _choose_donors(rng, state, out)
+
+
+def _empty_assignments() -> pl.DataFrame:
+    return pl.DataFrame(
+        schema={
+            "_row": pl.Int64,
+            "fault": pl.String,
+            "fault_field": pl.String,
+            "fault_mode": pl.String,
+            "cell_text": pl.String,
+            "delay_min": pl.Int64,
+            "resend_delay_days": pl.Int64,
+            "f_u1": pl.Float64,
+            "f_u2": pl.Float64,
+            "donor_row": pl.Int64,
+        }
+    )
+
+
+def _choose_donors(rng: np.random.Generator, state: pl.DataFrame, assigned: pl.DataFrame) -> pl.DataFrame:
+    """For wrong blood in tube: a sample of another patient whose blood ended up in the tube."""
+    n = state.height
+    rows = assigned["_row"].to_numpy()
+    wbit = (assigned["fault"] == "wrong_blood_in_tube").to_numpy()
+    donor = np.full(rows.size, -1, dtype=np.int64)
+    patient = state["patient_idx"].to_numpy()
+    todo = np.flatnonzero(wbit)
+    for _ in range(50):  # redraw the few donors that happen to be the same patient
+        if todo.size == 0:
+            break
+        donor[todo] = rng.integers(0, n, todo.size)
+        todo = todo[patient[donor[todo]] == patient[rows[todo]]]
+    if todo.size:
+        raise RuntimeError("wrong blood in tube needs at least two patients")
+    return assigned.with_columns(pl.Series("donor_row", donor).replace(-1, None))
+
+
+def _fmt(expr: pl.Expr) -> pl.Expr:
+    """A number as short text for the ground truth detail (NULL shows as 'none')."""
+    return pl.when(expr.is_null()).then(pl.lit("none")).otherwise(expr.round(2).cast(pl.String))
+
+
+def evidence(con: duckdb.DuckDBPyConnection, records: pl.DataFrame) -> pl.DataFrame:
+    """Per record: the physical evidence flags of ``sql/evidence.sql`` (see the module docstring)."""
+    cols = [
+        "sample_id",
+        "sample_type",
+        "o2_device",
+        "o2_flow_l_min",
+        "fio2",
+        "barometric_pressure_mmhg",
+        "ph",
+        "paco2_mmhg",
+        "pao2_mmhg",
+        "hco3_mmol_l",
+        "base_excess_mmol_l",
+        "sao2_pct",
+        "sao2_is_calculated",
+        "spo2_pct",
+        "hb_g_dl",
+        "lactate_mmol_l",
+    ]
+    out = run_query(con, "evidence.sql", {"records": records.select(cols)})
+    return out.with_columns(pl.any_horizontal(EVIDENCE_COLUMNS).alias("any_evidence"))
+
+
+def inject_faults(
+    con: duckdb.DuckDBPyConnection,
+    rng: np.random.Generator,
+    state: pl.DataFrame,
+    records: pl.DataFrame,
+    rates: dict[str, float],
+) -> tuple[pl.DataFrame, pl.DataFrame]:
+    """Apply the faults to the clean ``records``; return the faulted records and the ground truth.
+
+    ``state`` is the forward model's output and ``records`` the clean records built from it,
+    both one row per sample in ``_row`` order (``_row`` = position).
+    """
+    assigned = assign_faults(rng, state, rates)
+    if assigned.height == 0:
+        return records, pl.DataFrame(schema=GROUND_TRUTH_SCHEMA)
+    rows = assigned["_row"].to_numpy()
+    clean = records[rows]
+
+    # faults in the syringe and the chart; the analyser measures again
+    faulty = state[rows].hstack(assigned.drop("_row"))
+    faulty = run_query(con, "fault_state.sql", {"faulty": faulty})
+    reported = assemble_records(faulty, analyser_report(con, faulty))
+
+    # faults in transcription and export of single values
+    extra = assigned.select("fault", "fault_field", "fault_mode", "f_u1")
+    reported = run_query(con, "fault_record.sql", {"reported": reported.hstack(extra)})
+
+    # wrong blood in tube: every analyte from the donor's clean record
+    donors = assigned["donor_row"].fill_null(0).to_numpy()
+    donor_values = records[donors].select(WBIT_ANALYTES)
+    is_wbit = pl.col("fault") == "wrong_blood_in_tube"
+    reported = reported.with_columns(
+        pl.when(is_wbit).then(donor_values[c]).otherwise(pl.col(c)).alias(c) for c in WBIT_ANALYTES
+    )
+    truth = _ground_truth(con, state[rows], clean, reported, assigned)
+    # put the faulted rows back in place (a scatter: only 'rows' change)
+    index = pl.Series(rows)
+    out = records.with_columns(
+        records.get_column(c).scatter(index, reported.get_column(c)) for c in records.columns if c != "_row"
+    )
+    return out, truth
+
+
+def _ground_truth(
+    con: duckdb.DuckDBPyConnection,
+    state: pl.DataFrame,
+    clean: pl.DataFrame,
+    faulted: pl.DataFrame,
+    assigned: pl.DataFrame,
+) -> pl.DataFrame:
+    """One row per faulted sample: what was done, and whether physics can see it."""
+    frame = pl.concat(
+        [
+            assigned.drop("fault_field"),
+            clean.select(pl.all().name.prefix("b_")),
+            faulted.select(pl.all().name.prefix("a_")),
+            faulted.select("fault_field", "value_before", "value_after"),
+            evidence(con, faulted).select("any_evidence"),
+            state.select("true_device", "fio2_true", "baseline_hb", "baseline_na", "patient_samples"),
+        ],
+        how="horizontal",
+    )
+    f = pl.col("fault")
+
+    def before(name: str) -> pl.Expr:
+        return pl.col(f"b_{name}")
+
+    def after(name: str) -> pl.Expr:
+        return pl.col(f"a_{name}")
+
+    def of_field(prefix: str) -> pl.Expr:
+        expr = pl.lit(None, dtype=pl.Float64)
+        for name in (
+            "ph",
+            "pao2_mmhg",
+            "paco2_mmhg",
+            "hb_g_dl",
+            "lactate_mmol_l",
+            "k_mmol_l",
+            "fio2",
+            "temperature_c",
+        ):
+            expr = (
+                pl.when(pl.col("field") == name)
+                .then(pl.col(f"{prefix}{name}").cast(pl.Float64))
+                .otherwise(expr)
+            )
+        return expr
+
+    # 1. the canonical column each fault is about
+    frame = frame.with_columns(
+        pl.when(f.is_in(STATE_FAULTS))
+        .then(pl.lit("pao2_mmhg"))
+        .when(f.is_in(["fio2_under_documented", "fio2_device_mismatch"]))
+        .then(pl.lit("fio2"))
+        .when(f == "wrong_blood_in_tube")
+        .then(pl.lit("hb_g_dl"))
+        # a correction of an FiO2 that was never charted is a correction of PO2 instead
+        .when((f == "corrected_resend") & (pl.col("fault_field") == "fio2") & before("fio2").is_null())
+        .then(pl.lit("pao2_mmhg"))
+        .otherwise(pl.col("fault_field"))
+        .alias("field")
+    )
+    # 2. values before and after, in canonical units
+    sign = pl.when(pl.col("f_u2") < 0.5).then(-1.0).otherwise(1.0)
+    first_sent = (
+        pl.when(pl.col("field") == "pao2_mmhg")
+        .then((before("pao2_mmhg") * (1.0 + sign * (0.05 + 0.15 * pl.col("f_u1")))).round(1))
+        .when(pl.col("field") == "fio2")
+        .then(
+            pl.when(before("fio2") >= 0.31)
+            .then(before("fio2") - 0.10)
+            .otherwise(before("fio2") + 0.10)
+            .round(2)
+        )
+        .when(pl.col("field") == "temperature_c")
+        .then(pl.when(before("temperature_c") == 37.0).then(pl.lit(37.8)).otherwise(pl.lit(37.0)))
+    )
+    record_faults = f.is_in(["ph_transcription", "wrong_unit", "decimal_slip", "text_result"])
+    frame = frame.with_columns(
+        pl.when(record_faults)
+        .then(pl.col("value_before"))
+        .when(f == "corrected_resend")
+        .then(first_sent)
+        .otherwise(of_field("b_"))
+        .alias("value_before"),
+        pl.when(record_faults).then(pl.col("value_after")).otherwise(of_field("a_")).alias("value_after"),
+    )
+    # 3. visible to physics?
+    hb_delta = (after("hb_g_dl") - pl.col("baseline_hb")).abs()
+    na_delta = (after("na_mmol_l") - pl.col("baseline_na")).abs()
+    delta_seen = (pl.col("patient_samples") > 1) & (
+        (hb_delta >= WBIT_HB_DELTA_G_DL) | (na_delta >= WBIT_NA_DELTA_MMOL_L)
+    )
+    visible = (
+        pl.when(f.is_in(EVIDENCE_FAULTS))
+        .then(pl.col("any_evidence"))
+        .when(f == "wrong_blood_in_tube")
+        .then(pl.col("any_evidence") | delta_seen)
+        .otherwise(pl.lit(True))
+    )
+    # 4. what was done, in words
+    gas = pl.format(
+        "pO2 {} -> {} mmHg, pCO2 {} -> {} mmHg",
+        _fmt(before("pao2_mmhg")),
+        _fmt(after("pao2_mmhg")),
+        _fmt(before("paco2_mmhg")),
+        _fmt(after("paco2_mmhg")),
+    )
+    change = pl.format(
+        "{} {} -> {}", pl.col("field"), _fmt(pl.col("value_before")), _fmt(pl.col("value_after"))
+    )
+    detail = (
+        pl.when(f == "venous_as_arterial")
+        .then(
+            pl.format(
+                "venous blood labelled arterial: {}; SpO2 {} % is the patient's", gas, _fmt(after("spo2_pct"))
+            )
+        )
+        .when(f == "air_contamination")
+        .then(pl.format("air in the syringe: {}", gas))
+        .when(f == "late_analysis")
+        .then(
+            pl.format(
+                "analysed {} min after collection: {}, lactate {} -> {} mmol/L",
+                pl.col("delay_min"),
+                gas,
+                _fmt(before("lactate_mmol_l")),
+                _fmt(after("lactate_mmol_l")),
+            )
+        )
+        .when(f == "fio2_under_documented")
+        .then(
+            pl.format(
+                "on {} (FiO2 about {}), charted as room air, flow 0, FiO2 0.21",
+                pl.col("true_device"),
+                _fmt(pl.col("fio2_true")),
+            )
+        )
+        .when(f == "fio2_device_mismatch")
+        .then(
+            pl.format(
+                "charted FiO2 {} cannot come from {} at {} L/min",
+                _fmt(after("fio2")),
+                after("o2_device"),
+                _fmt(after("o2_flow_l_min")),
+            )
+        )
+        .when(f == "ph_transcription")
+        .then(pl.format("pH {} written as {}", _fmt(pl.col("value_before")), _fmt(pl.col("value_after"))))
+        .when(f == "wrong_unit")
+        .then(
+            pl.format(
+                "{} written in the other pressure unit: {} mmHg read as {} mmHg",
+                pl.col("field"),
+                _fmt(pl.col("value_before")),
+                _fmt(pl.col("value_after")),
+            )
+        )
+        .when(f == "wrong_blood_in_tube")
+        .then(
+            pl.format(
+                "analytes from another patient's sample: Hb {} -> {} g/dL, Na {} -> {} mmol/L, {}",
+                _fmt(before("hb_g_dl")),
+                _fmt(after("hb_g_dl")),
+                _fmt(before("na_mmol_l")),
+                _fmt(after("na_mmol_l")),
+                gas,
+            )
+        )
+        .when(f == "decimal_slip")
+        .then(pl.format("decimal mark slipped: {}", change))
+        .when(f == "duplicate_export")
+        .then(pl.format("exported again unchanged {} day(s) later", pl.col("resend_delay_days")))
+        .when(f == "corrected_resend")
+        .then(
+            pl.format(
+                "first sent with {} {}, re-sent {} day(s) later with {}",
+                pl.col("field"),
+                _fmt(pl.col("value_before")),
+                pl.col("resend_delay_days"),
+                _fmt(pl.col("value_after")),
+            )
+        )
+        .when(f == "text_result")
+        .then(pl.format("{} reported as the text '{}'", pl.col("field"), pl.col("cell_text")))
+    )
+    return frame.select(
+        after("sample_id").alias("sample_id"),
+        f.alias("fault_type"),
+        detail.alias("detail"),
+        visible.alias("physically_visible"),
+        pl.when(f == "duplicate_export").then(None).otherwise(pl.col("field")).alias("field"),
+        pl.when(f == "duplicate_export").then(None).otherwise(pl.col("value_before")).alias("value_before"),
+        pl.when(f == "duplicate_export").then(None).otherwise(pl.col("value_after")).alias("value_after"),
+        pl.col("cell_text"),
+        pl.col("resend_delay_days"),
+    ).cast(GROUND_TRUTH_SCHEMA)

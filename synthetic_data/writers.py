@@ -1,0 +1,313 @@
+"""Write the demo records as the invented hospital's exports, one mapping profile per source.
+
+Samples are split between export sources by analyser (``hospital.ANALYSER_SOURCE``; the
+source is also the ``sample_id`` prefix): critical-care point-of-care analysers export
+European-style CSV, the main laboratory US-style CSV, ward satellite analysers a Parquet
+feed. Each source writes one file per day (the local date on which the result was produced,
+in the profile's time zone), or one file in all with ``single_file``:
+
+    OUT/us_style/export_YYYY-MM-DD.csv     profiles/demo_us_style.toml
+    OUT/eu_style/export_YYYY-MM-DD.csv     profiles/demo_eu_style.toml
+    OUT/parquet/export_YYYY-MM-DD.parquet  profiles/demo_parquet.toml
+    OUT/ground_truth.parquet, OUT/ground_truth.csv, OUT/README.txt
+
+Values are converted from canonical units into each profile's declared units with the shared
+SQL macros (``sql/export_units.sql``), printed with the profile's decimal mark and date-time
+format in its local time zone, and coded with the profile's own sample-type and device codes.
+Faults that live in the export are written here from the ground truth: a duplicate is written
+again in a later day's file, a correction is written first with its first-sent value and again,
+corrected, in a later file, and a text result replaces the number in its cell.
+"""
+
+from __future__ import annotations
+
+import codecs
+import io
+import tomllib
+from datetime import date
+from pathlib import Path
+
+import duckdb
+import polars as pl
+
+from pipeline.profile import Profile, load_profile
+from pipeline.schema import FIELDS_BY_NAME, Kind
+from synthetic_data.forward_model import physiology_connection, run_query
+from synthetic_data.generator import source_of
+from synthetic_data.hospital import PROFILE_FILES, SITE_NAME, SOURCES
+
+PROFILES_DIR = Path(__file__).resolve().parent.parent / "profiles"
+
+# Decimals printed per canonical column and declared unit (what analysers typically print).
+DECIMALS: dict[str, dict[str, int]] = {
+    "paco2_mmhg": {"mmHg": 1, "kPa": 2},
+    "pao2_mmhg": {"mmHg": 1, "kPa": 2},
+    "barometric_pressure_mmhg": {"mmHg": 1, "kPa": 2},
+    "fio2": {"fraction": 2, "percent": 0},
+    "sao2_pct": {"percent": 1, "fraction": 3},
+    "spo2_pct": {"percent": 0, "fraction": 2},
+    "temperature_c": {"C": 1, "F": 1},
+    "hb_g_dl": {"g/dL": 1, "g/L": 0, "mmol/L": 1},
+    "lactate_mmol_l": {"mmol/L": 1, "mg/dL": 0},
+    "age_years": {"years": 0},
+    "o2_flow_l_min": {"L/min": 1},
+    "ph": {"pH": 2},
+    "hco3_mmol_l": {"mmol/L": 1},
+    "base_excess_mmol_l": {"mmol/L": 1},
+    "na_mmol_l": {"mmol/L": 0},
+    "k_mmol_l": {"mmol/L": 1},
+    "cl_mmol_l": {"mmol/L": 0},
+    "mean_airway_pressure_cmh2o": {"cmH2O": 0},
+    "peep_cmh2o": {"cmH2O": 0},
+}
+CONVERTED = (
+    "paco2_mmhg",
+    "pao2_mmhg",
+    "barometric_pressure_mmhg",
+    "fio2",
+    "sao2_pct",
+    "spo2_pct",
+    "temperature_c",
+    "hb_g_dl",
+    "lactate_mmol_l",
+)
+BOOLEAN_TEXT: dict[str, tuple[str, str]] = {"demo_us_style": ("Y", "N"), "demo_eu_style": ("1", "0")}
+
+
+def profile_path(source: str, profiles_dir: Path = PROFILES_DIR) -> Path:
+    return profiles_dir / PROFILE_FILES[source]
+
+
+def export_codes(path: Path) -> tuple[dict[str, str], dict[str, str]]:
+    """Canonical -> export code for sample types and devices, in the TOML file's own spelling.
+
+    Where a profile lists several codes for one canonical value, the first is written.
+    """
+    raw = tomllib.loads(path.read_text(encoding="utf-8")).get("codes", {})
+    out: list[dict[str, str]] = []
+    for table in ("sample_type", "o2_device"):
+        reverse: dict[str, str] = {}
+        for code, canonical in raw.get(table, {}).items():
+            reverse.setdefault(str(canonical), str(code))
+        out.append(reverse)
+    return out[0], out[1]
+
+
+def _units(profile: Profile) -> dict[str, str]:
+    units = {c: profile.unit_of(c) for c in CONVERTED}
+    for name, unit in units.items():
+        if unit not in DECIMALS[name]:
+            raise ValueError(f"{profile.name}: the demo writer cannot write {name} in {unit!r}")
+    return units
+
+
+def _to_profile_units(con: duckdb.DuckDBPyConnection, rows: pl.DataFrame, profile: Profile) -> pl.DataFrame:
+    units = _units(profile)
+    params = {
+        "paco2_unit": units["paco2_mmhg"],
+        "pao2_unit": units["pao2_mmhg"],
+        "barometric_unit": units["barometric_pressure_mmhg"],
+        "fio2_unit": units["fio2"],
+        "sao2_unit": units["sao2_pct"],
+        "spo2_unit": units["spo2_pct"],
+        "temperature_unit": units["temperature_c"],
+        "hb_unit": units["hb_g_dl"],
+        "lactate_unit": units["lactate_mmol_l"],
+    }
+    canon = rows.select(pl.int_range(pl.len(), dtype=pl.Int64).alias("_row"), *CONVERTED)
+    converted = run_query(con, "export_units.sql", {"canon": canon}, params)
+    return rows.with_columns(converted.drop("_row"))
+
+
+def _export_rows(rows: pl.DataFrame, truth: pl.DataFrame, timezone: str) -> pl.DataFrame:
+    """Rows as exported: each on the local date it was resulted, plus re-sent copies later."""
+    rows = rows.with_columns(
+        pl.col("resulted_at")
+        .dt.replace_time_zone("UTC")
+        .dt.convert_time_zone(timezone)
+        .dt.date()
+        .alias("_export_date"),
+        pl.lit(0, dtype=pl.Int8).alias("_copy"),
+    )
+    resent = truth.filter(pl.col("fault_type").is_in(["duplicate_export", "corrected_resend"])).select(
+        "sample_id", "fault_type", "field", "value_before", "resend_delay_days"
+    )
+    later = (
+        rows.join(resent, on="sample_id", how="inner")
+        .with_columns(
+            (pl.col("_export_date") + pl.duration(days=pl.col("resend_delay_days"))).alias("_export_date"),
+            pl.lit(1, dtype=pl.Int8).alias("_copy"),
+        )
+        .select(rows.columns)
+    )
+    # a corrected sample was first sent with another value
+    first = resent.filter(pl.col("fault_type") == "corrected_resend").select(
+        "sample_id", pl.col("field").alias("_first_field"), pl.col("value_before").alias("_first_value")
+    )
+    rows = rows.join(first, on="sample_id", how="left", maintain_order="left")
+    fields = first["_first_field"].unique().to_list()
+    rows = rows.with_columns(
+        pl.when(pl.col("_first_field") == name)
+        .then(pl.col("_first_value"))
+        .otherwise(pl.col(name))
+        .alias(name)
+        for name in fields
+    ).drop("_first_field", "_first_value")
+    return pl.concat([rows, later]).sort("_export_date", "_copy", "resulted_at", "sample_id")
+
+
+def _number_text(expr: pl.Expr, decimals: int, decimal_mark: str) -> pl.Expr:
+    """A number printed with fixed decimals (NULL stays NULL, printed as an empty cell)."""
+    if decimals == 0:
+        text = expr.round(0).cast(pl.Int64).cast(pl.String)
+    else:
+        text = expr.round(decimals).cast(pl.Decimal(18, decimals)).cast(pl.String)
+    return text.str.replace(".", ",", literal=True) if decimal_mark == "," else text
+
+
+def _csv_frame(rows: pl.DataFrame, truth: pl.DataFrame, profile: Profile, path: Path) -> pl.DataFrame:
+    """Every cell as the export's text, headed with the export's own column names."""
+    sample_codes, device_codes = export_codes(path)
+    yes, no = BOOLEAN_TEXT.get(profile.name, ("1", "0"))
+    texts = truth.filter(pl.col("fault_type") == "text_result").select("sample_id", "field", "cell_text")
+    cells: list[pl.Expr] = []
+    for name, header in profile.columns.items():
+        spec = FIELDS_BY_NAME[name]
+        col = pl.col(name)
+        if spec.kind is Kind.NUMBER:
+            unit = profile.unit_of(name) if spec.unit_family else ""
+            decimals = DECIMALS[name].get(unit, 1)
+            cell = _number_text(col, decimals, profile.decimal_mark)
+        elif spec.kind is Kind.TIMESTAMP:
+            cell = (
+                col.dt.replace_time_zone("UTC")
+                .dt.convert_time_zone(profile.timezone)
+                .dt.strftime(profile.datetime_format)
+            )
+        elif spec.kind is Kind.DATE:
+            cell = col.dt.strftime(profile.date_format)
+        elif spec.kind is Kind.BOOLEAN:
+            cell = pl.when(col).then(pl.lit(yes)).when(~col).then(pl.lit(no))
+        elif name == "sample_type":
+            cell = col.replace_strict(sample_codes, default=None, return_dtype=pl.String)
+        elif name == "o2_device":
+            cell = col.replace_strict(device_codes, default=None, return_dtype=pl.String)
+        else:
+            cell = col.cast(pl.String)
+        field_texts = texts.filter(pl.col("field") == name)
+        if field_texts.height:
+            lookup = dict(zip(field_texts["sample_id"], field_texts["cell_text"], strict=True))
+            cell = pl.coalesce(
+                pl.col("sample_id").replace_strict(lookup, default=None, return_dtype=pl.String), cell
+            )
+        cells.append(cell.alias(header))
+    return rows.select(cells)
+
+
+def _write_csv(frame: pl.DataFrame, target: Path, profile: Profile) -> None:
+    """CSV in the profile's dialect; written as UTF-8 by polars, re-encoded in chunks when needed."""
+    if profile.encoding == "utf-8":
+        frame.write_csv(target, separator=profile.delimiter, quote_char=profile.quote_char, null_value="")
+        return
+    buffer = io.BytesIO()
+    frame.write_csv(buffer, separator=profile.delimiter, quote_char=profile.quote_char, null_value="")
+    decoder = codecs.getincrementaldecoder("utf-8")()
+    view = buffer.getbuffer()
+    with target.open("wb") as out:
+        for start in range(0, len(view), 1 << 24):
+            out.write(decoder.decode(bytes(view[start : start + (1 << 24)])).encode(profile.encoding))
+        out.write(decoder.decode(b"", final=True).encode(profile.encoding))
+    view.release()
+
+
+def _write_source(
+    con: duckdb.DuckDBPyConnection,
+    rows: pl.DataFrame,
+    truth: pl.DataFrame,
+    source: str,
+    out_dir: Path,
+    single_file: bool,
+    profiles_dir: Path,
+) -> list[Path]:
+    path = profile_path(source, profiles_dir)
+    profile = load_profile(path)
+    rows = _export_rows(_to_profile_units(con, rows, profile), truth, profile.timezone)
+    folder = out_dir / source
+    folder.mkdir(parents=True, exist_ok=True)
+    if profile.format == "parquet":
+        frame = rows.select(pl.col(c).alias(h) for c, h in profile.columns.items())
+    else:
+        frame = _csv_frame(rows, truth, profile, path)
+    dates = rows["_export_date"]
+    suffix = "parquet" if profile.format == "parquet" else "csv"
+    written: list[Path] = []
+    if single_file:
+        groups: list[tuple[str, pl.DataFrame]] = [("export_all", frame)]
+    else:
+        frame = frame.with_columns(dates.alias("__date"))
+        groups = [
+            (f"export_{day.isoformat()}", part.drop("__date"))
+            for (day,), part in sorted(frame.partition_by("__date", as_dict=True).items())
+            if isinstance(day, date)
+        ]
+    for stem, part in groups:
+        target = folder / f"{stem}.{suffix}"
+        if profile.format == "parquet":
+            part.write_parquet(target)
+        else:
+            _write_csv(part, target, profile)
+        written.append(target)
+    return written
+
+
+README = """Demo blood gas exports - invented data
+=====================================
+
+Everything in this folder is invented by the demo-data generator (python -m synthetic_data).
+{site} does not exist; its units, analysers, patients, identifiers, dates and results
+are made up. Nothing comes from a real patient or a real record.
+
+Generated: {rows} records, seed {seed}, {days} days from {start}, fault rate {fault_rate:.4f}.
+
+us_style/     main laboratory, US-style CSV (profiles/demo_us_style.toml)
+eu_style/     critical-care point-of-care analysers, European-style CSV (profiles/demo_eu_style.toml)
+parquet/      ward satellite analysers, data-warehouse Parquet (profiles/demo_parquet.toml)
+ground_truth.parquet / .csv
+              one row per sample with an injected fault: sample_id, fault_type, detail,
+              physically_visible (whether physics can see it in the record), field,
+              value_before / value_after (canonical units), cell_text, resend_delay_days.
+
+Files are named by the local date on which results were produced. A duplicate or a corrected
+re-send appears again in a later file.
+"""
+
+
+def write_exports(
+    canonical: pl.DataFrame,
+    ground_truth: pl.DataFrame,
+    out_dir: Path | str,
+    *,
+    single_file: bool = False,
+    profiles_dir: Path = PROFILES_DIR,
+    provenance: dict[str, object] | None = None,
+) -> dict[str, list[Path]]:
+    """Write every source's export files, the ground truth and a README; return the files per source."""
+    out_dir = Path(out_dir)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    with_source = canonical.with_columns(source_of(pl.col("sample_id")).alias("_source"))
+    written: dict[str, list[Path]] = {}
+    con = physiology_connection()
+    try:
+        for source in SOURCES:
+            rows = with_source.filter(pl.col("_source") == source).drop("_source")
+            ids = rows.select("sample_id")
+            truth = ground_truth.join(ids, on="sample_id", how="semi")
+            written[source] = _write_source(con, rows, truth, source, out_dir, single_file, profiles_dir)
+    finally:
+        con.close()
+    ground_truth.write_parquet(out_dir / "ground_truth.parquet")
+    ground_truth.write_csv(out_dir / "ground_truth.csv")
+    info = {"rows": canonical.height, "seed": "?", "days": "?", "start": "?", "fault_rate": float("nan")}
+    info.update(provenance or {})
+    (out_dir / "README.txt").write_text(README.format(site=SITE_NAME, **info), encoding="utf-8")
+    return written
