@@ -23,7 +23,7 @@ from pipeline.errors import ConfigError
 from pipeline.sql_files import SQL_DIR, read_sql, run_sql
 
 CATALOGUE_PATH = Path(__file__).resolve().parent / "catalogue.toml"
-KINDS = ("data_quality", "clinical", "analyser_qc")
+KINDS = ("data_quality", "documentation", "clinical", "analyser_qc")
 SEVERITIES = ("high", "medium", "low", "info")
 _RESERVED = {"rule_id", "rule_kind", "default_severity", "run_id"}
 

@@ -97,15 +97,17 @@ def test_sao2_off_dissociation_curve(tmp_path):
 
 def test_suspected_venous_sample(tmp_path):
     # PaO2 40 -> predicted saturation 74.95 % (domain notes section 5); with SpO2 97 % the sample is venous
-    # (domain notes section 8 rule: PaO2 < 50 and SpO2 >= 94, common practice).
+    # (domain notes section 8 rule: PaO2 < 50 and SpO2 >= 94, common practice); or SpO2 at least 10 points above
+    # the sample's saturation (beyond pulse oximeter error, FDA 2021 safety communication: +/- 4 at 90 %).
     rows = [
         record("FIRE", pao2_mmhg=40.0, sao2_pct=75.0, spo2_pct=97.0),
-        record("INSIDE", pao2_mmhg=52.0, sao2_pct=None, spo2_pct=97.0),
+        record("INSIDE", pao2_mmhg=60.0, sao2_pct=None, spo2_pct=97.0),  # curve 90.6 %: 6.4 points
+        record("DISCORDANT", pao2_mmhg=55.0, sao2_pct=None, spo2_pct=99.0),  # curve 88.2 %: 10.8 points
         record("LABELLED_VENOUS", sample_type="venous", pao2_mmhg=40.0, sao2_pct=75.0, spo2_pct=97.0),
         record("NO_SPO2", pao2_mmhg=40.0, sao2_pct=75.0, spo2_pct=None),
     ]
     con = evaluate(tmp_path, rows)
-    assert set(flagged(con, "suspected_venous_sample")) == {"FIRE"}
+    assert set(flagged(con, "suspected_venous_sample")) == {"FIRE", "DISCORDANT"}
     status = dict(con.execute("select sample_id, audit_status from audit_status").fetchall())
     assert status["FIRE"] == "excluded" and status["LABELLED_VENOUS"] == "excluded"
 
@@ -120,6 +122,33 @@ def test_suspected_air_contamination(tmp_path):
     ]
     con = evaluate(tmp_path, rows)
     assert set(flagged(con, "suspected_air_contamination")) == {"FIRE", "DILUTED"}
+
+
+def test_air_contamination_seen_as_sample_saturation_far_above_spo2(tmp_path):
+    # Hypoxaemic patient (SpO2 75 %) whose syringe took in air: PaO2 82 mmHg -> 96.1 % on the curve (Severinghaus),
+    # 21 points above the pulse oximeter; 9 points is inside the 10-point discordance limit (common practice).
+    rows = [
+        record("FIRE", o2_device="venturi_mask", fio2=0.31, pao2_mmhg=82.0, sao2_pct=None, spo2_pct=75.0),
+        record("INSIDE", o2_device="venturi_mask", fio2=0.31, pao2_mmhg=82.0, sao2_pct=None, spo2_pct=88.0),
+    ]
+    con = evaluate(tmp_path, rows)
+    assert set(flagged(con, "suspected_air_contamination")) == {"FIRE"}
+
+
+def test_value_outside_physiological_range(tmp_path):
+    # Plausible adult ranges (domain notes section 11: PaO2 20-700, PaCO2 10-150 mmHg; Hb 3-25 g/dL common practice).
+    rows = [
+        record("HB_LOW", hb_g_dl=1.37),
+        record("HB_OK", hb_g_dl=3.0),
+        record("LACTATE", lactate_mmol_l=26.0),
+        record("PH", ph=7.95, hco3_mmol_l=None),
+    ]
+    con = evaluate(tmp_path, rows)
+    assert set(flagged(con, "value_outside_physiological_range")) == {"HB_LOW", "LACTATE", "PH"}
+    message = con.execute(
+        "select message from flags where sample_id = 'HB_LOW' and rule_id = 'value_outside_physiological_range'"
+    ).fetchall()[0][0]
+    assert message == "Hb 1.37 g/dL outside 3-25"
 
 
 def test_wrong_blood_in_tube_needs_a_jump_away_and_back(tmp_path):
@@ -150,23 +179,27 @@ def test_wrong_blood_in_tube_needs_a_jump_away_and_back(tmp_path):
     assert "Hb 10.5 g/dL against 14.0 g/dL 12 h earlier and 14.1 g/dL 12 h later" in message
 
 
+def test_wrong_blood_in_tube_on_a_patients_first_sample_needs_hb_and_na(tmp_path):
+    # Another patient's blood moves Hb and Na together (multi-analyte delta checks: Miller I 2015, Arch Pathol
+    # Lab Med, from memory); Hb alone may be bleeding or transfusion.
+    def sample(sid: str, hours: float, hb: float, na: float) -> dict:
+        t = T0 + timedelta(hours=hours)
+        return record(sid, collected_at=t, resulted_at=t + timedelta(minutes=5), hb_g_dl=hb, na_mmol_l=na)
+
+    con = evaluate(tmp_path, [sample("G1", 0, 10.0, 133), sample("G2", 12, 14.0, 140), sample("G3", 24, 14.2, 141)])
+    assert flagged(con, "wrong_blood_in_tube") == {"G1": "medium"}
+
+
 def test_wrong_blood_in_tube_on_sodium(tmp_path):
     # Na delta limit 8 mmol/L (from memory).
     def sample(sid: str, hours: float, na: float) -> dict:
         t = T0 + timedelta(hours=hours)
         return record(sid, collected_at=t, resulted_at=t + timedelta(minutes=5), na_mmol_l=na)
 
-    # N2 is 9 below both neighbours; N4 is 7.5 below N3 (inside the limit).
-    con = evaluate(
-        tmp_path,
-        [
-            sample("N1", 0, 140),
-            sample("N2", 6, 131),
-            sample("N3", 12, 140),
-            sample("N4", 18, 132.5),
-            sample("N5", 24, 139),
-        ],
-    )
+    # N2 is 9 below both neighbours (flagged); M2 is exactly 8 below its neighbours (inside the limit).
+    rows = [sample("N1", 0, 140), sample("N2", 6, 131), sample("N3", 12, 140), sample("N4", 18, 138)]
+    rows += [{**sample(f"M{i}", 6 * i, na), "patient_id": "PM"} for i, na in ((1, 140), (2, 132), (3, 140))]
+    con = evaluate(tmp_path, rows)
     assert set(flagged(con, "wrong_blood_in_tube")) == {"N2"}
 
 

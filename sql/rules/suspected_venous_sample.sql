@@ -1,5 +1,5 @@
 -- Labelled arterial, but PO2 or SO2 in the venous range while the pulse oximeter reads a
--- normal saturation, or one far above the sample's saturation.
+-- normal saturation, or the pulse oximeter reads far above the sample's saturation.
 select
     sample_id,
     null as severity,
@@ -10,5 +10,8 @@ select
 from rule_input
 where coalesce(sample_type, 'arterial') = 'arterial'
   and spo2_pct is not null
-  and (pao2_mmhg < $pao2_max_mmhg or (sao2_pct < $so2_max_pct and not coalesce(sao2_is_calculated, false)))
-  and (spo2_pct >= $spo2_min_pct or spo2_pct - arterial_saturation_pct >= $discordance_pct);
+  and (
+      ((pao2_mmhg < $pao2_max_mmhg or (sao2_pct < $so2_max_pct and not coalesce(sao2_is_calculated, false)))
+       and spo2_pct >= $spo2_min_pct)
+      or spo2_pct - arterial_saturation_pct >= $discordance_pct
+  );

@@ -1,7 +1,17 @@
--- Delta check on haemoglobin and sodium against the same patient's previous and next
--- samples within the window. A jump away and back is flagged; a lasting change is not.
--- Without a later sample, the one before the previous must agree with the previous, so
--- the sample after a wrong-blood sample (a jump back to normal) is not blamed.
+-- Delta check on haemoglobin and sodium against the same patient's neighbouring samples
+-- within the window (by collection time). A sample is out of line when:
+--   * with samples on both sides: it differs from both in the same direction, by more
+--     than the limit from one and more than half the limit from the other (a lasting
+--     change such as a transfusion moves the following samples too and is not flagged);
+--   * with earlier samples only: it differs from the previous one by more than the limit
+--     while the previous one agrees with the sample before it (so the sample that follows a
+--     wrong one, returning to the patient's level, is not blamed; two samples alone cannot
+--     say which is wrong, and the later one is flagged);
+--   * with later samples only (the patient's first sample): it differs from the next one
+--     by more than the limit in one analyte and by more than half the limit in the other,
+--     while the next two agree. Another patient's blood moves Hb and Na together; bleeding
+--     or transfusion moves Hb alone, so a lasting Hb change is not blamed on the first sample.
+-- Both-sided findings are high severity, one-sided medium.
 with ordered as (
     select
         sample_id,
@@ -10,58 +20,85 @@ with ordered as (
         hb_g_dl,
         na_mmol_l,
         lag(hb_g_dl) over w as hb_prev,
-        lead(hb_g_dl) over w as hb_next,
-        lag(na_mmol_l) over w as na_prev,
         lag(hb_g_dl, 2) over w as hb_prev2,
+        lead(hb_g_dl) over w as hb_next,
+        lead(hb_g_dl, 2) over w as hb_next2,
+        lag(na_mmol_l) over w as na_prev,
         lag(na_mmol_l, 2) over w as na_prev2,
-        epoch(collected_at - lag(collected_at, 2) over w) / 3600.0 as hours_since_prev2,
         lead(na_mmol_l) over w as na_next,
+        lead(na_mmol_l, 2) over w as na_next2,
         epoch(collected_at - lag(collected_at) over w) / 3600.0 as hours_since_prev,
-        epoch(lead(collected_at) over w - collected_at) / 3600.0 as hours_to_next
+        epoch(collected_at - lag(collected_at, 2) over w) / 3600.0 as hours_since_prev2,
+        epoch(lead(collected_at) over w - collected_at) / 3600.0 as hours_to_next,
+        epoch(lead(collected_at, 2) over w - collected_at) / 3600.0 as hours_to_next2
     from records
     where patient_key in (select patient_key from records join scope_samples using (sample_id))
       and (hb_g_dl is not null or na_mmol_l is not null)
     window w as (partition by patient_key order by collected_at, sample_id)
 ),
-deltas as (
+sides as (
     select
         *,
-        hours_since_prev <= $window_hours as has_prev,
-        hours_to_next <= $window_hours as has_next,
-        -- A jump against one neighbour: beyond the limit. Against both: beyond it on each side, same direction.
-        abs(hb_g_dl - hb_prev) > $hb_delta_g_dl as hb_jump_prev,
-        abs(hb_g_dl - hb_next) > $hb_delta_g_dl and sign(hb_g_dl - hb_next) = sign(hb_g_dl - hb_prev) as hb_jump_back,
-        abs(na_mmol_l - na_prev) > $na_delta_mmol_l as na_jump_prev,
-        abs(na_mmol_l - na_next) > $na_delta_mmol_l
-            and sign(na_mmol_l - na_next) = sign(na_mmol_l - na_prev) as na_jump_back,
-        -- the previous sample is itself out of line with the one before it
-        hours_since_prev2 <= $window_hours and abs(hb_prev - hb_prev2) > $hb_delta_g_dl as hb_prev_odd,
-        hours_since_prev2 <= $window_hours and abs(na_prev - na_prev2) > $na_delta_mmol_l as na_prev_odd
+        coalesce(hours_since_prev <= $window_hours, false) as has_prev,
+        coalesce(hours_to_next <= $window_hours, false) as has_next,
+        coalesce(hours_since_prev2 <= $window_hours, false) as has_prev2,
+        coalesce(hours_to_next2 <= $window_hours, false) as has_next2
     from ordered
 ),
 judged as (
     select
         *,
-        has_prev and coalesce(hb_jump_prev, false)
-            and (coalesce(hb_jump_back, false) or (not coalesce(has_next, false) and not coalesce(hb_prev_odd, false)))
-            as hb_flag,
-        has_prev and coalesce(na_jump_prev, false)
-            and (coalesce(na_jump_back, false) or (not coalesce(has_next, false) and not coalesce(na_prev_odd, false)))
-            as na_flag
-    from deltas
+        case
+            when has_prev and has_next then
+                sign(hb_g_dl - hb_prev) = sign(hb_g_dl - hb_next)
+                and least(abs(hb_g_dl - hb_prev), abs(hb_g_dl - hb_next)) > $hb_delta_g_dl / 2
+                and greatest(abs(hb_g_dl - hb_prev), abs(hb_g_dl - hb_next)) > $hb_delta_g_dl
+            when has_prev then
+                abs(hb_g_dl - hb_prev) > $hb_delta_g_dl
+                and not (has_prev2 and coalesce(abs(hb_prev - hb_prev2) > $hb_delta_g_dl, false))
+            when has_next then
+                abs(hb_g_dl - hb_next) > $hb_delta_g_dl
+                and abs(na_mmol_l - na_next) > $na_delta_mmol_l / 2
+                and has_next2 and abs(hb_next - hb_next2) <= $hb_delta_g_dl
+        end as hb_flag,
+        case
+            when has_prev and has_next then
+                sign(na_mmol_l - na_prev) = sign(na_mmol_l - na_next)
+                and least(abs(na_mmol_l - na_prev), abs(na_mmol_l - na_next)) > $na_delta_mmol_l / 2
+                and greatest(abs(na_mmol_l - na_prev), abs(na_mmol_l - na_next)) > $na_delta_mmol_l
+            when has_prev then
+                abs(na_mmol_l - na_prev) > $na_delta_mmol_l
+                and not (has_prev2 and coalesce(abs(na_prev - na_prev2) > $na_delta_mmol_l, false))
+            when has_next then
+                abs(na_mmol_l - na_next) > $na_delta_mmol_l
+                and abs(hb_g_dl - hb_next) > $hb_delta_g_dl / 2
+                and has_next2 and abs(na_next - na_next2) <= $na_delta_mmol_l
+        end as na_flag
+    from sides
+),
+described as (
+    select
+        *,
+        case when has_prev then printf(' against %s %.0f h earlier', '{}', hours_since_prev) else '' end as prev_words,
+        case when has_next then printf(' and %s %.0f h later', '{}', hours_to_next) else '' end as next_words
+    from judged
+    where coalesce(hb_flag, false) or coalesce(na_flag, false)
 )
 select
     sample_id,
-    case when coalesce(has_next, false) then 'high' else 'medium' end as severity,
-    trim(concat_ws('; ',
-        case when hb_flag then printf('Hb %.1f g/dL against %.1f g/dL %.0f h earlier%s', hb_g_dl, hb_prev,
-            hours_since_prev, case when has_next then printf(' and %.1f g/dL %.0f h later', hb_next, hours_to_next) else '' end) end,
-        case when na_flag then printf('Na %.0f mmol/L against %.0f mmol/L %.0f h earlier%s', na_mmol_l, na_prev,
-            hours_since_prev, case when has_next then printf(' and %.0f mmol/L %.0f h later', na_next, hours_to_next) else '' end) end
-    )) || ' in the same patient' as message,
+    case when has_prev and has_next then 'high' else 'medium' end as severity,
+    concat_ws('; ',
+        case when hb_flag then printf('Hb %.1f g/dL', hb_g_dl)
+            || replace(prev_words, '{}', printf('%.1f g/dL', hb_prev))
+            || replace(case when has_prev then next_words else replace(next_words, ' and ', ' against ') end,
+                       '{}', printf('%.1f g/dL', hb_next)) end,
+        case when na_flag then printf('Na %.0f mmol/L', na_mmol_l)
+            || replace(prev_words, '{}', printf('%.0f mmol/L', na_prev))
+            || replace(case when has_prev then next_words else replace(next_words, ' and ', ' against ') end,
+                       '{}', printf('%.0f mmol/L', na_next)) end
+    ) || ' in the same patient' as message,
     json_object('hb_g_dl', hb_g_dl, 'hb_previous', hb_prev, 'hb_next', hb_next, 'na_mmol_l', na_mmol_l,
                 'na_previous', na_prev, 'na_next', na_next, 'hours_since_previous', round(hours_since_prev, 1),
                 'hours_to_next', round(hours_to_next, 1)) as evidence
-from judged
-where (hb_flag or na_flag)
-  and sample_id in (select sample_id from scope_samples);
+from described
+where sample_id in (select sample_id from scope_samples);
