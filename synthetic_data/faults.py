@@ -46,8 +46,9 @@ PaCO2, pH, Hb or lactate outside plausible ranges) - for venous blood, air conta
 under-documented FiO2, pH transcription, wrong units and decimal slips. So air in a sample
 whose PO2 was already near 150 mmHg, a unit error whose value lands in range, or a pH one
 hundredth off are not visible. Wrong blood in tube is visible when the patient has another
-sample and the analytes differ from the patient's own by at least 2.0 g/dL Hb or 6 mmol/L Na
-(delta-check limits, common practice), or the record carries evidence. Late analysis (the
+sample within 72 h and the analytes differ from the patient's own by at least 2.0 g/dL Hb or
+8 mmol/L Na (delta-check window and limits from domain-methods.md section 8, from memory
+there), or the record carries evidence. Late analysis (the
 time stamps), an impossible charted FiO2 (the device table), duplicates, corrections and text
 results are always visible in the export itself.
 """
@@ -106,7 +107,8 @@ WBIT_ANALYTES = (
     "lactate_mmol_l",
 )
 WBIT_HB_DELTA_G_DL = 2.0
-WBIT_NA_DELTA_MMOL_L = 6.0
+WBIT_NA_DELTA_MMOL_L = 8.0
+WBIT_WINDOW_HOURS = 72.0
 TEXT_RESULTS = {"haemolysed": "k_mmol_l", "clotted": "pao2_mmhg", "see comment": "lactate_mmol_l"}
 
 GROUND_TRUTH_SCHEMA: dict[str, pl.DataType] = {
@@ -301,6 +303,7 @@ def evidence(con: duckdb.DuckDBPyConnection, records: pl.DataFrame) -> pl.DataFr
         "spo2_pct",
         "hb_g_dl",
         "lactate_mmol_l",
+        "temperature_c",
     ]
     out = run_query(con, "evidence.sql", {"records": records.select(cols)})
     return out.with_columns(pl.any_horizontal(EVIDENCE_COLUMNS).alias("any_evidence"))
@@ -340,13 +343,35 @@ def inject_faults(
     reported = reported.with_columns(
         pl.when(is_wbit).then(donor_values[c]).otherwise(pl.col(c)).alias(c) for c in WBIT_ANALYTES
     )
-    truth = _ground_truth(con, state[rows], clean, reported, assigned)
+    near = _nearest_other_sample_hours(
+        state, assigned.filter(pl.col("fault") == "wrong_blood_in_tube")["_row"]
+    )
+    context = state[rows].join(near, on="_row", how="left", maintain_order="left")
+    truth = _ground_truth(con, context, clean, reported, assigned)
     # put the faulted rows back in place (a scatter: only 'rows' change)
     index = pl.Series(rows)
     out = records.with_columns(
         records.get_column(c).scatter(index, reported.get_column(c)) for c in records.columns if c != "_row"
     )
     return out, truth
+
+
+def _nearest_other_sample_hours(state: pl.DataFrame, rows: pl.Series) -> pl.DataFrame:
+    """For the given samples: hours to the same patient's nearest other sample (NULL: none)."""
+    target = state[rows.to_numpy()].select("_row", "patient_idx", "collected_at")
+    others = state.join(target.select("patient_idx").unique(), on="patient_idx", how="semi").select(
+        pl.col("_row").alias("_other"), "patient_idx", pl.col("collected_at").alias("_other_at")
+    )
+    return (
+        target.join(others, on="patient_idx")
+        .filter(pl.col("_other") != pl.col("_row"))
+        .group_by("_row")
+        .agg(
+            ((pl.col("_other_at") - pl.col("collected_at")).abs().min().dt.total_seconds() / 3600.0).alias(
+                "near_h"
+            )
+        )
+    )
 
 
 def _ground_truth(
@@ -364,7 +389,7 @@ def _ground_truth(
             faulted.select(pl.all().name.prefix("a_")),
             faulted.select("fault_field", "value_before", "value_after"),
             evidence(con, faulted).select("any_evidence"),
-            state.select("true_device", "fio2_true", "baseline_hb", "baseline_na", "patient_samples"),
+            state.select("true_device", "fio2_true", "baseline_hb", "baseline_na", "near_h"),
         ],
         how="horizontal",
     )
@@ -437,7 +462,7 @@ def _ground_truth(
     # 3. visible to physics?
     hb_delta = (after("hb_g_dl") - pl.col("baseline_hb")).abs()
     na_delta = (after("na_mmol_l") - pl.col("baseline_na")).abs()
-    delta_seen = (pl.col("patient_samples") > 1) & (
+    delta_seen = (pl.col("near_h") <= WBIT_WINDOW_HOURS).fill_null(False) & (
         (hb_delta >= WBIT_HB_DELTA_G_DL) | (na_delta >= WBIT_NA_DELTA_MMOL_L)
     )
     visible = (

@@ -23,7 +23,8 @@ files beside this module (``synthetic_data/sql/``). The steps, per sample:
    s = min(0.85, (current lung-disease severity)^1.5 times U(0.5, 1.1)) the share lost to shunt and
    V/Q mismatch. PaO2 is held at least 3 mmHg below PAO2 (so it never exceeds
    ``alveolar_po2_max_mmhg``, the R = 1 bound) and, where PAO2 allows, at least 38 mmHg.
-5. **Pulse oximetry.** SpO2 = ``predicted_sao2_pct`` of the arterial blood, plus the oximeter's
+5. **Pulse oximetry.** SpO2 = ``predicted_sao2_pct`` of the arterial blood (shifted as in
+   step 7), plus the oximeter's
    error (mean +0.5, SD 1.5, clipped to -3.5..+4 points), rounded and capped at 100. It belongs
    to the patient, so it does not change when the sample is spoiled.
 6. **The syringe.** Arterial blood, or for samples really taken from a vein: PO2 38 +/- 6 mmHg
@@ -33,10 +34,10 @@ files beside this module (``synthetic_data/sql/``). The steps, per sample:
    within-patient noise: Hb SD 0.25 g/dL, Na SD 0.8 mmol/L), and calculates HCO3 with
    ``henderson_hasselbalch_hco3`` from the rounded pH and PCO2, and BE with
    ``base_excess_ecf_mmol_l``. SaO2 is measured by co-oximetry: ``predicted_sao2_pct(PO2, pH,
-   37, BE)`` plus co-oximeter error (SD 0.7, clipped at 2 points); on samples flagged
-   ``sao2_is_calculated`` (a configurable share) it is the curve value itself. The curve is read
-   at 37 C because PO2 and pH are reported at 37 C. Chloride follows from the patient's own
-   anion gap.
+   T, BE)`` (the curve shifted for pH, base excess and the patient's temperature T, as the
+   derive stage reads it) plus co-oximeter error (SD 0.7, clipped at 2 points); on samples
+   flagged ``sao2_is_calculated`` (a configurable share) it is the curve value itself. Chloride
+   follows from the patient's own anion gap.
 8. **Times.** Collected on a whole minute (a morning-round bump around 06:00 UTC), resulted
    2-28 minutes later (log-normal; point-of-care median 4 min, laboratory 11-12 min).
 
@@ -54,6 +55,7 @@ import polars as pl
 
 from pipeline.schema import FIELDS
 from pipeline.sql_files import install_macros
+from synthetic_data.hospital import LOW_FLOW_DEVICES
 
 SQL_DIR = Path(__file__).resolve().parent / "sql"
 
@@ -170,7 +172,14 @@ def true_state(con: duckdb.DuckDBPyConnection, draws: pl.DataFrame, altitude_m: 
         # documentation gaps (a missing device or FiO2 is not a fault)
         pl.when(pl.col("device_missing")).then(None).otherwise(pl.col("true_device")).alias("o2_device"),
         pl.when(pl.col("device_missing")).then(None).otherwise(pl.col("true_flow")).alias("o2_flow_l_min"),
-        pl.when(pl.col("fio2_missing")).then(None).otherwise(pl.col("fio2_charted")).alias("fio2"),
+        # a low-flow FiO2 is only an estimate from the device and flow: without the device it is not charted
+        pl.when(
+            pl.col("fio2_missing")
+            | (pl.col("device_missing") & pl.col("true_device").is_in(LOW_FLOW_DEVICES))
+        )
+        .then(None)
+        .otherwise(pl.col("fio2_charted"))
+        .alias("fio2"),
         # what is in the syringe: arterial blood, or venous blood when the sample really is venous
         pl.when(venous).then(pl.col("venous_po2")).otherwise(pl.col("pao2_true")).alias("blood_po2"),
         pl.when(venous).then(pl.col("venous_pco2")).otherwise(pl.col("paco2_true")).alias("blood_pco2"),
@@ -194,6 +203,7 @@ ANALYSER_INPUTS = (
     "u_k",
     "u_coox",
     "sao2_is_calculated",
+    "temperature_c",
 )
 
 REPORTED = (
