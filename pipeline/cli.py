@@ -125,8 +125,10 @@ def demo(rows: int, seed: int, workdir: Path, log_format: str) -> None:
     """
     from pipeline.config import load_config
     from pipeline.demo import prepare_demo
+    from pipeline.detection import detection_tables, format_report, read_truth
     from pipeline.log import Log
     from pipeline.run import run_pipeline
+    from pipeline.store import open_store
     from pipeline.summary import print_run_summary
 
     log = Log(log_format)
@@ -134,6 +136,13 @@ def demo(rows: int, seed: int, workdir: Path, log_format: str) -> None:
     config = load_config(config_path)
     result = run_pipeline(config, log, command="demo", create_key=True)
     print_run_summary(result, config)
+    con = open_store(config.store_path, read_only=True)
+    try:
+        by_fault, clean = detection_tables(con, read_truth(workdir / "exports" / "ground_truth.parquet"))
+    finally:
+        con.close()
+    click.echo("\nInjected faults and what caught them (demo ground truth):")
+    click.echo(format_report(by_fault, clean))
     sys.exit(result.exit_code)
 
 
@@ -215,6 +224,46 @@ def check_profile(profile_path: Path, export_files: tuple[Path, ...]) -> None:
             + (f"; absent optional columns: {', '.join(parsed.missing_optional)}" if parsed.missing_optional else "")
         )
     sys.exit(65 if failed else 0)
+
+
+@main.command("detection-report")
+@config_option
+@click.option(
+    "--truth",
+    type=click.Path(dir_okay=False, path_type=Path),
+    required=True,
+    help="Ground-truth file (Parquet or CSV) with sample_id, fault_type, physically_visible.",
+)
+@handle_errors
+def detection_report(config_path: Path, truth: Path) -> None:
+    """Compare the store's flags with a ground truth of injected faults.
+
+    For each fault type: how many were injected, how many are physically visible, how many
+    were caught (a data-quality flag, quarantine, or a merged duplicate), and the share of
+    clean records with a data-quality flag. Exits 1 when a fault type is caught in fewer
+    than 90 % of its visible cases or more than 2 % of clean records are flagged.
+
+    \b
+    Example:
+      abg-audit detection-report --config demo/site.toml --truth demo/exports/ground_truth.parquet
+    """
+    from pipeline.config import load_config
+    from pipeline.detection import MAX_CLEAN_FLAG_RATE, REQUIRED_CATCH_RATE, detection_tables, format_report, read_truth
+    from pipeline.errors import NoInputError
+    from pipeline.store import open_store
+
+    if not truth.exists():
+        raise NoInputError(f"ground-truth file {truth} not found")
+    config = load_config(config_path)
+    con = open_store(config.store_path, read_only=True)
+    try:
+        by_fault, clean = detection_tables(con, read_truth(truth))
+    finally:
+        con.close()
+    click.echo(format_report(by_fault, clean))
+    shares = [s for s in by_fault["caught_share"].to_list() if s is not None]
+    ok = all(s >= REQUIRED_CATCH_RATE for s in shares) and (clean["flag_share"][0] or 0) <= MAX_CLEAN_FLAG_RATE
+    sys.exit(0 if ok else 1)
 
 
 @main.command()

@@ -2,10 +2,11 @@
 
 Every stage speaks these names. A mapping profile maps a site's column headers onto
 them; ingestion converts each value into the canonical unit given here. Hard limits are
-the bounds outside which a number cannot be a measurement of a living patient in any
-unit the profile could declare (negative pressures, a pH of 70); such a value goes to
-quarantine with reason ``IMPLAUSIBLE``. Values that are possible but suspicious are
-left to the rules stage, which can explain them.
+the bounds outside which a number cannot be a measurement at all (a negative pressure,
+a pH of 70, a saturation of 140 %); such a value goes to quarantine with reason
+``IMPLAUSIBLE``. Values that are numbers a meter could show but no patient could have
+(a PaO2 of 845 mmHg, Hb 137 g/dL, 98.6 in a Celsius column) are loaded and left to the
+rules stage, which can explain them (decimal slip, other unit, physiological range).
 """
 
 from __future__ import annotations
@@ -71,38 +72,38 @@ OXYGEN_DEVICES = (
     "unknown",
 )
 
-# Hard limits are in the canonical unit and deliberately wide: they only catch values no
-# unit mix-up or slip could explain as a real measurement (common practice).
+# Hard limits are in the canonical unit and deliberately wide: physical bounds of the
+# quantity, not of physiology (common practice).
 FIELDS: tuple[Field, ...] = (
     Field("sample_id", Kind.TEXT, "The export's own sample or accession identifier.", required=True),
     Field("patient_id", Kind.TEXT, "Patient identifier (MRN); pseudonymised in every output."),
     Field("unit", Kind.TEXT, "Ward or location that ordered the sample."),
     Field("analyser_id", Kind.TEXT, "Analyser or source instrument, for patient-based QC."),
-    Field("age_years", Kind.NUMBER, "Age at sampling in years.", "age", 0, 125),
+    Field("age_years", Kind.NUMBER, "Age at sampling in years.", "age", 0, 130),
     Field("birth_date", Kind.DATE, "Date of birth, used when age is not exported."),
     Field("collected_at", Kind.TIMESTAMP, "Sample collection time, stored as UTC.", required=True),
     Field("resulted_at", Kind.TIMESTAMP, "Time the analyser produced the result, stored as UTC."),
     Field("sample_type", Kind.CODE, "arterial, venous, mixed_venous, capillary or unknown."),
     Field("o2_device", Kind.CODE, "Documented oxygen device (canonical code)."),
-    Field("o2_flow_l_min", Kind.NUMBER, "Documented oxygen flow.", "flow", 0, 80),
+    Field("o2_flow_l_min", Kind.NUMBER, "Documented oxygen flow.", "flow", 0, 100),
     Field("fio2", Kind.NUMBER, "Documented inspired oxygen fraction.", "fraction", 0, 1.0),
-    Field("barometric_pressure_mmhg", Kind.NUMBER, "Barometric pressure at the analyser.", "pressure", 150, 850),
-    Field("temperature_c", Kind.NUMBER, "Patient temperature.", "temperature", 15, 46),
-    Field("ph", Kind.NUMBER, "Arterial pH at 37 °C.", "ph", 6.0, 8.5),
-    Field("paco2_mmhg", Kind.NUMBER, "PaCO2 at 37 °C.", "pressure", 0.5, 300),
-    Field("pao2_mmhg", Kind.NUMBER, "PaO2 at 37 °C.", "pressure", 0.5, 800),
-    Field("hco3_mmol_l", Kind.NUMBER, "Bicarbonate.", "concentration", 0.5, 80),
-    Field("base_excess_mmol_l", Kind.NUMBER, "Base excess (may be negative).", "concentration", -50, 50),
+    Field("barometric_pressure_mmhg", Kind.NUMBER, "Barometric pressure at the analyser.", "pressure", 100, 1100),
+    Field("temperature_c", Kind.NUMBER, "Patient temperature.", "temperature", 0, 110),
+    Field("ph", Kind.NUMBER, "Arterial pH at 37 °C.", "ph", 0, 14),
+    Field("paco2_mmhg", Kind.NUMBER, "PaCO2 at 37 °C.", "pressure", 0, 1000),
+    Field("pao2_mmhg", Kind.NUMBER, "PaO2 at 37 °C.", "pressure", 0, 5000),
+    Field("hco3_mmol_l", Kind.NUMBER, "Bicarbonate.", "concentration", 0, 200),
+    Field("base_excess_mmol_l", Kind.NUMBER, "Base excess (may be negative).", "concentration", -100, 100),
     Field("sao2_pct", Kind.NUMBER, "Arterial oxygen saturation, co-oximetry.", "saturation", 0, 100),
     Field("sao2_is_calculated", Kind.BOOLEAN, "True when SaO2 was calculated from PO2, not measured."),
     Field("spo2_pct", Kind.NUMBER, "Pulse oximetry saturation near the time of sampling.", "saturation", 0, 100),
-    Field("hb_g_dl", Kind.NUMBER, "Haemoglobin.", "haemoglobin", 0.5, 30),
-    Field("na_mmol_l", Kind.NUMBER, "Sodium.", "concentration", 50, 250),
-    Field("k_mmol_l", Kind.NUMBER, "Potassium.", "concentration", 0.5, 20),
-    Field("cl_mmol_l", Kind.NUMBER, "Chloride.", "concentration", 30, 200),
-    Field("lactate_mmol_l", Kind.NUMBER, "Lactate.", "lactate", 0, 50),
-    Field("mean_airway_pressure_cmh2o", Kind.NUMBER, "Mean airway pressure (ventilated).", "airway_pressure", 0, 80),
-    Field("peep_cmh2o", Kind.NUMBER, "PEEP or CPAP level.", "airway_pressure", 0, 50),
+    Field("hb_g_dl", Kind.NUMBER, "Haemoglobin.", "haemoglobin", 0, 100),
+    Field("na_mmol_l", Kind.NUMBER, "Sodium.", "concentration", 0, 1000),
+    Field("k_mmol_l", Kind.NUMBER, "Potassium.", "concentration", 0, 100),
+    Field("cl_mmol_l", Kind.NUMBER, "Chloride.", "concentration", 0, 1000),
+    Field("lactate_mmol_l", Kind.NUMBER, "Lactate.", "lactate", 0, 300),
+    Field("mean_airway_pressure_cmh2o", Kind.NUMBER, "Mean airway pressure (ventilated).", "airway_pressure", 0, 100),
+    Field("peep_cmh2o", Kind.NUMBER, "PEEP or CPAP level.", "airway_pressure", 0, 60),
     Field("hypercapnic_risk", Kind.BOOLEAN, "Patient documented at risk of hypercapnic respiratory failure."),
 )
 

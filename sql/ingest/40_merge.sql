@@ -49,6 +49,15 @@ select
 from stage_merge
 where merge_outcome in ('new', 'correction');
 
+insert into merged_duplicates
+select sample_id, $file_sha256, source_row, 'row in the same file', $run_id
+from stage_checked
+where outcome = 'duplicate'
+union all
+select sample_id, $file_sha256, source_row, 'record already held', $run_id
+from stage_merge
+where merge_outcome = 'duplicate';
+
 insert into record_value_notes by name
 select m.sample_id, $file_sha256 as file_sha256, n.field, n.comparator, n.result_status, n.original_text
 from stage_notes as n

@@ -18,7 +18,10 @@ with checks as (
             case when na_mmol_l < $na_min_mmol_l or na_mmol_l > $na_max_mmol_l
                  then printf('Na %.0f mmol/L outside %.0f-%.0f', na_mmol_l, $na_min_mmol_l, $na_max_mmol_l) end,
             case when k_mmol_l < $k_min_mmol_l or k_mmol_l > $k_max_mmol_l
-                 then printf('K %.1f mmol/L outside %.1f-%.1f', k_mmol_l, $k_min_mmol_l, $k_max_mmol_l) end
+                 then printf('K %.1f mmol/L outside %.1f-%.1f', k_mmol_l, $k_min_mmol_l, $k_max_mmol_l) end,
+            case when temperature_c < $temperature_min_c or temperature_c > $temperature_max_c
+                 then printf('temperature %.1f C outside %.0f-%.0f (a Fahrenheit value?)', temperature_c,
+                             $temperature_min_c, $temperature_max_c) end
         ], lambda x: x is not null) as problems
     from rule_input
 )

@@ -62,6 +62,15 @@ create table if not exists quarantine (
     original_text varchar               -- the row's cells as JSON (source header -> text)
 );
 
+-- Input rows merged as duplicates of a record (identical values): counted, not stored twice.
+create table if not exists merged_duplicates (
+    sample_id varchar,
+    file_sha256 varchar,
+    source_row bigint,
+    duplicate_of varchar,               -- 'row in the same file' or 'record already held'
+    run_id varchar
+);
+
 -- Qualified values (">600") and text results ("haemolysed") kept beside the record.
 create table if not exists record_value_notes (
     sample_id varchar,

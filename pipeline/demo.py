@@ -1,0 +1,69 @@
+"""The demo: invented exports from the demo generator, a site configuration, one run.
+
+Everything in the demo folder describes the invented Saltmarsh Valley Hospital; no real
+patient is in it.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from pipeline.log import Log
+from pipeline.sql_files import SQL_DIR
+
+PROFILES_DIR = SQL_DIR.parent / "profiles"
+SITE_TEMPLATE = """\
+# Site configuration written by `abg-audit demo` for the invented Saltmarsh Valley Hospital.
+[site]
+name = "Saltmarsh Valley Hospital (invented demo data)"
+altitude_m = {altitude_m}
+
+[store]
+path = "store/abg_audit.duckdb"
+keep_patient_id = true
+
+[output]
+folder = "output"
+
+[privacy]
+key_file = "store/pseudonym.key"
+small_cell_threshold = 11
+
+[[inputs]]
+path = "exports/us_style"
+profile = "{profiles}/demo_us_style.toml"
+pattern = "*.csv"
+
+[[inputs]]
+path = "exports/eu_style"
+profile = "{profiles}/demo_eu_style.toml"
+pattern = "*.csv"
+
+[[inputs]]
+path = "exports/parquet"
+profile = "{profiles}/demo_parquet.toml"
+pattern = "*.parquet"
+"""
+
+
+def prepare_demo(workdir: Path, *, rows: int, seed: int, log: Log) -> Path:
+    """Generate the demo exports (once per rows/seed) and write the site configuration; return its path."""
+    from synthetic_data import generate
+    from synthetic_data.hospital import SITE_ALTITUDE_M
+    from synthetic_data.writers import write_exports
+
+    workdir.mkdir(parents=True, exist_ok=True)
+    exports = workdir / "exports"
+    marker = exports / f".generated-{rows}-{seed}"
+    if not marker.exists():
+        log.info(f"generating {rows} invented samples (seed {seed}) into {exports}")
+        canonical, truth = generate(rows, seed)
+        write_exports(canonical, truth, exports, provenance={"rows": rows, "seed": seed})
+        marker.touch()
+    else:
+        log.info(f"demo exports for {rows} samples (seed {seed}) already in {exports}")
+    config = workdir / "site.toml"
+    config.write_text(
+        SITE_TEMPLATE.format(altitude_m=SITE_ALTITUDE_M, profiles=PROFILES_DIR.as_posix()), encoding="utf-8"
+    )
+    return config
