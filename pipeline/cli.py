@@ -267,6 +267,43 @@ def detection_report(config_path: Path, truth: Path) -> None:
 
 
 @main.command()
+@click.option(
+    "--config",
+    "config_path",
+    type=click.Path(dir_okay=False, path_type=Path),
+    help="Show the parameters in effect for this site (its [thresholds] overrides applied).",
+)
+@click.option(
+    "--kind",
+    type=click.Choice(["data_quality", "documentation", "clinical", "analyser_qc"]),
+    help="Only rules of this kind.",
+)
+@handle_errors
+def rules(config_path: Path | None, kind: str | None) -> None:
+    """Show the rule catalogue: every check, its kind, severity, rationale, source and parameters.
+
+    \b
+    Example:
+      abg-audit rules --kind data_quality
+    """
+    from pipeline.config import load_config
+    from pipeline.rules import load_catalogue
+
+    overrides = load_config(config_path).thresholds if config_path else None
+    catalogue = load_catalogue(overrides)
+    click.echo(f"Rule catalogue version {catalogue.version}")
+    for rule in catalogue.rules:
+        if kind and rule.kind != kind:
+            continue
+        excludes = "; excludes the record from oxygenation statistics" if rule.excludes_from_oxygenation else ""
+        click.echo(f"\n{rule.id}  [{rule.kind}, {rule.severity}{excludes}]\n  {rule.title}")
+        click.echo(f"  why: {rule.rationale}")
+        click.echo(f"  source: {rule.reference}")
+        if rule.parameters:
+            click.echo("  parameters: " + ", ".join(f"{k} = {v}" for k, v in rule.parameters.items()))
+
+
+@main.command()
 def fields() -> None:
     """Print the canonical record: every field, its type and canonical unit."""
     from pipeline.schema import FIELDS
