@@ -174,7 +174,7 @@ def test_wrong_blood_in_tube_needs_a_jump_away_and_back(tmp_path):
         sample("E2", "PE", 100, 10.0),  # outside the 72 h window
     ]
     con = evaluate(tmp_path, rows)
-    assert flagged(con, "wrong_blood_in_tube") == {"A2": "high", "D2": "medium"}
+    assert flagged(con, "wrong_blood_in_tube") == {"A2": "high", "D1": "medium", "D2": "medium"}
     message = con.execute("select message from flags where sample_id = 'A2'").fetchall()[0][0]
     assert "Hb 10.5 g/dL against 14.0 g/dL 12 h earlier and 14.1 g/dL 12 h later" in message
 

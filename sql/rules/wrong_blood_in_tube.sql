@@ -5,8 +5,9 @@
 --     change such as a transfusion moves the following samples too and is not flagged);
 --   * with earlier samples only: it differs from the previous one by more than the limit
 --     while the previous one agrees with the sample before it (so the sample that follows a
---     wrong one, returning to the patient's level, is not blamed; two samples alone cannot
---     say which is wrong, and the later one is flagged);
+--     wrong one, returning to the patient's level, is not blamed);
+--   * a pair (the patient's only two samples within the window): both are flagged, since
+--     nothing says which of the two is the wrong one;
 --   * with later samples only (the patient's first sample): it differs from the next one
 --     by more than the limit in one analyte and by more than half the limit in the other,
 --     while the next two agree. Another patient's blood moves Hb and Na together; bleeding
@@ -56,10 +57,12 @@ judged as (
             when has_prev then
                 abs(hb_g_dl - hb_prev) > $hb_delta_g_dl
                 and not (has_prev2 and coalesce(abs(hb_prev - hb_prev2) > $hb_delta_g_dl, false))
+            when has_next and not has_next2 then
+                abs(hb_g_dl - hb_next) > $hb_delta_g_dl
             when has_next then
                 abs(hb_g_dl - hb_next) > $hb_delta_g_dl
                 and abs(na_mmol_l - na_next) > $na_delta_mmol_l / 2
-                and has_next2 and abs(hb_next - hb_next2) <= $hb_delta_g_dl
+                and abs(hb_next - hb_next2) <= $hb_delta_g_dl
         end as hb_flag,
         case
             when has_prev and has_next then
@@ -69,10 +72,12 @@ judged as (
             when has_prev then
                 abs(na_mmol_l - na_prev) > $na_delta_mmol_l
                 and not (has_prev2 and coalesce(abs(na_prev - na_prev2) > $na_delta_mmol_l, false))
+            when has_next and not has_next2 then
+                abs(na_mmol_l - na_next) > $na_delta_mmol_l
             when has_next then
                 abs(na_mmol_l - na_next) > $na_delta_mmol_l
                 and abs(hb_g_dl - hb_next) > $hb_delta_g_dl / 2
-                and has_next2 and abs(na_next - na_next2) <= $na_delta_mmol_l
+                and abs(na_next - na_next2) <= $na_delta_mmol_l
         end as na_flag
     from sides
 ),
@@ -96,7 +101,9 @@ select
             || replace(prev_words, '{}', printf('%.0f mmol/L', na_prev))
             || replace(case when has_prev then next_words else replace(next_words, ' and ', ' against ') end,
                        '{}', printf('%.0f mmol/L', na_next)) end
-    ) || ' in the same patient' as message,
+    ) || ' in the same patient'
+      || case when not has_prev and has_next and not has_next2
+              then ' (only two samples: either may be from another patient)' else '' end as message,
     json_object('hb_g_dl', hb_g_dl, 'hb_previous', hb_prev, 'hb_next', hb_next, 'na_mmol_l', na_mmol_l,
                 'na_previous', na_prev, 'na_next', na_next, 'hours_since_previous', round(hours_since_prev, 1),
                 'hours_to_next', round(hours_to_next, 1)) as evidence
