@@ -137,8 +137,8 @@ def main(argv: list[str] | None = None) -> int:
             provenance={
                 "seed": args.seed,
                 "days": args.days,
-                "start": args.start_date.isoformat(),
-                "fault_rate": sum(rates.values()),
+                "from": args.start_date.isoformat(),
+                "total fault rate": round(sum(rates.values()), 4),
             },
         )
     except OSError as err:

@@ -59,7 +59,7 @@ import duckdb
 import numpy as np
 import polars as pl
 
-from synthetic_data.forward_model import analyser_report, assemble_records, run_query
+from synthetic_data.forward_model import REPORTED, analyser_report, assemble_records, run_query
 
 DEFAULT_FAULT_RATES: dict[str, float] = {
     "venous_as_arterial": 0.010,
@@ -106,6 +106,15 @@ WBIT_ANALYTES = (
     "cl_mmol_l",
     "lactate_mmol_l",
 )
+FAULTED_COLUMNS = (
+    *REPORTED,
+    "sao2_is_calculated",
+    "o2_device",
+    "o2_flow_l_min",
+    "fio2",
+    "resulted_at",
+)
+"""The only canonical columns a fault can change (the rest of a faulted record stays as it was)."""
 WBIT_HB_DELTA_G_DL = 2.0
 WBIT_NA_DELTA_MMOL_L = 8.0
 WBIT_WINDOW_HOURS = 72.0
@@ -328,7 +337,8 @@ def inject_faults(
     clean = records[rows]
 
     # faults in the syringe and the chart; the analyser measures again
-    faulty = state[rows].hstack(assigned.drop("_row"))
+    chosen = state[rows]
+    faulty = chosen.hstack(assigned.drop("_row"))
     faulty = run_query(con, "fault_state.sql", {"faulty": faulty})
     reported = assemble_records(faulty, analyser_report(con, faulty))
 
@@ -338,7 +348,7 @@ def inject_faults(
 
     # wrong blood in tube: every analyte from the donor's clean record
     donors = assigned["donor_row"].fill_null(0).to_numpy()
-    donor_values = records[donors].select(WBIT_ANALYTES)
+    donor_values = records.select(WBIT_ANALYTES)[donors]
     is_wbit = pl.col("fault") == "wrong_blood_in_tube"
     reported = reported.with_columns(
         pl.when(is_wbit).then(donor_values[c]).otherwise(pl.col(c)).alias(c) for c in WBIT_ANALYTES
@@ -346,20 +356,25 @@ def inject_faults(
     near = _nearest_other_sample_hours(
         state, assigned.filter(pl.col("fault") == "wrong_blood_in_tube")["_row"]
     )
-    context = state[rows].join(near, on="_row", how="left", maintain_order="left")
+    context = chosen.join(near, on="_row", how="left", maintain_order="left")
     truth = _ground_truth(con, context, clean, reported, assigned)
     # put the faulted rows back in place (a scatter: only 'rows' change)
+    # put the faulted values back in place: a scatter of the few changed rows into the columns faults touch
+    untouched = [c for c in records.columns if c not in FAULTED_COLUMNS]
+    if not reported.select(untouched).equals(clean.select(untouched)):
+        raise RuntimeError("a fault changed a column outside FAULTED_COLUMNS")
     index = pl.Series(rows)
     out = records.with_columns(
-        records.get_column(c).scatter(index, reported.get_column(c)) for c in records.columns if c != "_row"
+        records.get_column(c).scatter(index, reported.get_column(c)) for c in FAULTED_COLUMNS
     )
     return out, truth
 
 
 def _nearest_other_sample_hours(state: pl.DataFrame, rows: pl.Series) -> pl.DataFrame:
     """For the given samples: hours to the same patient's nearest other sample (NULL: none)."""
-    target = state[rows.to_numpy()].select("_row", "patient_idx", "collected_at")
-    others = state.join(target.select("patient_idx").unique(), on="patient_idx", how="semi").select(
+    times = state.select("_row", "patient_idx", "collected_at")
+    target = times[rows.to_numpy()]
+    others = times.join(target.select("patient_idx").unique(), on="patient_idx", how="semi").select(
         pl.col("_row").alias("_other"), "patient_idx", pl.col("collected_at").alias("_other_at")
     )
     return (

@@ -100,12 +100,7 @@ def physiology_connection() -> duckdb.DuckDBPyConnection:
         install_macros(con)
     else:
         con = connect()
-    present = {
-        row[0]
-        for row in con.execute(
-            "SELECT DISTINCT function_name FROM duckdb_functions() WHERE function_type = 'macro'"
-        ).fetchall()
-    }
+    present = {row[0] for row in con.execute(read_sql("installed_macros.sql")).fetchall()}
     missing = [m for m in REQUIRED_MACROS if m not in present]
     if missing:
         raise RuntimeError(

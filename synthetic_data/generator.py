@@ -61,8 +61,8 @@ def generate(
     """Invent ``rows`` blood gas records from ``days`` days starting ``start_date``.
 
     Returns ``(canonical, ground_truth)``: the records with exactly the canonical columns of
-    ``pipeline.schema.FIELDS`` in canonical units (UTC times without a zone), sorted by
-    collection time, and one ground-truth row per faulted sample (``faults.py``). The same
+    ``pipeline.schema.FIELDS`` in canonical units (UTC times without a zone), one patient's
+    samples next to each other, and one ground-truth row per faulted sample (``faults.py``). The same
     arguments always give the same data. ``fault_rates`` maps fault types to shares of all
     samples (missing types: 0; ``None``: ``DEFAULT_FAULT_RATES``).
     """

@@ -14,7 +14,7 @@ over units, devices or export sources (a handful each), never over records.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from datetime import date, datetime
 
 import numpy as np
@@ -89,7 +89,6 @@ class Unit:
     mild_devices: dict[str, float]
     severe_devices: dict[str, float]
     ventilated_paco2: bool = False
-    extra: dict[str, float] = field(default_factory=dict)
 
 
 UNITS: tuple[Unit, ...] = (

@@ -267,7 +267,7 @@ Everything in this folder is invented by the demo-data generator (python -m synt
 {site} does not exist; its units, analysers, patients, identifiers, dates and results
 are made up. Nothing comes from a real patient or a real record.
 
-Generated: {rows} records, seed {seed}, {days} days from {start}, fault rate {fault_rate:.4f}.
+Generated: {generated}.
 
 us_style/     main laboratory, US-style CSV (profiles/demo_us_style.toml)
 eu_style/     critical-care point-of-care analysers, European-style CSV (profiles/demo_eu_style.toml)
@@ -278,7 +278,8 @@ ground_truth.parquet / .csv
               value_before / value_after (canonical units), cell_text, resend_delay_days.
 
 Files are named by the local date on which results were produced. A duplicate or a corrected
-re-send appears again in a later file.
+re-send appears again in a later file. Times in the CSV files are local wall-clock times, as
+real exports have them: in the hour the clocks go back, a local time can stand for two moments.
 """
 
 
@@ -307,7 +308,8 @@ def write_exports(
         con.close()
     ground_truth.write_parquet(out_dir / "ground_truth.parquet")
     ground_truth.write_csv(out_dir / "ground_truth.csv")
-    info = {"rows": canonical.height, "seed": "?", "days": "?", "start": "?", "fault_rate": float("nan")}
+    info: dict[str, object] = {"records": canonical.height, "with a fault": ground_truth.height}
     info.update(provenance or {})
-    (out_dir / "README.txt").write_text(README.format(site=SITE_NAME, **info), encoding="utf-8")
+    generated = ", ".join(f"{key} {value}" for key, value in info.items())
+    (out_dir / "README.txt").write_text(README.format(site=SITE_NAME, generated=generated), encoding="utf-8")
     return written
