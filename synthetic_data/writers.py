@@ -231,7 +231,8 @@ def _write_source(
 ) -> list[Path]:
     path = profile_path(source, profiles_dir)
     profile = load_profile(path)
-    rows = _export_rows(_to_profile_units(con, rows, profile), truth, profile.timezone)
+    # re-sent copies and first-sent values are canonical, so they are laid out before the unit conversion
+    rows = _to_profile_units(con, _export_rows(rows, truth, profile.timezone), profile)
     folder = out_dir / source
     folder.mkdir(parents=True, exist_ok=True)
     if profile.format == "parquet":

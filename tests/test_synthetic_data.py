@@ -560,6 +560,40 @@ def test_ground_truth_keys_are_in_the_exports(exported: tuple[Path, pl.DataFrame
     assert "invented" in (out / "README.txt").read_text(encoding="utf-8")
 
 
+def test_a_correction_is_first_written_with_its_first_sent_value(
+    con: duckdb.DuckDBPyConnection, exported: tuple[Path, pl.DataFrame, pl.DataFrame]
+) -> None:
+    out, _, truth = exported
+    to_canonical = {
+        "pao2_mmhg": "pressure_to_mmhg",
+        "fio2": "fio2_to_fraction",
+        "temperature_c": "temperature_to_c",
+    }
+    # the rounding of each printed value, in canonical units
+    tolerance = {"pao2_mmhg": 0.05, "fio2": 0.0051, "temperature_c": 0.06}
+    checked = 0
+    for source in ("us_style", "eu_style"):
+        profile = load_profile(PROFILES_DIR / f"demo_{source}.toml")
+        copies: dict[str, list[dict[str, str]]] = {}
+        for path in sorted((out / source).glob("*.csv")):  # file names sort by date
+            header, rows = read_csv_rows(path, f"demo_{source}")
+            for row in rows:
+                copies.setdefault(row[0], []).append(dict(zip(header, row, strict=True)))
+        for fix in truth.filter(pl.col("fault_type") == "corrected_resend").iter_rows(named=True):
+            if fix["sample_id"] not in copies:
+                continue
+            first, second = copies[fix["sample_id"]]
+            name = fix["field"]
+            for cell, expected in ((first, fix["value_before"]), (second, fix["value_after"])):
+                text = cell[profile.columns[name]].replace(",", ".")
+                value = con.execute(
+                    f"SELECT {to_canonical[name]}(?, ?)", [float(text), profile.unit_of(name)]
+                ).fetchall()[0][0]
+                assert value == pytest.approx(expected, abs=tolerance[name]), (source, fix)
+            checked += 1
+    assert checked >= 20
+
+
 def test_parquet_export_has_canonical_names_units_and_utc(
     exported: tuple[Path, pl.DataFrame, pl.DataFrame],
 ) -> None:
