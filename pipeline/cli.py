@@ -96,6 +96,43 @@ def run(config_path: Path, store: Path | None, output: Path | None, log_format: 
 
 
 @main.command(epilog=EXIT_CODES_HELP)
+@config_option
+@store_option
+@output_option
+@click.option(
+    "--period",
+    type=click.Choice(["month", "week"]),
+    help="Reporting period of the audit tables (overrides [audit] period of the configuration).",
+)
+@log_format_option
+@handle_errors
+def report(config_path: Path, store: Path | None, output: Path | None, period: str | None, log_format: str) -> None:
+    """Rebuild the audit tables and every output from the store, loading nothing.
+
+    Writes the aggregate tables (Parquet, CSV), the Excel workbook and the HTML report to
+    the output folder, and the review worklist to its restricted subfolder.
+
+    \b
+    Example:
+      abg-audit report --config site.toml --period week
+    """
+    import dataclasses
+
+    from pipeline.audit_settings import DEFAULT_HISTORY
+    from pipeline.config import load_config
+    from pipeline.log import Log
+    from pipeline.report import REPORT_NAME, rebuild_outputs
+
+    config = load_config(config_path, store=store, output=output)
+    if period and period != config.audit.period:
+        audit = dataclasses.replace(config.audit, period=period, history_periods=DEFAULT_HISTORY[period])
+        config = dataclasses.replace(config, audit=audit)
+    written = rebuild_outputs(config, Log(log_format))
+    click.echo(f"{len(written)} files written; report: {config.output_folder / REPORT_NAME}")
+    click.echo("  Audit aid only, not a diagnostic device; thresholds follow local policy and clinical judgement.")
+
+
+@main.command(epilog=EXIT_CODES_HELP)
 @click.option(
     "--rows",
     type=click.IntRange(100, 10_000_000),

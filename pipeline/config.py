@@ -8,6 +8,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from pipeline.audit_settings import AuditSettings, parse_audit_settings
 from pipeline.errors import ConfigError
 from pipeline.profile import Profile, load_profile
 
@@ -37,6 +38,7 @@ class SiteConfig:
     keep_patient_id: bool = True
     small_cell_threshold: int = 11
     thresholds: dict[str, Any] = field(default_factory=dict)
+    audit: AuditSettings = field(default_factory=AuditSettings)
     sha256: str = ""
 
 
@@ -102,5 +104,6 @@ def load_config(path: Path | str, *, store: Path | None = None, output: Path | N
         keep_patient_id=bool(store_section.get("keep_patient_id", True)),
         small_cell_threshold=threshold,
         thresholds=dict(raw.get("thresholds", {})),
+        audit=parse_audit_settings(raw.get("audit", {}), path),
         sha256=hashlib.sha256(data).hexdigest(),
     )

@@ -21,12 +21,14 @@ import duckdb
 import polars as pl
 
 from pipeline import __version__
+from pipeline.audit import build_audit
 from pipeline.config import SiteConfig
 from pipeline.derive import derive
 from pipeline.errors import NoInputError, StoreBusyError
 from pipeline.ingest.load import FileOutcome, ingest_file
 from pipeline.log import Log
 from pipeline.pseudonym import load_key
+from pipeline.report import write_outputs
 from pipeline.rules import Catalogue, evaluate_rules, load_catalogue
 from pipeline.sql_files import run_sql
 from pipeline.store import open_store
@@ -190,6 +192,8 @@ def run_pipeline(
                     _record_file_event(con, result.run_id, outcome)
                     _log_file(log, outcome, number, len(files))
             analyse(con, config, catalogue, result, log, rebuild=rebuild)
+            build_audit(con, config, catalogue, result.run_id)
+            write_outputs(con, config, result.run_id, log)
             if any(f.outcome == "rejected" for f in result.files):
                 result.exit_code = EXIT_DATA_ERROR
             _record_run_end(con, result, time.monotonic() - started)

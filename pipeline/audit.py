@@ -1,0 +1,128 @@
+"""The audit stage: unit x period tables, control charts, funnel plots and the review worklist.
+
+Every table is built by a SQL file in ``sql/audit/`` (one relation per file) inside one
+transaction, so analysts reading the store see either the previous night's tables or the
+new ones, never a mix. Counts pass through ``audit_cell``, where small counts are hidden
+(primary suppression) and then, step by step, one more cell in every line that would let
+a hidden count be recovered from a total (complementary suppression), before any
+published table reads them.
+"""
+
+from __future__ import annotations
+
+import duckdb
+
+from pipeline.config import SiteConfig
+from pipeline.errors import StorageError
+from pipeline.rules import Catalogue, store_catalogue
+from pipeline.sql_files import read_sql, run_sql
+
+# Build order; each file creates one relation (12_... is the repeated suppression step).
+_WORK_FILES = (
+    "audit/00_audit_sample.sql",
+    "audit/05_audit_measure.sql",
+    "audit/06_audit_partition.sql",
+    "audit/07_audit_pair.sql",
+    "audit/10_audit_cell.sql",
+    "audit/11_audit_line.sql",
+)
+_STEP_FILE = "audit/12_audit_complementary_step.sql"
+_PUBLISH_FILES = (
+    "audit/13_audit_period.sql",
+    "audit/20_audit_volume.sql",
+    "audit/21_audit_rates.sql",
+    "audit/22_audit_pf_bands.sql",
+    "audit/23_audit_flag_rates.sql",
+    "audit/30_audit_control_chart.sql",
+    "audit/40_audit_funnel.sql",
+    "audit/41_audit_funnel_curve.sql",
+    "audit/50_review_worklist.sql",
+    "audit/60_audit_analyser_qc.sql",
+    "audit/70_audit_run_reconciliation.sql",
+)
+_TEMP_TABLES = (
+    "audit_sample",
+    "audit_measure",
+    "audit_partition",
+    "audit_pair",
+    "audit_cell",
+    "audit_line",
+    "audit_period",
+)
+
+# Aggregate tables fit for people without access to row-level data (small cells suppressed).
+PUBLISHED_TABLES = (
+    "audit_volume",
+    "audit_rates",
+    "audit_pf_bands",
+    "audit_flag_rates",
+    "audit_control_chart",
+    "audit_funnel",
+    "audit_funnel_curve",
+    "audit_analyser_qc",
+    "audit_run_reconciliation",
+    "rule_catalogue",
+)
+# Row-level tables for the laboratory only: pseudonymised, but with accession numbers.
+RESTRICTED_TABLES = ("review_worklist",)
+_NEEDED = ("records", "derived", "flags", "audit_status", "analyser_qc", "file_events")
+MAX_SUPPRESSION_STEPS = 1000
+
+
+def audit_parameters(config: SiteConfig, catalogue: Catalogue, run_id: str) -> dict[str, object]:
+    """The named parameters of the ``sql/audit`` files."""
+    settings = config.audit
+    return {
+        "period": settings.period,
+        "history_periods": settings.history_periods,
+        "complete_periods_only": settings.complete_periods_only,
+        "k": config.small_cell_threshold,
+        "sigma": settings.sigma,
+        "shift_run": settings.shift_run,
+        "trend_run": settings.trend_run,
+        "chart_limits": settings.chart_limits,
+        "run_id": run_id,
+        "hypoxaemia_pao2_mmhg": catalogue.derive["hypoxaemia_pao2_mmhg"],
+        "hypoxaemia_sat_pct": catalogue.derive["hypoxaemia_sat_pct"],
+        "hyperoxaemia_pao2_mmhg": catalogue.derive["hyperoxaemia_pao2_mmhg"],
+    }
+
+
+def _existing_tables(con: duckdb.DuckDBPyConnection) -> set[str]:
+    rows = con.execute("select table_name from information_schema.tables where table_schema = 'main'").fetchall()
+    return {r[0] for r in rows}
+
+
+def suppress_complementary(con: duckdb.DuckDBPyConnection) -> int:
+    """Repeat the complementary step until no line has exactly one hidden cell; return the steps taken."""
+    statement = con.extract_statements(read_sql(_STEP_FILE))[0]
+    for step in range(1, MAX_SUPPRESSION_STEPS + 1):
+        changed = con.execute(statement.query).fetchall()[0][0]
+        if changed == 0:
+            return step
+    raise RuntimeError(f"complementary suppression did not settle in {MAX_SUPPRESSION_STEPS} steps")
+
+
+def build_audit(con: duckdb.DuckDBPyConnection, config: SiteConfig, catalogue: Catalogue, run_id: str) -> None:
+    """Rebuild every audit table from the store in one transaction (the new tables replace the old at commit)."""
+    missing = [t for t in _NEEDED if t not in _existing_tables(con)]
+    if missing:
+        raise StorageError(
+            f"the store has no analysed records yet (missing {', '.join(missing)}); run the pipeline first"
+        )
+    params = audit_parameters(config, catalogue, run_id)
+    con.execute("begin transaction")
+    try:
+        if "rule_catalogue" not in _existing_tables(con):
+            store_catalogue(con, catalogue)
+        for path in _WORK_FILES:
+            run_sql(con, path, **params)
+        suppress_complementary(con)
+        for path in _PUBLISH_FILES:
+            run_sql(con, path, **params)
+        for table in _TEMP_TABLES:
+            con.execute(f"drop table if exists {table}")
+        con.execute("commit")
+    except BaseException:
+        con.execute("rollback")
+        raise

@@ -1,0 +1,25 @@
+-- Additive relations between published count families of audit_cell beyond the unit and
+-- period margins: in every unit and period the 'total' family equals the sum of its 'part'
+-- families, so one hidden part could be recovered from the total and the other parts.
+-- (A rate's numerator and denominator are related through audit_pair instead.)
+-- Grain: one row per (partition, family).
+create or replace temp table audit_partition as
+select *
+from (
+    values
+        ('audit_status', 'samples', 'total'),
+        ('audit_status', 'samples_usable', 'part'),
+        ('audit_status', 'samples_caution', 'part'),
+        ('audit_status', 'samples_excluded', 'part'),
+        ('exclusion_reason', 'samples_excluded', 'total'),
+        ('exclusion_reason', 'excluded_sample_type', 'part'),
+        ('exclusion_reason', 'excluded_data_quality', 'part'),
+        ('sample_type', 'samples', 'total'),
+        ('sample_type', 'arterial', 'part'),
+        ('sample_type', 'excluded_sample_type', 'part'),
+        ('pf_band', 'pf_assessed', 'total'),
+        ('pf_band', 'pf_severe', 'part'),
+        ('pf_band', 'pf_moderate', 'part'),
+        ('pf_band', 'pf_mild', 'part'),
+        ('pf_band', 'pf_above_300', 'part')
+) as p(partition_id, family, role);
