@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 import sys
 import time
+from collections.abc import Callable
 from datetime import date
 from pathlib import Path
 
@@ -24,14 +25,17 @@ def _date(text: str) -> date:
         raise argparse.ArgumentTypeError(f"not a date in YYYY-MM-DD form: {text!r}") from None
 
 
-def _positive_int(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"not a whole number: {text!r}") from None
-    if value < 2:
-        raise argparse.ArgumentTypeError("must be at least 2")
-    return value
+def _whole_number(minimum: int) -> Callable[[str], int]:
+    def parse(text: str) -> int:
+        try:
+            value = int(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"not a whole number: {text!r}") from None
+        if value < minimum:
+            raise argparse.ArgumentTypeError(f"must be at least {minimum}")
+        return value
+
+    return parse
 
 
 def _share(text: str) -> float:
@@ -64,13 +68,13 @@ def build_parser() -> argparse.ArgumentParser:
             f"{fault_lines}\n\n"
             "Examples:\n"
             "  python -m synthetic_data --out demo_exports\n"
-            "  python -m synthetic_data --rows 5000000 --single-file --out /tmp/bench\n"
+            "  python -m synthetic_data --rows 5000000 --single-file --out bench_exports\n"
             "  python -m synthetic_data --fault-rate 0 --out clean_only"
         ),
     )
     parser.add_argument("--out", type=Path, required=True, help="folder to write into (created if missing)")
     parser.add_argument(
-        "--rows", type=_positive_int, default=20_000, help="number of samples (default 20000)"
+        "--rows", type=_whole_number(2), default=20_000, help="number of samples (default 20000)"
     )
     parser.add_argument("--seed", type=int, default=7, help="random seed (default 7)")
     parser.add_argument(
@@ -81,7 +85,7 @@ def build_parser() -> argparse.ArgumentParser:
     )
     parser.add_argument(
         "--days",
-        type=_positive_int,
+        type=_whole_number(1),
         default=DEFAULT_DAYS,
         help=f"number of collection days (default {DEFAULT_DAYS})",
     )

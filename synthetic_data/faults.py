@@ -284,7 +284,7 @@ def _choose_donors(rng: np.random.Generator, state: pl.DataFrame, assigned: pl.D
         donor[todo] = rng.integers(0, n, todo.size)
         todo = todo[patient[donor[todo]] == patient[rows[todo]]]
     if todo.size:
-        raise RuntimeError("wrong blood in tube needs at least two patients")
+        raise ValueError("wrong blood in tube needs samples from at least two patients; generate more rows")
     return assigned.with_columns(pl.Series("donor_row", donor).replace(-1, None))
 
 
