@@ -21,11 +21,11 @@ corrected, in a later file, and a text result replaces the number in its cell.
 
 from __future__ import annotations
 
-import codecs
 import io
 import tomllib
 from datetime import date
 from pathlib import Path
+from typing import BinaryIO
 
 import duckdb
 import polars as pl
@@ -71,6 +71,8 @@ CONVERTED = (
     "hb_g_dl",
     "lactate_mmol_l",
 )
+BATCH_ROWS = 250_000
+"""Rows turned into text at a time when one large file is written."""
 BOOLEAN_TEXT: dict[str, tuple[str, str]] = {"demo_us_style": ("Y", "N"), "demo_eu_style": ("1", "0")}
 
 
@@ -165,8 +167,8 @@ def _number_text(expr: pl.Expr, decimals: int, decimal_mark: str) -> pl.Expr:
     return text.str.replace(".", ",", literal=True) if decimal_mark == "," else text
 
 
-def _csv_frame(rows: pl.DataFrame, truth: pl.DataFrame, profile: Profile, path: Path) -> pl.DataFrame:
-    """Every cell as the export's text, headed with the export's own column names."""
+def _csv_cells(truth: pl.DataFrame, profile: Profile, path: Path) -> list[pl.Expr]:
+    """Expressions giving every cell as the export's text, named with the export's own column names."""
     sample_codes, device_codes = export_codes(path)
     yes, no = BOOLEAN_TEXT.get(profile.name, ("1", "0"))
     texts = truth.filter(pl.col("fault_type") == "text_result").select("sample_id", "field", "cell_text")
@@ -201,23 +203,32 @@ def _csv_frame(rows: pl.DataFrame, truth: pl.DataFrame, profile: Profile, path: 
                 pl.col("sample_id").replace_strict(lookup, default=None, return_dtype=pl.String), cell
             )
         cells.append(cell.alias(header))
-    return rows.select(cells)
+    return cells
 
 
-def _write_csv(frame: pl.DataFrame, target: Path, profile: Profile) -> None:
-    """CSV in the profile's dialect; written as UTF-8 by polars, re-encoded in chunks when needed."""
+def _write_csv(frame: pl.DataFrame, out: BinaryIO, profile: Profile, header: bool) -> None:
+    """Append CSV in the profile's dialect; polars writes UTF-8, re-encoded when the profile wants another."""
+    options = {"separator": profile.delimiter, "quote_char": profile.quote_char, "null_value": ""}
     if profile.encoding == "utf-8":
-        frame.write_csv(target, separator=profile.delimiter, quote_char=profile.quote_char, null_value="")
+        frame.write_csv(out, include_header=header, **options)
         return
     buffer = io.BytesIO()
-    frame.write_csv(buffer, separator=profile.delimiter, quote_char=profile.quote_char, null_value="")
-    decoder = codecs.getincrementaldecoder("utf-8")()
-    view = buffer.getbuffer()
-    with target.open("wb") as out:
-        for start in range(0, len(view), 1 << 24):
-            out.write(decoder.decode(bytes(view[start : start + (1 << 24)])).encode(profile.encoding))
-        out.write(decoder.decode(b"", final=True).encode(profile.encoding))
-    view.release()
+    frame.write_csv(buffer, include_header=header, **options)
+    out.write(buffer.getvalue().decode("utf-8").encode(profile.encoding))
+
+
+def _batches(rows: pl.DataFrame, single_file: bool) -> list[tuple[str, pl.DataFrame]]:
+    """(file stem, rows) in writing order: one batch per export day, or slices of one file."""
+    if single_file:
+        return [
+            ("export_all", rows.slice(start, BATCH_ROWS))
+            for start in range(0, max(rows.height, 1), BATCH_ROWS)
+        ]
+    return [
+        (f"export_{day.isoformat()}", part)
+        for (day,), part in sorted(rows.partition_by("_export_date", as_dict=True).items())
+        if isinstance(day, date)
+    ]
 
 
 def _write_source(
@@ -235,29 +246,23 @@ def _write_source(
     rows = _to_profile_units(con, _export_rows(rows, truth, profile.timezone), profile)
     folder = out_dir / source
     folder.mkdir(parents=True, exist_ok=True)
-    if profile.format == "parquet":
-        frame = rows.select(pl.col(c).alias(h) for c, h in profile.columns.items())
-    else:
-        frame = _csv_frame(rows, truth, profile, path)
-    dates = rows["_export_date"]
-    suffix = "parquet" if profile.format == "parquet" else "csv"
     written: list[Path] = []
-    if single_file:
-        groups: list[tuple[str, pl.DataFrame]] = [("export_all", frame)]
-    else:
-        frame = frame.with_columns(dates.alias("__date"))
-        groups = [
-            (f"export_{day.isoformat()}", part.drop("__date"))
-            for (day,), part in sorted(frame.partition_by("__date", as_dict=True).items())
-            if isinstance(day, date)
-        ]
-    for stem, part in groups:
-        target = folder / f"{stem}.{suffix}"
-        if profile.format == "parquet":
-            part.write_parquet(target)
-        else:
-            _write_csv(part, target, profile)
-        written.append(target)
+    if profile.format == "parquet":
+        frame = rows.select(*(pl.col(c).alias(h) for c, h in profile.columns.items()), "_export_date")
+        for stem, part in [("export_all", frame)] if single_file else _batches(frame, single_file=False):
+            target = folder / f"{stem}.parquet"
+            part.drop("_export_date").write_parquet(target)
+            written.append(target)
+        return written
+    cells = _csv_cells(truth, profile, path)
+    for stem, part in _batches(rows, single_file):
+        # text is made one batch at a time, so a large single file never sits in memory as text
+        target = folder / f"{stem}.csv"
+        first = target not in written
+        with target.open("wb" if first else "ab") as out:
+            _write_csv(part.select(cells), out, profile, header=first)
+        if first:
+            written.append(target)
     return written
 
 

@@ -613,7 +613,8 @@ def test_parquet_export_has_canonical_names_units_and_utc(
     assert (original["collected_at"] == original["collected_at_r"]).all()
 
 
-def test_single_file_layout(tmp_path: Path) -> None:
+def test_single_file_layout(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setattr("synthetic_data.writers.BATCH_ROWS", 300)  # several batches into one file
     records, truth = generate(2_000, 3, START, 10, RATES)
     written = write_exports(records, truth, tmp_path, single_file=True)
     assert {k: [p.name for p in v] for k, v in written.items()} == {
@@ -621,6 +622,12 @@ def test_single_file_layout(tmp_path: Path) -> None:
         "eu_style": ["export_all.csv"],
         "parquet": ["export_all.parquet"],
     }
+    header, rows = read_csv_rows(tmp_path / "eu_style" / "export_all.csv", "demo_eu_style")
+    eu = records.filter(pl.col("sample_id").str.starts_with("POC"))
+    resent = truth.filter(pl.col("fault_type").is_in(["duplicate_export", "corrected_resend"]))
+    assert eu.height > 600  # more than two batches
+    assert len(rows) == eu.height + resent.join(eu, on="sample_id", how="semi").height
+    assert header[0] == "Probennummer" and all(row[0] != "Probennummer" for row in rows)  # one header
 
 
 # --- command line ------------------------------------------------------------------------------------
