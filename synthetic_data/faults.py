@@ -39,7 +39,7 @@ Fault types (how each lands):
   "clotted" (PO2) or "see comment" (lactate). CSV sources only; the canonical value is NULL.
 
 **Physically visible.** A fault is marked visible when the faulted record carries physical
-evidence on its own (``sql/evidence.sql``: PaO2 above the alveolar bound at the documented
+evidence on its own (``synthetic_data/sql/evidence.sql``: PaO2 above the alveolar bound at the documented
 FiO2's upper device bound plus max(5 mmHg, 5 %); |acid-base residual| > 0.03; measured SaO2
 more than 4 points off the curve; SpO2 more than 10 points off the arterial curve; PaO2,
 PaCO2, pH, Hb or lactate outside plausible ranges) - for venous blood, air contamination,
@@ -294,7 +294,7 @@ def _fmt(expr: pl.Expr) -> pl.Expr:
 
 
 def evidence(con: duckdb.DuckDBPyConnection, records: pl.DataFrame) -> pl.DataFrame:
-    """Per record: the physical evidence flags of ``sql/evidence.sql`` (see the module docstring)."""
+    """Per record: the evidence flags of ``synthetic_data/sql/evidence.sql`` (see the module docstring)."""
     cols = [
         "sample_id",
         "sample_type",
