@@ -5,8 +5,11 @@ Only this module turns ``PipelineError`` into a one-line message and an exit cod
 
 from __future__ import annotations
 
+import errno
 import functools
+import os
 import sys
+import traceback
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any
@@ -22,13 +25,29 @@ Exit codes (BSD sysexits):
   65  data error: at least one file was rejected (the others loaded)
   66  no input: an input file or folder does not exist
   70  internal error (a bug; please report it with the log)
-  74  I/O error: the store or output cannot be written
+  74  I/O error: the store or output cannot be written, or too little free disk space
   75  temporary failure: another run or program holds the store; retry later
-  78  configuration error: site configuration, profile or pseudonym key"""
+  78  configuration error: site configuration, profile, pseudonym key or folder permissions"""
+
+DEBUG_ENV = "ABG_AUDIT_DEBUG"
+
+
+def _where(err: BaseException) -> str:
+    """File, line and function where an exception was raised: no values, no message."""
+    frames = traceback.extract_tb(err.__traceback__)
+    if not frames:
+        return "unknown place"
+    last = frames[-1]
+    return f"{Path(last.filename).name}:{last.lineno} in {last.name}"
 
 
 def handle_errors(func: Callable[..., Any]) -> Callable[..., Any]:
-    """Expected problems become one line on stderr and their exit code; no traceback."""
+    """Every failure becomes one line on stderr and its exit code; no traceback.
+
+    Messages of unexpected exceptions are not printed: parser and database errors can quote
+    the cell that failed, and a cell can be a patient identifier. Set ``ABG_AUDIT_DEBUG=1``
+    for the full traceback on a developer's machine (it may show data).
+    """
 
     @functools.wraps(func)
     def wrapper(*args: Any, **kwargs: Any) -> Any:
@@ -37,6 +56,31 @@ def handle_errors(func: Callable[..., Any]) -> Callable[..., Any]:
         except PipelineError as err:
             click.echo(f"error: {err}", err=True)
             sys.exit(err.exit_code)
+        except OSError as err:
+            if os.environ.get(DEBUG_ENV):
+                raise
+            full = " (disk full)" if err.errno in (errno.ENOSPC, errno.EDQUOT) else ""
+            name = f" {Path(err.filename).name}" if err.filename else ""
+            click.echo(f"error: I/O error on{name}: {err.strerror or type(err).__name__}{full}", err=True)
+            sys.exit(74)
+        except Exception as err:
+            if os.environ.get(DEBUG_ENV):
+                raise
+            import duckdb
+
+            if isinstance(err, duckdb.IOException):
+                click.echo(
+                    f"error: the store could not be read or written (I/O error at {_where(err)}); "
+                    "check free disk space and permissions, then run again",
+                    err=True,
+                )
+                sys.exit(74)
+            click.echo(
+                f"error: internal error ({type(err).__name__} at {_where(err)}); work committed before it is kept, "
+                f"the rest was rolled back. Please report it; {DEBUG_ENV}=1 shows the traceback",
+                err=True,
+            )
+            sys.exit(70)
 
     return wrapper
 
@@ -67,6 +111,7 @@ def main() -> None:
     An audit aid for laboratory and quality teams, not a diagnostic device: thresholds
     follow local policy and licensed clinical judgement.
     """
+    os.umask(0o077)  # the store, its write-ahead log and spill files hold identifiers: owner only
 
 
 @main.command(epilog=EXIT_CODES_HELP)
@@ -74,15 +119,27 @@ def main() -> None:
 @store_option
 @output_option
 @log_format_option
+@click.option(
+    "--rebuild",
+    is_flag=True,
+    help="Recompute derived metrics, flags and audit tables for every sample in the store, "
+    "and read and hash every input file again.",
+)
 @handle_errors
-def run(config_path: Path, store: Path | None, output: Path | None, log_format: str) -> None:
+def run(config_path: Path, store: Path | None, output: Path | None, log_format: str, rebuild: bool) -> None:
     """Load new export files and run every stage (the nightly job).
 
-    Files already loaded (same content hash) are skipped, so re-running is safe.
+    Files already loaded (same content hash) are skipped, and only new or corrected samples
+    (and other samples of the same patients) are checked, so re-running is safe and a run
+    with nothing new takes seconds. One run at a time: a second run exits with 75. A run
+    killed at any point leaves the store consistent; the next run finishes its work.
+    After changing the rule catalogue, thresholds or the site's pressure every sample is
+    checked again automatically; use --rebuild to force it.
 
     \b
-    Example:
+    Examples:
       abg-audit run --config site.toml
+      abg-audit run --config site.toml --rebuild --log-format json
     """
     from pipeline.config import load_config
     from pipeline.log import Log
@@ -90,7 +147,7 @@ def run(config_path: Path, store: Path | None, output: Path | None, log_format: 
     from pipeline.summary import print_run_summary
 
     config = load_config(config_path, store=store, output=output)
-    result = run_pipeline(config, Log(log_format))
+    result = run_pipeline(config, Log(log_format), rebuild=rebuild)
     print_run_summary(result, config)
     sys.exit(result.exit_code)
 
@@ -209,15 +266,43 @@ def runs(config_path: Path | None, store: Path | None, limit: int) -> None:
             raise ConfigError("give --config or --store")
         store = load_config(config_path).store_path
     con = open_store(store, read_only=True)
-    rows = con.execute(
-        "select run_id, command, started_at, outcome, exit_code, summary from runs order by started_at desc limit ?",
-        [limit],
-    ).fetchall()
-    con.close()
+    try:
+        cursor = con.execute("select * from runs order by started_at desc limit ?", [limit])
+        names = [d[0] for d in cursor.description]
+        rows = [dict(zip(names, row, strict=True)) for row in cursor.fetchall()]
+    finally:
+        con.close()
     if not rows:
         click.echo("no runs recorded yet")
-    for run_id, command, started, outcome, code, summary in rows:
-        click.echo(f"{run_id}  {command:<5} {started:%Y-%m-%d %H:%M}  {outcome} (exit {code})\n    {summary}")
+    for run in rows:
+        click.echo(format_run(run))
+
+
+def format_run(run: dict[str, Any]) -> str:
+    """Two or three lines per run for ``abg-audit runs``; columns a store predates are skipped."""
+    code = "" if run.get("exit_code") is None else f" (exit {run['exit_code']})"
+    took = "" if run.get("duration_s") is None else f", {run['duration_s']:.1f} s"
+    rebuild = " rebuild" if run.get("rebuild") else ""
+    started = f"{run['started_at']:%Y-%m-%d %H:%M} UTC"
+    lines = [f"{run['run_id']}  {run['command']}{rebuild}  {started}  {run['outcome']}{code}{took}"]
+    if run.get("summary"):
+        lines.append(f"    {run['summary']}")
+    if run.get("error"):
+        lines.append(f"    error: {run['error']}")
+    if run["outcome"] == "interrupted":
+        lines.append("    interrupted (killed or lost power); a later run finished its work")
+    details = []
+    if run.get("catalogue_version"):
+        details.append(f"rules v{run['catalogue_version']} ({str(run.get('catalogue_sha256'))[:12]})")
+    if run.get("code_version"):
+        details.append(f"abg-audit {run['code_version']}, DuckDB {run.get('duckdb_version')}")
+    if run.get("records_total") is not None:
+        details.append(
+            f"store: {run['records_total']} records, {run['quarantine_total']} quarantined, {run['flags_total']} flags"
+        )
+    if details:
+        lines.append("    " + "; ".join(details))
+    return "\n".join(lines)
 
 
 @main.command("check-profile")

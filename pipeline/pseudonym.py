@@ -48,6 +48,12 @@ def load_key(key_file: Path | None, *, create: bool = False) -> bytes:
     return key.encode("utf-8")
 
 
+def key_id(key: bytes) -> str:
+    """A short fingerprint of the key, kept with each run so pseudonyms from different keys
+    are never compared; it does not reveal the key."""
+    return hmac.new(key, b"abg-audit pseudonym key id", hashlib.sha256).hexdigest()[:12]
+
+
 def pseudonym(key: bytes, identifier: str) -> str:
     return hmac.new(key, identifier.strip().encode("utf-8"), hashlib.sha256).hexdigest()[:PSEUDONYM_CHARS]
 

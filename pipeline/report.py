@@ -35,6 +35,7 @@ from pipeline.config import SiteConfig
 from pipeline.errors import StorageError
 from pipeline.log import Log
 from pipeline.rules import load_catalogue
+from pipeline.testhooks import pause_point
 
 CAUTION = (
     "This report is an audit aid, not a diagnostic device; thresholds follow local policy and licensed "
@@ -88,6 +89,7 @@ def atomic_write(path: Path, write: Callable[[Path], None], mode: int = 0o640) -
         with open(tmp, "rb") as handle:
             os.fsync(handle.fileno())
         os.chmod(tmp, mode)
+        pause_point("report")  # test-only: crash tests kill the run here, between write and rename
         os.replace(tmp, path)
     except BaseException:
         tmp.unlink(missing_ok=True)

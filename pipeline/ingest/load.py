@@ -22,6 +22,7 @@ from pipeline.profile import Profile
 from pipeline.pseudonym import add_patient_key
 from pipeline.schema import FIELDS, UNIT_CHOICES, Kind
 from pipeline.sql_files import read_sql, run_sql
+from pipeline.testhooks import pause_point
 
 _POLARS_TYPES = {
     Kind.TEXT: pl.String,
@@ -200,6 +201,7 @@ def ingest_file(
                 "; ".join(result.notes),
             ],
         )
+        pause_point("load")  # test-only: crash tests kill the run here, inside the file's transaction
         con.execute("commit")
     except FileRejected as err:
         con.execute("rollback")
