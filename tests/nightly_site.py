@@ -15,6 +15,7 @@ from collections.abc import Callable
 from pathlib import Path
 
 import duckdb
+import pytest
 
 FIXTURES = Path(__file__).parent / "fixtures"
 KEY = "nightly-test-key-0123456789abcdef"
@@ -40,6 +41,16 @@ path = "exports"
 profile = "profile.toml"
 pattern = "*.csv"
 """
+
+
+@pytest.fixture(autouse=True)
+def keep_umask():
+    """The command line sets an owner-only umask for its process (CliRunner runs it in the
+    test's process); give the test process its own back. Import it into a test module."""
+    mask = os.umask(0o022)
+    os.umask(mask)
+    yield
+    os.umask(mask)
 
 
 def default_patient(number: int) -> str:

@@ -34,18 +34,11 @@ from pipeline.log import Log
 from pipeline.preflight import MIB, MIN_FREE_OUTPUT_BYTES, MIN_FREE_STORE_BYTES, required_space
 from pipeline.rules import load_catalogue
 from pipeline.run import RunResult, run_pipeline
-from tests.nightly_site import add_day, cli, env, make_site, run_cli, store_totals
+from tests.nightly_site import add_day, cli, env, keep_umask, make_site, run_cli, store_totals
+
+__all__ = ["keep_umask"]  # an autouse fixture
 
 PAUSE_TIMEOUT_S = 180  # a safety net for a hung child, not a timing assertion
-
-
-@pytest.fixture(autouse=True)
-def keep_umask():
-    """The command line sets an owner-only umask for its process; give the test's back."""
-    mask = os.umask(0o022)
-    os.umask(mask)
-    yield
-    os.umask(mask)
 
 
 def run_here(config_path: Path, *, rebuild: bool = False) -> RunResult:
