@@ -29,6 +29,9 @@ folder = "output"
 key_file = "store/pseudonym.key"
 small_cell_threshold = 11
 
+[audit]
+period = "week"                 # two months of demo data: weekly points fill the control charts
+
 [[inputs]]
 path = "exports/us_style"
 profile = "{profiles}/demo_us_style.toml"

@@ -1,0 +1,674 @@
+"""The audit stage: derived metrics feeding it, rates on a hand-counted dataset, the
+statistics macros against their oracle and check values, control-chart signals, and
+small-cell suppression (no small count shown, none recoverable from a total).
+
+Check values name their source: "domain notes" are the project's reference sheet, which
+quotes the publication; statsmodels is the independent oracle for Wilson intervals.
+"""
+
+from __future__ import annotations
+
+from datetime import datetime, timedelta
+from pathlib import Path
+from typing import Any
+
+import duckdb
+import numpy as np
+import polars as pl
+import pytest
+from statsmodels.stats.proportion import proportion_confint
+
+from pipeline.audit_settings import AuditSettings, parse_audit_settings
+from pipeline.errors import ConfigError
+from pipeline.sql_files import install_macros
+from synthetic_data import generate
+from tests.audit_store import RUN_ID, audit, audit_config, build_store, frame
+from tests.rule_harness import record
+
+JAN = datetime(2026, 1, 12, 9, 0)
+FEB = datetime(2026, 2, 9, 9, 0)
+
+
+@pytest.fixture(scope="module")
+def macros() -> duckdb.DuckDBPyConnection:
+    con = duckdb.connect()
+    install_macros(con)
+    yield con
+    con.close()
+
+
+def one(con: duckdb.DuckDBPyConnection, sql: str, params: list[Any] | None = None) -> Any:
+    return con.execute(sql, params or []).fetchall()[0][0]
+
+
+# --------------------------------------------------------------------------------------
+# Statistics macros
+# --------------------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize(
+    ("x", "n", "low", "high"),
+    # Wilson 1927 check values from the domain notes (section 13), tolerance 1e-4.
+    [(5, 20, 0.1119, 0.4687), (0, 10, 0.0, 0.2775), (50, 100, 0.4038, 0.5962), (1, 1000, 0.00018, 0.00564)],
+)
+def test_wilson_check_values(macros, x, n, low, high):
+    got = macros.execute("select wilson_lower(?, ?), wilson_upper(?, ?)", [x, n, x, n]).fetchall()[0]
+    assert got == pytest.approx((low, high), abs=1e-4)
+
+
+def test_wilson_matches_statsmodels_oracle(macros):
+    # Oracle: statsmodels proportion_confint(method='wilson'), alpha 0.05, over every x of several n.
+    cases = [
+        (x, n) for n in (1, 2, 3, 7, 10, 11, 20, 57, 100, 333, 1000, 5000) for x in range(0, n + 1, max(1, n // 23))
+    ]
+    cases += [(n, n) for n in (1, 7, 1000)]
+    con = macros
+    frame_ = pl.DataFrame({"x": [c[0] for c in cases], "n": [c[1] for c in cases]})
+    con.register("cases", frame_)
+    got = con.execute("select wilson_lower(x, n), wilson_upper(x, n) from cases").fetchall()
+    con.unregister("cases")
+    for (x, n), (low, high) in zip(cases, got, strict=True):
+        want_low, want_high = proportion_confint(x, n, alpha=0.05, method="wilson")
+        assert low == pytest.approx(want_low, abs=1e-12), (x, n)
+        assert high == pytest.approx(want_high, abs=1e-12), (x, n)
+
+
+def test_wilson_is_null_outside_its_domain(macros):
+    assert macros.execute("select wilson_lower(1, 0), wilson_upper(5, 4), wilson_lower(-1, 4)").fetchall() == [
+        (None, None, None)
+    ]
+
+
+@pytest.mark.parametrize(
+    ("p_bar", "n", "lcl", "ucl"),
+    # p-chart check values from the domain notes (section 13): p 0.10, n 50 -> LCL -0.0273 clipped to 0,
+    # UCL 0.2273; n 200 -> 0.0364, 0.1636.
+    [(0.10, 50, 0.0, 0.2273), (0.10, 200, 0.0364, 0.1636)],
+)
+def test_p_chart_limits_check_values(macros, p_bar, n, lcl, ucl):
+    got = macros.execute("select proportion_lower_limit(?, ?), proportion_upper_limit(?, ?)", [p_bar, n, p_bar, n])
+    assert got.fetchall()[0] == pytest.approx((lcl, ucl), abs=1e-4)
+
+
+def test_funnel_limits_use_the_normal_quantiles(macros):
+    # 95 % and 99.8 % two-sided quantiles 1.959964 and 3.090232 (scipy.stats.norm.ppf(0.975 / 0.999), from memory):
+    # p 0.10, n 400 -> sigma 0.015; 0.10 +/- 0.029399 and +/- 0.046353.
+    low95, high998 = macros.execute(
+        "select proportion_lower_limit(0.1, 400, 1.959963984540054), "
+        "proportion_upper_limit(0.1, 400, 3.090232306167813)"
+    ).fetchall()[0]
+    assert low95 == pytest.approx(0.1 - 0.029399, abs=1e-6)
+    assert high998 == pytest.approx(0.1 + 0.046353, abs=1e-6)
+
+
+def test_small_cell_rule(macros):
+    # US CMS cell size suppression policy: no cell 1-10 (threshold 11); 0 is allowed.
+    got = macros.execute(
+        "select is_small_cell(0, 11), is_small_cell(1, 11), is_small_cell(10, 11), is_small_cell(11, 11)"
+    )
+    assert got.fetchall()[0] == (False, True, True, False)
+
+
+# --------------------------------------------------------------------------------------
+# A hand-counted dataset: two units, two months
+# --------------------------------------------------------------------------------------
+
+
+def hand_rows() -> list[dict[str, Any]]:
+    """Ward A in January 2026 and Ward B in February 2026; every count below is by hand."""
+    quiet = {"sao2_pct": None, "spo2_pct": None}  # no saturation: the dissociation and venous rules stay silent
+    rows: list[dict[str, Any]] = []
+
+    def add(prefix: str, count: int, when: datetime, unit: str, patient_id: str | None = None, **changes: Any) -> None:
+        for i in range(count):
+            n = len(rows)
+            rows.append(
+                record(
+                    f"{prefix}{i}",
+                    unit=unit,
+                    collected_at=when + timedelta(minutes=n),
+                    resulted_at=when + timedelta(minutes=n + 10),
+                    patient_id=patient_id or f"MRN-{unit[-1]}-{n:04d}",
+                    **changes,
+                )
+            )
+
+    for pair in range(5):  # 10 clean room-air samples, 2 per patient -> 5 patients
+        add(f"A-CLEAN{pair}-", 2, JAN + timedelta(hours=pair), "Ward A", patient_id=f"MRN-A-PAIR{pair}")
+    # Hypoxaemic on room air: PaO2 55 < 60 mmHg; A-a 99.73 - 55 = 44.7 > age/4 + 4 = 14 (age 40).
+    add("A-HYPO", 3, JAN + timedelta(days=1), "Ward A", pao2_mmhg=55.0, **quiet)
+    # Nasal cannula 2 L/min, FiO2 0.28, PaO2 120: hyperoxaemic (> 100 on oxygen) and predicted saturation
+    # 98.7 % (Severinghaus) above 98 %; P/F 428.6 (above 300).
+    add(
+        "A-HYPER",
+        4,
+        JAN + timedelta(days=2),
+        "Ward A",
+        o2_device="nasal_cannula",
+        o2_flow_l_min=2.0,
+        fio2=0.28,
+        pao2_mmhg=120.0,
+        **quiet,
+    )
+    # Simple mask FiO2 0.40, PaO2 80: P/F 200 is moderate (a boundary belongs to the lower band, Berlin 2012);
+    # predicted saturation 95.7 % in the 94-98 % target.
+    add(
+        "A-MASK",
+        2,
+        JAN + timedelta(days=3),
+        "Ward A",
+        o2_device="simple_mask",
+        o2_flow_l_min=6.0,
+        fio2=0.40,
+        pao2_mmhg=80.0,
+        **quiet,
+    )
+    # Nasal cannula 2 L/min cannot deliver FiO2 0.80 (fio2_outside_device_range, excludes from oxygenation rates).
+    add("A-MISMATCH", 1, JAN + timedelta(days=4), "Ward A", o2_device="nasal_cannula", o2_flow_l_min=2.0, fio2=0.80)
+    add("A-VENOUS", 1, JAN + timedelta(days=5), "Ward A", sample_type="venous")  # excluded: sample type
+    add("A-NODOC", 1, JAN + timedelta(days=6), "Ward A", fio2=None, o2_device=None)  # FiO2 and device not documented
+    add("B-CLEAN", 5, FEB, "Ward B")
+    add("B-HYPO", 5, FEB + timedelta(days=1), "Ward B", pao2_mmhg=55.0, **quiet)
+    return rows
+
+
+@pytest.fixture(scope="module")
+def hand_store(tmp_path_factory) -> duckdb.DuckDBPyConnection:
+    tmp = tmp_path_factory.mktemp("hand")
+    config = audit_config(tmp, k=1, complete_periods_only=False)  # k = 1: nothing is small, every count shown
+    con = build_store(tmp, hand_rows(), config)
+    audit(con, config)
+    yield con
+    con.close()
+
+
+def test_hand_dataset_has_only_the_intended_data_quality_flags(hand_store):
+    flags = hand_store.execute(
+        "select rule_id, count(*) from flags where kind in ('data_quality', 'documentation') group by all order by 1"
+    ).fetchall()
+    assert flags == [("fio2_outside_device_range", 1), ("oxygen_documentation_missing", 1)]
+
+
+def test_derived_columns_on_hand_computed_records(hand_store):
+    rows = {
+        r["sample_id"]: r
+        for r in frame(
+            hand_store, "derived", "sample_id in ('A-CLEAN0-0', 'A-HYPO0', 'A-MASK0', 'A-HYPER0')"
+        ).to_dicts()
+    }
+    clean = rows["A-CLEAN0-0"]
+    # Domain notes sections 1, 3, 4: PiO2 0.21 x 713 = 149.73; PAO2 (simplified, R 0.8) 149.73 - 40 / 0.8 = 99.73;
+    # A-a 99.73 - 90 = 9.73; a/A 90 / 99.73 = 0.9024; expected A-a age/4 + 4 = 14 at 40 (common practice).
+    assert clean["inspired_po2_mmhg"] == pytest.approx(149.73, abs=0.01)
+    assert clean["pao2_alveolar_mmhg"] == pytest.approx(99.73, abs=0.01)
+    assert clean["aa_gradient_mmhg"] == pytest.approx(9.73, abs=0.01)
+    assert clean["aa_gradient_expected_mmhg"] == pytest.approx(14.0)
+    assert clean["aa_gradient_excess_mmhg"] == pytest.approx(-4.27, abs=0.01)
+    assert clean["a_over_a_ratio"] == pytest.approx(0.9024, abs=1e-4)
+    # P/F 90 / 0.21 = 428.6, above 300 (Berlin 2012); S/F only for SpO2 <= 97 %: 97 / 0.21 = 461.9.
+    assert clean["pf_ratio"] == pytest.approx(428.57, abs=0.01)
+    assert clean["pf_band"] == "none"
+    assert clean["sf_ratio"] == pytest.approx(461.9, abs=0.1)
+    # pH 7.40, PaCO2 40, HCO3 24.5: Henderson-Hasselbalch (pK' 6.1) gives 7.3999 (domain notes section 6).
+    assert clean["acid_base_residual"] == pytest.approx(0.0, abs=0.002)
+    assert clean["on_supplemental_oxygen"] is False
+    assert (clean["target_low_pct"], clean["target_high_pct"]) == (94.0, 98.0)  # BTS 2017
+    assert clean["oxygen_status"] == "in_target"
+
+    hypo = rows["A-HYPO0"]
+    assert hypo["oxygen_status"] == "hypoxaemic"  # PaO2 55 < 60 mmHg (common practice)
+    assert hypo["pf_band"] == "mild"  # 55 / 0.21 = 261.9
+    mask = rows["A-MASK0"]
+    assert mask["pf_ratio"] == pytest.approx(200.0)
+    assert mask["pf_band"] == "moderate"  # 200 belongs to the lower band (domain notes section 4)
+    assert mask["on_supplemental_oxygen"] is True
+    # Severinghaus 1979 at PaO2 80: 95.73 % (domain notes section 5 check value), within 94-98 %.
+    assert mask["predicted_sao2_pct"] == pytest.approx(95.73, abs=0.01)
+    assert mask["oxygen_status"] == "in_target"
+    hyper = rows["A-HYPER0"]
+    assert hyper["oxygen_status"] == "hyperoxaemic"  # PaO2 120 > 100 mmHg on oxygen
+    assert hyper["arterial_saturation_pct"] > 98.0
+
+
+def test_volume_counts_by_hand(hand_store):
+    v = {(r["unit"], r["period"]): r for r in frame(hand_store, "audit_volume").to_dicts()}
+    a = v[("Ward A", "2026-01")]
+    # 10 + 3 + 4 + 2 + 1 + 1 + 1 = 22 samples; patients 5 (pairs) + 12 singles = 17.
+    assert (a["samples"], a["patients"]) == (22, 17)
+    assert (a["samples_usable"], a["samples_caution"], a["samples_excluded"]) == (20, 0, 2)
+    assert (a["excluded_sample_type"], a["excluded_data_quality"]) == (1, 1)
+    assert v[("Ward B", "2026-02")]["samples"] == 10
+    total = v[("All units", "all periods")]
+    assert (total["samples"], total["patients"], total["samples_excluded"]) == (32, 27, 2)
+    assert ("Ward B", "2026-01") not in v  # no sample, no row
+    assert all(r["suppressed_columns"] is None for r in v.values())
+
+
+RATES_BY_HAND = {
+    # (measure, unit, period): (numerator, denominator)
+    ("fio2_device_documented", "Ward A", "2026-01"): (20, 21),  # 21 arterial, one without FiO2 and device
+    ("fio2_device_mismatch", "Ward A", "2026-01"): (1, 20),
+    ("hypoxaemia", "Ward A", "2026-01"): (3, 20),  # 20 included with an oxygen status
+    ("above_target_on_oxygen", "Ward A", "2026-01"): (4, 6),  # 4 cannula + 2 mask on oxygen
+    ("hyperoxaemia_on_oxygen", "Ward A", "2026-01"): (4, 6),
+    ("aa_above_age_limit", "Ward A", "2026-01"): (3, 13),  # room air with FiO2: 10 clean + 3 hypoxaemic
+    ("hypoxaemia", "Ward B", "2026-02"): (5, 10),
+    ("above_target_on_oxygen", "Ward B", "2026-02"): (0, 0),
+    ("hypoxaemia", "All units", "all periods"): (8, 30),
+    ("hypoxaemia", "Ward A", "all periods"): (3, 20),
+    ("hypoxaemia", "All units", "2026-02"): (5, 10),
+}
+
+
+def test_rates_by_hand_with_wilson_intervals(hand_store):
+    rates = {(r["measure"], r["unit"], r["period"]): r for r in frame(hand_store, "audit_rates").to_dicts()}
+    for key, (x, n) in RATES_BY_HAND.items():
+        row = rates[key]
+        assert (row["numerator"], row["denominator"]) == (x, n), key
+        if n == 0:
+            assert row["rate"] is None and row["suppressed_columns"] is None
+            continue
+        low, high = proportion_confint(x, n, alpha=0.05, method="wilson")  # oracle: statsmodels
+        assert row["rate"] == pytest.approx(x / n)
+        assert (row["ci_low"], row["ci_high"]) == pytest.approx((low, high), abs=1e-12)
+
+
+def test_pf_bands_and_flag_rates_by_hand(hand_store):
+    bands = {
+        r["band"]: r["samples_in_band"]
+        for r in frame(hand_store, "audit_pf_bands", "unit = 'Ward A' and period = '2026-01'").to_dicts()
+    }
+    # 19 samples with FiO2: room air 90/0.21 and cannula 120/0.28 above 300 (14), 55/0.21 mild (3), mask moderate (2).
+    assert bands == {"severe": 0, "moderate": 2, "mild": 3, "above_300": 14}
+    flag = frame(
+        hand_store,
+        "audit_flag_rates",
+        "rule_id = 'fio2_outside_device_range' and unit = 'Ward A' and period = '2026-01'",
+    ).to_dicts()[0]
+    assert (flag["flagged_samples"], flag["samples"]) == (1, 22)
+
+
+def test_worklist_ranks_by_severity_then_recency_with_evidence(hand_store):
+    rows = frame(hand_store, "review_worklist").sort("review_rank").to_dicts()
+    assert [r["rule_id"] for r in rows] == ["fio2_outside_device_range"]  # documentation flags are not for the lab
+    top = rows[0]
+    assert top["sample_id"] == "A-MISMATCH0" and top["unit"] == "Ward A" and top["severity"] == "medium"
+    assert "0.80" in top["evidence"] and "nasal cannula" in top["evidence"]
+    assert top["rule_title"].startswith("Documented FiO2")
+    assert top["patient_key"] and not top["patient_key"].startswith("MRN")
+    assert "patient_id" not in rows[0]
+    assert top["new_in_this_run"] is True
+
+
+def test_worklist_order(tmp_path):
+    # Two high and one medium flag: high first, latest collection first within a severity.
+    config = audit_config(tmp_path, k=1, complete_periods_only=False)
+    rows = [
+        record("OLD_HIGH", pao2_mmhg=130.0, sao2_pct=None, collected_at=JAN, resulted_at=JAN + timedelta(minutes=5)),
+        record(
+            "NEW_HIGH",
+            patient_id="P2",
+            pao2_mmhg=130.0,
+            sao2_pct=None,
+            collected_at=FEB,
+            resulted_at=FEB + timedelta(minutes=5),
+        ),
+        record(
+            "NEWEST_MEDIUM",
+            patient_id="P3",
+            o2_device="venturi_mask",
+            fio2=0.33,
+            collected_at=FEB + timedelta(days=3),
+            resulted_at=FEB + timedelta(days=3, minutes=5),
+        ),
+    ]
+    con = build_store(tmp_path, rows, config)
+    audit(con, config)
+    order = [r[0] for r in con.execute("select sample_id from review_worklist order by review_rank").fetchall()]
+    assert order.index("NEW_HIGH") < order.index("OLD_HIGH") < order.index("NEWEST_MEDIUM")
+    con.close()
+
+
+# --------------------------------------------------------------------------------------
+# Control charts
+# --------------------------------------------------------------------------------------
+
+
+def monthly_series(unit: str, xs: list[int], ns: list[int]) -> list[dict[str, Any]]:
+    """One unit, month i: ns[i] room-air samples of which xs[i] hypoxaemic (PaO2 55)."""
+    rows = []
+    for month, (x, n) in enumerate(zip(xs, ns, strict=True)):
+        start = datetime(2024 + month // 12, month % 12 + 1, 3, 8, 0)
+        for i in range(n):
+            hypo = i < x
+            rows.append(
+                record(
+                    f"{unit}-{month}-{i}",
+                    unit=unit,
+                    patient_id=f"{unit}-{month}-{i}",
+                    collected_at=start + timedelta(minutes=7 * i),
+                    resulted_at=start + timedelta(minutes=7 * i + 10),
+                    pao2_mmhg=55.0 if hypo else 90.0,
+                    sao2_pct=None if hypo else 96.9,
+                    spo2_pct=None if hypo else 97.0,
+                )
+            )
+    return rows
+
+
+LANEY_X = [30, 45, 28, 50, 33, 41]
+LANEY_N = [300, 320, 310, 305, 295, 315]
+
+
+@pytest.fixture(scope="module")
+def chart_store(tmp_path_factory) -> tuple[duckdb.DuckDBPyConnection, Path]:
+    tmp = tmp_path_factory.mktemp("chart")
+    rows = (
+        monthly_series("Laney", LANEY_X, LANEY_N)
+        + monthly_series("Shift", [20] * 8 + [2, 2], [100] * 10)
+        + monthly_series("Trend", [10, 12, 14, 16, 18, 20, 15], [100] * 7)
+    )
+    con = build_store(tmp, rows, audit_config(tmp, k=1, complete_periods_only=False))
+    yield con, tmp
+    con.close()
+
+
+def charts(con: duckdb.DuckDBPyConnection, tmp: Path, **settings: Any) -> dict[str, list[dict[str, Any]]]:
+    """Rebuild the audit with these settings; the hypoxaemia p-chart points of every unit, in period order."""
+    audit(con, audit_config(tmp, k=1, complete_periods_only=False, **settings))
+    points = frame(con, "audit_control_chart", "measure = 'hypoxaemia'").sort("period_start").to_dicts()
+    by_unit: dict[str, list[dict[str, Any]]] = {}
+    for p in points:
+        by_unit.setdefault(p["unit"], []).append(p)
+    return by_unit
+
+
+def chart(con: duckdb.DuckDBPyConnection, tmp: Path, unit: str, **settings: Any) -> list[dict[str, Any]]:
+    return charts(con, tmp, **settings)[unit]
+
+
+def test_laney_p_prime_check_values(chart_store):
+    # Domain notes section 13 (Laney 2002): p_bar 0.12304, sigma_z 2.2233; subgroup 1 (n 300): Laney UCL 0.2495,
+    # plain p-chart UCL 0.1799.
+    points = chart(*chart_store, "Laney")
+    assert [p["denominator"] for p in points] == LANEY_N
+    first = points[0]
+    assert first["centre"] == pytest.approx(0.12304, abs=1e-5)
+    assert first["laney_sigma_z"] == pytest.approx(2.2233, abs=1e-4)
+    assert first["laney_upper_limit"] == pytest.approx(0.2495, abs=1e-4)
+    assert first["upper_limit"] == pytest.approx(0.1799, abs=1e-4)
+    assert [p["rate"] for p in points] == pytest.approx([x / n for x, n in zip(LANEY_X, LANEY_N, strict=True)])
+
+
+@pytest.mark.parametrize(("limits", "prefix"), [("p_chart", ""), ("laney", "laney_")])
+def test_beyond_limits_uses_the_chosen_limits(chart_store, limits, prefix):
+    for points in charts(*chart_store, chart_limits=limits).values():
+        expected = [p["rate"] < p[f"{prefix}lower_limit"] or p["rate"] > p[f"{prefix}upper_limit"] for p in points]
+        assert [p["beyond_limits"] for p in points] == expected
+
+
+def test_shift_rule_needs_the_configured_run_length(chart_store):
+    # 8 months at 0.20 then 2 at 0.02: centre 164/1000 = 0.164, so the first 8 points sit above it.
+    points = chart(*chart_store, "Shift")
+    assert [p["in_shift"] for p in points] == [True] * 8 + [False, False]
+    assert "shift" in points[0]["signals"]
+    assert [p["beyond_limits"] for p in points][-2:] == [True, True]  # 0.02 < LCL 0.164 - 3 x 0.037 = 0.053
+    assert not any(p["in_shift"] for p in chart(*chart_store, "Shift", shift_run=9))
+
+
+def test_trend_rule_counts_points_not_steps(chart_store):
+    # 10, 12, ..., 20 % then 15 %: six points each higher than the one before (five rises) form a trend of 6.
+    points = chart(*chart_store, "Trend")
+    assert [p["in_trend"] for p in points] == [True] * 6 + [False]
+    assert not any(p["in_trend"] for p in chart(*chart_store, "Trend", trend_run=7))
+
+
+# --------------------------------------------------------------------------------------
+# Reporting window and settings
+# --------------------------------------------------------------------------------------
+
+
+def test_incomplete_latest_period_is_left_out(tmp_path):
+    rows = [
+        record("JAN", collected_at=JAN, resulted_at=JAN + timedelta(minutes=5)),
+        record("FEB", patient_id="P2", collected_at=FEB, resulted_at=FEB + timedelta(minutes=5)),
+    ]
+    config = audit_config(tmp_path, k=1)
+    con = build_store(tmp_path, rows, config)
+    audit(con, config)
+    assert frame(con, "audit_volume", "not all_periods")["period"].unique().to_list() == ["2026-01"]
+    audit(con, audit_config(tmp_path, k=1, complete_periods_only=False, period="week"))
+    assert sorted(frame(con, "audit_volume", "not all_periods")["period"].unique().to_list()) == [
+        "2026-W03",
+        "2026-W07",
+    ]
+    con.close()
+
+
+def test_audit_settings_are_validated():
+    assert parse_audit_settings({}) == AuditSettings()
+    assert parse_audit_settings({"period": "week"}).history_periods == 52
+    for bad in ({"period": "day"}, {"shift_run": 1}, {"sigma": 0}, {"colour": "red"}, {"complete_periods_only": "yes"}):
+        with pytest.raises(ConfigError):
+            parse_audit_settings(bad)
+
+
+# --------------------------------------------------------------------------------------
+# Small-cell suppression
+# --------------------------------------------------------------------------------------
+
+COUNT_COLUMNS = {
+    "audit_volume": [
+        "samples",
+        "patients",
+        "samples_usable",
+        "samples_caution",
+        "samples_excluded",
+        "excluded_sample_type",
+        "excluded_data_quality",
+    ],
+    "audit_rates": ["numerator", "denominator"],
+    "audit_pf_bands": ["samples_in_band", "samples_with_pf"],
+    "audit_flag_rates": ["flagged_samples", "samples"],
+    "audit_control_chart": ["denominator"],
+    "audit_funnel": ["numerator", "denominator"],
+}
+PAIRS = {
+    "audit_rates": ("numerator", "denominator"),
+    "audit_pf_bands": ("samples_in_band", "samples_with_pf"),
+    "audit_flag_rates": ("flagged_samples", "samples"),
+    "audit_funnel": ("numerator", "denominator"),
+}
+DERIVED = {
+    "audit_rates": ["rate", "ci_low", "ci_high"],
+    "audit_pf_bands": ["share", "ci_low", "ci_high"],
+    "audit_flag_rates": ["rate", "ci_low", "ci_high"],
+    "audit_funnel": ["rate", "position"],
+}
+GROUP = {"audit_volume": [], "audit_rates": ["measure"], "audit_pf_bands": ["band"], "audit_flag_rates": ["rule_id"]}
+
+
+def hidden(row: dict[str, Any], column: str) -> bool:
+    return column in (row["suppressed_columns"] or "").split(", ")
+
+
+def published_lines(con: duckdb.DuckDBPyConnection) -> list[tuple[str, list[tuple[Any, str]]]]:
+    """Every sum relation among published cells: (description, [(cell key, column)...]) with the total first."""
+    lines = []
+    for table, group in GROUP.items():
+        rows = frame(con, table).to_dicts()
+        for column in COUNT_COLUMNS[table]:
+            if column == "patients":
+                continue  # distinct counts do not add up
+            by_row: dict[tuple, list] = {}
+            by_col: dict[tuple, list] = {}
+            for r in rows:
+                g = tuple(r[c] for c in group)
+                by_row.setdefault((*g, r["unit"]), []).append(r)
+                by_col.setdefault((*g, r["period"]), []).append(r)
+            for name, members in by_row.items():  # one unit across periods; total: all periods
+                members.sort(key=lambda r: not r["all_periods"])
+                lines.append((f"{table}.{column} {name}", [(id(r), column, r) for r in members]))
+            for name, members in by_col.items():  # one period across units; total: all units
+                members.sort(key=lambda r: not r["all_units"])
+                lines.append((f"{table}.{column} {name}", [(id(r), column, r) for r in members]))
+    volume = frame(con, "audit_volume").to_dicts()
+    for r in volume:
+        for parts in (
+            ["samples", "samples_usable", "samples_caution", "samples_excluded"],
+            ["samples_excluded", "excluded_sample_type", "excluded_data_quality"],
+        ):
+            lines.append((f"volume split {r['unit']} {r['period']} {parts[0]}", [(id(r), c, r) for c in parts]))
+    bands = frame(con, "audit_pf_bands").to_dicts()
+    by_cell: dict[tuple, list] = {}
+    for r in bands:
+        by_cell.setdefault((r["unit"], r["period"]), []).append(r)
+    for key, members in by_cell.items():
+        lines.append(
+            (
+                f"bands {key}",
+                [(id(members[0]), "samples_with_pf", members[0])] + [(id(r), "samples_in_band", r) for r in members],
+            )
+        )
+    return lines
+
+
+def check_suppression(con: duckdb.DuckDBPyConnection, k: int) -> int:
+    """Assert the published tables show no small count and no line with one hidden cell; return hidden cells."""
+    hidden_cells = 0
+    for table, columns in COUNT_COLUMNS.items():
+        for r in frame(con, table).to_dicts():
+            for c in columns:
+                if hidden(r, c):
+                    hidden_cells += 1
+                    assert r[c] is None, (table, c, r)
+                else:
+                    assert r[c] is None or r[c] == 0 or r[c] >= k, (table, c, r)
+            if table in PAIRS:
+                x, n = PAIRS[table]
+                if r[x] is not None and r[n] is not None:
+                    assert not 1 <= r[n] - r[x] < k, ("small remainder shown", table, r)
+                if hidden(r, x) or hidden(r, n):
+                    assert all(r[d] is None for d in DERIVED[table]), ("derived from a hidden count", table, r)
+    for name, members in published_lines(con):
+        count = sum(hidden(r, c) for _, c, r in members)
+        assert count != 1, f"a hidden count is recoverable from its total: {name}"
+    return hidden_cells
+
+
+def determined_hidden_cells(con: duckdb.DuckDBPyConnection) -> list[str]:
+    """Hidden cells whose value follows exactly from the published cells and the sum relations (linear algebra).
+
+    A hidden cell is determined exactly when every solution of the homogeneous system (the relations with the
+    published values moved to the right-hand side) leaves it at 0: its coordinate is zero in every null-space
+    vector. The system splits into independent blocks (cells linked by shared relations), solved one by one.
+    """
+    lines = published_lines(con)
+    index: dict[tuple[int, str], int] = {}
+    equations: list[list[tuple[int, float]]] = []
+    for _, members in lines:
+        terms = []
+        for i, (key, c, r) in enumerate(members):
+            if hidden(r, c):
+                terms.append((index.setdefault((key, c), len(index)), 1.0 if i == 0 else -1.0))
+        if terms:
+            equations.append(terms)
+    parent = list(range(len(index)))
+
+    def root(i: int) -> int:
+        while parent[i] != i:
+            parent[i] = parent[parent[i]]
+            i = parent[i]
+        return i
+
+    for terms in equations:
+        for variable, _ in terms[1:]:
+            parent[root(variable)] = root(terms[0][0])
+    blocks: dict[int, list[list[tuple[int, float]]]] = {}
+    for terms in equations:
+        blocks.setdefault(root(terms[0][0]), []).append(terms)
+    names = {v: f"{c} of row {key}" for (key, c), v in index.items()}
+    determined = []
+    for block in blocks.values():
+        variables = sorted({v for terms in block for v, _ in terms})
+        column = {v: j for j, v in enumerate(variables)}
+        a = np.zeros((len(block), len(variables)))
+        for row, terms in enumerate(block):
+            for v, coefficient in terms:
+                a[row, column[v]] += coefficient
+        _, singular, vt = np.linalg.svd(a, full_matrices=True)
+        rank = int((singular > 1e-9 * max(singular.max(), 1.0)).sum())
+        null_space = vt[rank:].T
+        for v in variables:
+            if null_space.shape[1] == 0 or np.abs(null_space[column[v]]).max() < 1e-9:
+                determined.append(names[v])
+    return determined
+
+
+@pytest.fixture(scope="module")
+def demo_records() -> pl.DataFrame:
+    records, _ = generate(rows=3000, seed=11, days=75)
+    return records
+
+
+@pytest.mark.parametrize(("k", "period"), [(11, "month"), (11, "week"), (5, "week")])
+def test_no_small_count_published_and_none_recoverable(tmp_path, demo_records, k, period):
+    config = audit_config(tmp_path, k=k, period=period)
+    con = build_store(tmp_path, demo_records, config)
+    audit(con, config)
+    assert check_suppression(con, k) > 0  # the demo data does have small cells to hide
+    assert determined_hidden_cells(con) == []
+    # the whole-window totals of all units are large and stay visible
+    total = frame(con, "audit_volume", "all_units and all_periods").to_dicts()[0]
+    assert total["samples"] > 2000 and total["suppressed_columns"] is None
+    con.close()
+
+
+def test_complementary_suppression_hides_a_partner(tmp_path):
+    # Ward B February has 5 hypoxaemic samples (small, k 11): its numerator is hidden, and so must be one more
+    # numerator in the February column and one in Ward B's row, or the totals would give it away.
+    config = audit_config(tmp_path, k=11, complete_periods_only=False)
+    rows = hand_rows() + monthly_series("Ward C", [40, 40], [200, 200])
+    con = build_store(tmp_path, rows, config)
+    audit(con, config)
+    check_suppression(con, 11)
+    hypo = {(r["unit"], r["period"]): r for r in frame(con, "audit_rates", "measure = 'hypoxaemia'").to_dicts()}
+    assert hypo[("Ward B", "2026-02")]["numerator"] is None
+    assert hypo[("Ward B", "2026-02")]["denominator"] is None or hypo[("Ward B", "2026-02")]["denominator"] >= 11
+    assert hypo[("All units", "all periods")]["numerator"] is not None
+    con.close()
+
+
+def test_no_raw_identifier_in_audit_tables(hand_store):
+    ids = [r[0] for r in hand_store.execute("select distinct patient_id from records").fetchall()]
+    samples = [r[0] for r in hand_store.execute("select sample_id from records").fetchall()]
+    tables = [
+        "audit_volume",
+        "audit_rates",
+        "audit_pf_bands",
+        "audit_flag_rates",
+        "audit_control_chart",
+        "audit_funnel",
+        "audit_funnel_curve",
+        "audit_analyser_qc",
+        "audit_run_reconciliation",
+    ]
+    for table in tables:
+        text = frame(hand_store, table).write_csv()
+        assert not any(i in text for i in ids), table
+        assert not any(s in text for s in samples), table
+    worklist = frame(hand_store, "review_worklist").write_csv()
+    assert not any(i in worklist for i in ids)
+    assert RUN_ID in worklist
+
+
+def test_the_checks_catch_primary_suppression_alone(tmp_path, demo_records, monkeypatch):
+    # Without the complementary step, hidden counts are recoverable: both checks must notice.
+    monkeypatch.setattr("pipeline.audit.suppress_complementary", lambda con: 0)
+    config = audit_config(tmp_path, k=11, period="week")
+    con = build_store(tmp_path, demo_records, config)
+    audit(con, config)
+    assert determined_hidden_cells(con)
+    with pytest.raises(AssertionError, match="recoverable"):
+        check_suppression(con, 11)
+    con.close()
