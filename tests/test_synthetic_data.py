@@ -199,7 +199,7 @@ def test_clean_saturation_is_on_the_curve(con: duckdb.DuckDBPyConnection, clean:
         con,
         """
         SELECT sao2_is_calculated, sample_type, spo2_pct,
-               sao2_pct - predicted_sao2_pct(pao2_mmhg, ph, temperature_c, base_excess_mmol_l) AS d_sao2
+               sao2_pct - predicted_sao2_pct(pao2_mmhg, ph, 37.0, base_excess_mmol_l) AS d_sao2
         FROM r
         """,
         r=clean,

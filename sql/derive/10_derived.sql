@@ -58,7 +58,9 @@ gas as (
         alveolar_po2_full_mmhg(fio2_used, paco2_mmhg, pb_mmhg := pb_mmhg, rq := $rq) as pao2_alveolar_full_mmhg,
         alveolar_po2_max_mmhg(fio2_used, paco2_mmhg, pb_mmhg := pb_mmhg) as pao2_alveolar_max_mmhg,
         fio2_used is not null and fio2_used <= $room_air_fio2_max as on_room_air,
-        predicted_sao2_pct(pao2_mmhg, ph := coalesce(ph, 7.40), temp_c := coalesce(temperature_c, 37.0),
+        -- PaO2 and pH are the analyser's 37 C values, and a sealed sample keeps its saturation when
+        -- warmed to 37 C, so the curve is read at 37 C whatever the patient's temperature.
+        predicted_sao2_pct(pao2_mmhg, ph := coalesce(ph, 7.40), temp_c := 37.0,
                            base_excess := coalesce(base_excess_mmol_l, 0.0)) as predicted_sao2_pct
     from base
 ),

@@ -3,8 +3,8 @@
 -- patient's stable values plus their within-patient noise. Measured: pH, PCO2, PO2, SaO2 (co-oximetry),
 -- Hb, Na, K, Cl, lactate. Calculated by the analyser from the rounded measured values: HCO3, BE and, on
 -- analysers without a co-oximeter (sao2_is_calculated), SaO2.
--- The curve is shifted for the sample's pH, base excess and the patient's temperature, as the derive stage
--- reads it (sql/derive), so a clean record's SaO2 sits on the curve the audit draws.
+-- The curve is shifted for the sample's pH and base excess and read at 37 C (the analyser's PO2 and pH are
+-- 37 C values), as the derive stage reads it (sql/derive), so a clean record's SaO2 sits on that curve.
 WITH measured AS (
     SELECT
         s.*,
@@ -36,7 +36,7 @@ SELECT
     d.rep_pao2 AS pao2_mmhg,
     d.rep_hco3 AS hco3_mmol_l,
     d.rep_be AS base_excess_mmol_l,
-    round(least(100.0, predicted_sao2_pct(d.rep_pao2, d.rep_ph, d.temperature_c, d.rep_be)
+    round(least(100.0, predicted_sao2_pct(d.rep_pao2, d.rep_ph, 37.0, d.rep_be)
                        + CASE WHEN d.sao2_is_calculated THEN 0.0 ELSE d.u_coox END), 1) AS sao2_pct,
     d.rep_hb AS hb_g_dl,
     d.rep_na AS na_mmol_l,

@@ -24,7 +24,7 @@ curve AS (
     SELECT
         b.*,
         alveolar_po2_max_mmhg(b.fio2_upper, b.paco2_mmhg, b.barometric_pressure_mmhg) AS pao2_alveolar_max,
-        predicted_sao2_pct(b.pao2_mmhg, b.ph, COALESCE(b.temperature_c, 37.0), COALESCE(b.base_excess_mmol_l, 0.0))
+        predicted_sao2_pct(b.pao2_mmhg, b.ph, 37.0, COALESCE(b.base_excess_mmol_l, 0.0))
             AS sao2_on_curve
     FROM bound AS b
 )

@@ -66,7 +66,7 @@ SELECT
     r.fio2_charted,
     r.pao2_true,
     -- the pulse oximeter reads the arterial saturation with its own error, whatever is done to the sample
-    least(100.0, round(predicted_sao2_pct(r.pao2_true, r.ph_true, r.temperature_c,
+    least(100.0, round(predicted_sao2_pct(r.pao2_true, r.ph_true, 37.0,
                                           base_excess_ecf_mmol_l(r.ph_true, r.hco3_true)) + r.u_spo2, 0))
         AS spo2_pct,
     -- venous blood of the same patient: lower PO2, higher PCO2, a little more bicarbonate
