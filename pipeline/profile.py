@@ -75,6 +75,9 @@ def load_profile(path: Path | str) -> Profile:
     units = {str(k): str(v) for k, v in _table(raw, "units", path).items()}
     unit_columns = {str(k): str(v) for k, v in _table(raw, "unit_columns", path).items()}
     codes = _table(raw, "codes", path)
+    for code_list in ("sample_type", "o2_device"):
+        if not isinstance(codes.get(code_list, {}), dict):
+            raise ConfigError(f"{path}: [codes.{code_list}] must be a table")
     sample_codes = {str(k).strip().casefold(): str(v) for k, v in codes.get("sample_type", {}).items()}
     device_codes = {str(k).strip().casefold(): str(v) for k, v in codes.get("o2_device", {}).items()}
 

@@ -67,11 +67,16 @@ def _decode(path: Path, data: bytes, profile: Profile) -> tuple[str | None, list
 
 
 def _header(path: Path, text_head: str, profile: Profile) -> list[str]:
-    reader = csv.reader(io.StringIO(text_head), delimiter=profile.delimiter, quotechar=profile.quote_char)
+    # strict, like the record-by-record split, so a header either splits the same way there or is rejected here
+    reader = csv.reader(io.StringIO(text_head), delimiter=profile.delimiter, quotechar=profile.quote_char, strict=True)
     try:
         header = next(reader)
-    except (StopIteration, csv.Error):
+    except StopIteration:
         raise FileRejected("EMPTY_FILE", f"{path.name}: no header line") from None
+    except csv.Error:
+        raise FileRejected(
+            "MALFORMED_HEADER", f"{path.name}: the header line cannot be split into columns (unbalanced quote)"
+        ) from None
     header = [h.strip() for h in header]
     folded = [h.casefold() for h in header]
     dupes = sorted({h for h, f in zip(header, folded, strict=True) if folded.count(f) > 1})
