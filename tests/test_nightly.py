@@ -12,6 +12,7 @@ from __future__ import annotations
 import io
 import json
 import os
+import re
 import shutil
 import signal
 import subprocess
@@ -472,3 +473,40 @@ def test_json_log_lines_parse_and_name_files_not_people(tmp_path):
     rejected = [r for r in records if r["level"] == "error"]
     assert rejected[0]["reason"] == "MISSING_COLUMN" and rejected[0]["file"] == "day99_rejected.csv"
     assert not any("P0" in line for line in stream.getvalue().splitlines())
+
+
+# --------------------------------------------------------------------------------------
+# Documentation
+# --------------------------------------------------------------------------------------
+
+DOCS = Path(__file__).parent.parent
+
+
+def table_codes(markdown: str) -> dict[int, str]:
+    """Exit code -> first words of its meaning, from the rows of a Markdown table."""
+    codes = {}
+    for line in markdown.splitlines():
+        cells = [c.strip() for c in line.strip().strip("|").split("|")]
+        if len(cells) >= 2 and cells[0].isdigit():
+            codes[int(cells[0])] = first_words(cells[1])
+    return codes
+
+
+def first_words(meaning: str) -> str:
+    return re.split(r"[:;(]", meaning, maxsplit=1)[0].strip()
+
+
+def test_exit_code_tables_agree_with_the_code():
+    from pipeline.cli import EXIT_CODES_HELP
+    from pipeline.errors import ConfigError, FileRejected, NoInputError, PipelineError, StorageError, StoreBusyError
+
+    raised = {
+        e.exit_code for e in (PipelineError, ConfigError, NoInputError, StoreBusyError, StorageError, FileRejected)
+    }
+    expected = {0, *raised}
+    in_help = {int(line.split()[0]): line.split(None, 1)[1] for line in EXIT_CODES_HELP.splitlines()[2:]}
+    readme = table_codes((DOCS / "README.md").read_text(encoding="utf-8").split("## Exit codes", 1)[1])
+    operations = table_codes((DOCS / "docs" / "operations.md").read_text(encoding="utf-8").split("## Exit codes")[1])
+    assert set(in_help) == set(readme) == set(operations) == expected
+    assert readme == operations
+    assert {code: first_words(text) for code, text in in_help.items()} == readme
