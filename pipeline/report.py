@@ -359,6 +359,43 @@ def _pivot_rates(rates: pl.DataFrame, periods: list[str]) -> list[dict[str, Any]
     return blocks
 
 
+CONTRACT_COLUMNS = (
+    "source_file",
+    "check_id",
+    "expectation_type",
+    "column_name",
+    "severity",
+    "success",
+    "blocking",
+    "element_count",
+    "unexpected_count",
+    "unexpected_percent",
+    "observed",
+)
+
+
+def _contract(con: duckdb.DuckDBPyConnection, run_id: str) -> dict[str, Any] | None:
+    """The incoming-batch contract results of this run (file names only), or None when no check has run."""
+    if not _has_table(con, "contract_results"):
+        return None
+    results = _table(con, "contract_results")
+    if results.is_empty():
+        return None
+    earlier = results.height
+    if "run_id" in results.columns:
+        results = results.filter(pl.col("run_id") == run_id)
+        earlier -= results.height
+    columns = [c for c in CONTRACT_COLUMNS if c in results.columns] or [c for c in results.columns if c != "run_id"]
+    results = results.select(columns).with_columns(
+        pl.col(c).str.replace(r"^.*[/\\]", "")
+        for c in columns
+        if ("file" in c or "path" in c) and results[c].dtype == pl.String
+    )
+    if "success" in results.columns:
+        results = results.sort("success", nulls_last=True)
+    return {"columns": columns, "rows": results.head(500).rows(), "total": results.height, "earlier": earlier}
+
+
 def _reconciliation(frame: pl.DataFrame) -> dict[str, Any]:
     loaded = frame.filter(pl.col("outcome") == "loaded")
     totals = {c: int(loaded[c].sum() or 0) for c in ("rows_in", "rows_loaded", "rows_quarantined", "rows_duplicate")}
@@ -466,7 +503,7 @@ def render_report(con: duckdb.DuckDBPyConnection, config: SiteConfig, run_id: st
     run = con.execute(
         "select command, started_at, finished_at, outcome, summary from runs where run_id = ?", [run_id]
     ).fetchall()
-    contract = _table(con, "contract_results") if _has_table(con, "contract_results") else None
+    contract = _contract(con, run_id)
 
     periods = volume.filter(~pl.col("all_periods")).sort("period_start")["period"].unique(maintain_order=True).to_list()
     recent = periods[-12:]
@@ -548,8 +585,7 @@ def render_report(con: duckdb.DuckDBPyConnection, config: SiteConfig, run_id: st
         worklist_path=f"{RESTRICTED_DIR}/review_worklist.csv",
         qc=_rows(qc),
         rules=_rows(rules.sort("kind", "rule_id")),
-        contract=None if contract is None else {"columns": contract.columns, "rows": contract.head(500).rows()},
-        contract_total=None if contract is None else contract.height,
+        contract=contract,
         reconciliation=_reconciliation(reconciliation),
         definitions=_definitions(config, catalogue.derive),
         parameters=lambda text: ", ".join(f"{k} {v}" for k, v in json.loads(text or "{}").items()),

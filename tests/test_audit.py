@@ -101,6 +101,17 @@ def test_funnel_limits_use_the_normal_quantiles(macros):
     assert high998 == pytest.approx(0.1 + 0.046353, abs=1e-6)
 
 
+def test_laney_building_blocks(macros):
+    # Domain notes section 13 (Laney 2002): sigma at p 0.10, n 100 = sqrt(0.09 / 100) = 0.03 (binomial);
+    # z = (0.13 - 0.10) / 0.03 = 1; mean moving range 2.5079 -> sigma_z 2.5079 / 1.128 = 2.2233.
+    got = macros.execute(
+        "select binomial_sigma(0.1, 100), standardised_proportion(0.13, 0.1, 100), laney_sigma_z(2.5079), "
+        "standardised_proportion(0.5, 0.0, 100), proportion_upper_limit(0.1, 200, 3.0, NULL)"
+    ).fetchall()[0]
+    assert got[:3] == pytest.approx((0.03, 1.0, 2.2233), abs=1e-4)
+    assert got[3:] == (None, None)  # no spread around p_bar 0; a missing scale is not a zero scale
+
+
 def test_small_cell_rule(macros):
     # US CMS cell size suppression policy: no cell 1-10 (threshold 11); 0 is allowed.
     got = macros.execute(

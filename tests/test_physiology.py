@@ -25,7 +25,10 @@ from pipeline.schema import OXYGEN_DEVICES
 from pipeline.sql_files import SQL_DIR, install_macros
 
 MACRO_FILES = sorted((SQL_DIR / "macros").glob("*.sql"))
-TEST_FILES = [Path(__file__).with_name(name) for name in ("test_units.py", "test_physiology.py", "test_devices.py")]
+TEST_FILES = [
+    Path(__file__).with_name(name)
+    for name in ("test_units.py", "test_physiology.py", "test_devices.py", "test_audit.py")
+]
 MACRO_RE = re.compile(
     r"CREATE\s+(?:OR\s+REPLACE\s+)?(?:TEMP(?:ORARY)?\s+)?MACRO\s+(\w+)\s*\(([^)]*)\)\s*AS", re.IGNORECASE
 )
@@ -64,7 +67,7 @@ MACROS = declared_macros()
 
 
 def test_macro_files_exist_in_dependency_order() -> None:
-    assert [p.name for p in MACRO_FILES] == ["10_units.sql", "20_physiology.sql", "30_devices.sql"]
+    assert [p.name for p in MACRO_FILES] == ["10_units.sql", "20_physiology.sql", "30_devices.sql", "40_statistics.sql"]
     assert len(MACROS) >= 45
 
 

@@ -1,0 +1,383 @@
+"""Outputs of the audit: files, suppressed markers, formula guard, workbook, the offline HTML
+report (rendered in headless Chromium with every host name unresolvable and a network log),
+no raw patient identifier anywhere, and the ``report`` command and nightly-run hook.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import re
+import shutil
+import stat
+import subprocess
+import zipfile
+from pathlib import Path
+from typing import Any
+
+import duckdb
+import polars as pl
+import pytest
+from click.testing import CliRunner
+
+from pipeline.audit import PUBLISHED_TABLES, RESTRICTED_TABLES
+from pipeline.log import Log
+from pipeline.report import (
+    CAUTION,
+    REPORT_NAME,
+    RESTRICTED_DIR,
+    SUPPRESSED,
+    TABLES_DIR,
+    WORKBOOK_NAME,
+    csv_frame,
+    published_files,
+    render_report,
+    write_outputs,
+)
+from synthetic_data import generate
+from tests.audit_store import RUN_ID, audit, audit_config, build_store
+
+CHROMIUM = shutil.which("chromium") or "/usr/bin/chromium"
+INJECTED_UNIT = '=HYPERLINK("http://example.invalid","ward")'
+CAUTION_WORDS = "an audit aid, not a diagnostic device; thresholds follow local policy and licensed clinical judgement"
+
+
+@pytest.fixture(autouse=True)
+def keep_umask():
+    """The command line sets an owner-only umask in its own process (CliRunner runs it in this one)."""
+    mask = os.umask(0o022)
+    os.umask(mask)
+    yield
+    os.umask(mask)
+
+
+@pytest.fixture(scope="module")
+def site(tmp_path_factory) -> dict[str, Any]:
+    """A store of invented records (one unit renamed to a spreadsheet formula) and its written outputs."""
+    tmp = tmp_path_factory.mktemp("report")
+    records, _ = generate(rows=2500, seed=5, days=63)
+    records = records.with_columns(
+        pl.when(pl.col("unit") == "Sandpiper Surgical Ward")
+        .then(pl.lit(INJECTED_UNIT))
+        .otherwise(pl.col("unit"))
+        .alias("unit")
+    )
+    config = audit_config(tmp, k=11, period="week")
+    con = build_store(tmp, records, config)
+    audit(con, config)
+    written = write_outputs(con, config, RUN_ID, Log(quiet=True))
+    ids = [r[0] for r in con.execute("select distinct patient_id from records").fetchall()]
+    samples = [r[0] for r in con.execute("select sample_id from records").fetchall()]
+    keys = [r[0] for r in con.execute("select distinct patient_key from records").fetchall()]
+    yield {
+        "con": con,
+        "config": config,
+        "out": config.output_folder,
+        "written": written,
+        "ids": ids,
+        "samples": samples,
+        "keys": keys,
+        "tmp": tmp,
+    }
+    con.close()
+
+
+def file_text(path: Path) -> str:
+    """Everything readable in an output file: text files as they are, Parquet as CSV, xlsx as its XML parts."""
+    if path.suffix == ".parquet":
+        return pl.read_parquet(path).write_csv()
+    if path.suffix == ".xlsx":
+        with zipfile.ZipFile(path) as book:
+            return "\n".join(book.read(name).decode("utf-8") for name in book.namelist())
+    return path.read_text(encoding="utf-8")
+
+
+def test_every_output_is_written_in_place(site):
+    out: Path = site["out"]
+    for table in PUBLISHED_TABLES:
+        assert (out / TABLES_DIR / f"{table}.parquet").is_file()
+        assert (out / TABLES_DIR / f"{table}.csv").is_file()
+    for table in RESTRICTED_TABLES:
+        for suffix in (".parquet", ".csv", ".xlsx"):
+            assert (out / RESTRICTED_DIR / f"{table}{suffix}").is_file()
+    assert (out / WORKBOOK_NAME).is_file() and (out / REPORT_NAME).is_file()
+    assert sorted(site["written"]) == sorted(p for p in out.rglob("*") if p.is_file())
+    assert not [p for p in out.rglob("*") if p.name.startswith(".")]  # no temporary file left behind
+
+
+def test_restricted_outputs_are_owner_only(site):
+    out: Path = site["out"]
+    assert stat.S_IMODE((out / RESTRICTED_DIR).stat().st_mode) == 0o700
+    for path in (out / RESTRICTED_DIR).iterdir():
+        assert stat.S_IMODE(path.stat().st_mode) == 0o600, path.name
+    assert stat.S_IMODE((out / REPORT_NAME).stat().st_mode) == 0o640
+
+
+def test_csv_marks_suppressed_cells_apart_from_zero(site):
+    text = pl.read_csv(site["out"] / TABLES_DIR / "audit_rates.csv", infer_schema=False)
+    parquet = pl.read_parquet(site["out"] / TABLES_DIR / "audit_rates.parquet")
+    hidden = text.filter(pl.col("numerator") == SUPPRESSED)
+    assert hidden.height > 0
+    # the same rows in Parquet hold NULL, and name the suppressed columns
+    assert (
+        parquet.filter(pl.col("suppressed_columns").str.contains("numerator"))["numerator"].null_count()
+        == hidden.height
+    )
+    assert (text["rate"] == SUPPRESSED).sum() == hidden.height + (
+        text.filter((pl.col("numerator") != SUPPRESSED) & (pl.col("denominator") == SUPPRESSED)).height
+    )
+    assert "0" in text["numerator"].to_list()  # a real zero stays 0
+
+
+def test_csv_cells_cannot_start_a_formula(site):
+    text = pl.read_csv(site["out"] / TABLES_DIR / "audit_volume.csv", infer_schema=False)
+    units = set(text["unit"].to_list())
+    assert "'" + INJECTED_UNIT in units and INJECTED_UNIT not in units
+    frame = pl.DataFrame({"a": ["=1+1", "+SUM(A1)", "-2", "@cmd", "plain", None], "n": [1, 2, 3, 4, 5, 6]})
+    assert csv_frame(frame)["a"].to_list() == ["'=1+1", "'+SUM(A1)", "'-2", "'@cmd", "plain", None]
+
+
+def test_workbook_has_every_table_and_no_formula(site):
+    with zipfile.ZipFile(site["out"] / WORKBOOK_NAME) as book:
+        workbook = book.read("xl/workbook.xml").decode()
+        sheets = [book.read(n).decode() for n in book.namelist() if n.startswith("xl/worksheets/sheet")]
+        strings = book.read("xl/sharedStrings.xml").decode()
+    for table in ("about", *PUBLISHED_TABLES):
+        assert f'name="{table}"' in workbook
+    assert "review_worklist" not in workbook  # row-level data stays in the restricted folder
+    assert not any("<f>" in s for s in sheets)  # the injected unit name is text, never a formula
+    assert f"<t>{INJECTED_UNIT}</t>" in strings
+    assert f">{SUPPRESSED}<" in strings and "audit aid, not a diagnostic device" in strings
+
+
+def test_worklist_is_ranked_and_pseudonymised(site):
+    worklist = pl.read_parquet(site["out"] / RESTRICTED_DIR / "review_worklist.parquet")
+    assert worklist.height > 0
+    assert worklist["review_rank"].to_list() == list(range(1, worklist.height + 1))
+    ranks = worklist["severity"].replace_strict({"high": 1, "medium": 2, "low": 3, "info": 4}).to_list()
+    assert ranks == sorted(ranks)
+    assert set(worklist["patient_key"].drop_nulls()) <= set(site["keys"])
+    assert {"sample_id", "evidence", "unit", "collected_at", "rule_title"} <= set(worklist.columns)
+    assert "patient_id" not in worklist.columns
+
+
+def tokens(text: str) -> set[str]:
+    return set(re.findall(r"[A-Za-z0-9_-]+", text))
+
+
+def test_no_raw_patient_identifier_in_any_output(site):
+    ids, samples, keys = set(site["ids"]), set(site["samples"]), set(site["keys"])
+    assert all(re.fullmatch(r"[A-Za-z0-9_-]+", i) for i in ids | samples | keys)  # whole tokens, so sets work
+    for path in site["out"].rglob("*"):
+        if path.is_file():
+            assert not tokens(file_text(path)) & ids, f"raw patient identifier in {path.name}"
+    restricted = tokens(file_text(site["out"] / RESTRICTED_DIR / "review_worklist.csv"))
+    assert restricted & keys and restricted & samples  # the laboratory's list names samples and pseudonyms
+    for path in published_files(site["out"]):  # aggregate files carry neither
+        found = tokens(file_text(path))
+        assert not found & samples, f"accession number in {path.name}"
+        assert not found & keys, f"patient pseudonym in {path.name}"
+
+
+def test_report_is_self_contained(site):
+    html = (site["out"] / REPORT_NAME).read_text(encoding="utf-8")
+    assert not re.search(r"""(?:src|href)\s*=\s*["']?\s*(?:https?:)?//""", html, re.I)
+    assert not re.search(r"url\(\s*['\"]?\s*(?:https?:)?//", html, re.I)
+    assert not re.search(r"<script|<link|<iframe|<img|@import|@font-face", html, re.I)
+    assert html.count("<svg") >= 12  # 6 trend charts and 6 funnel plots
+    assert html.count(CAUTION) == 2
+    assert "Contract checks: not run" in html  # the store holds no contract result
+    for section in (
+        "summary",
+        "trends",
+        "funnels",
+        "data-quality",
+        "rules",
+        "contract",
+        "reconciliation",
+        "analyser-qc",
+        "methods",
+    ):
+        assert f'id="{section}"' in html
+    assert "'" + INJECTED_UNIT not in html  # the HTML escapes it instead
+    assert "=HYPERLINK(&#34;http://example.invalid&#34;,&#34;ward&#34;)" in html
+    # svg element ids are unique across the page (each chart's clip paths are prefixed)
+    ids = re.findall(r'\bid="([^"]+)"', html)
+    assert len(ids) == len(set(ids))
+
+
+def test_contract_results_are_rendered_when_present(site, monkeypatch):
+    from markupsafe import Markup
+
+    monkeypatch.setattr("pipeline.report.svg_markup", lambda chart, prefix: Markup("<svg></svg>"))
+    con: duckdb.DuckDBPyConnection = site["con"]
+    con.execute(
+        "create table if not exists contract_results (run_id varchar, source_file varchar, check_id varchar, "
+        "expectation_type varchar, column_name varchar, severity varchar, success boolean, unexpected_count bigint, "
+        "observed varchar)"
+    )
+    con.execute(
+        "insert into contract_results by name select ? as run_id, '/data/exports/ward/2026-03-01.csv' as source_file, "
+        "'ph_range' as check_id, 'expect_column_values_to_be_between' as expectation_type, 'ph' as column_name, "
+        "'critical' as severity, false as success, 3 as unexpected_count, '3 of 120 values outside 6.5-8' as observed",
+        [RUN_ID],
+    )
+    try:
+        html = render_report(con, site["config"], RUN_ID)
+        earlier = render_report(con, site["config"], "another-run")
+    finally:
+        con.execute("delete from contract_results")
+    assert "Contract checks: not run" not in html
+    assert "expect_column_values_to_be_between" in html and "3 of 120 values outside 6.5-8" in html
+    assert "2026-03-01.csv" in html and "/data/exports" not in html  # file name only, never its folder
+    assert "no incoming batch was checked in this run (1 result(s) of earlier runs" in earlier
+
+
+# --------------------------------------------------------------------------------------
+# Headless Chromium: loads with no network request, shows charts and the caution
+# --------------------------------------------------------------------------------------
+
+
+def chromium(page: Path, tmp: Path, *extra: str) -> tuple[str, list[str]]:
+    """Open ``page`` headless with every host unresolvable; return the DOM and the URLs the page asked for.
+
+    The network log holds every request the browser started; those made for the page carry the page's site
+    (file://) in their network isolation key, which tells them apart from the browser's own background
+    traffic (update and time checks), failing here too.
+    """
+    if not Path(CHROMIUM).exists():
+        pytest.fail("chromium is not installed (Debian: apt-get install chromium chromium-driver; .ci/run does it)")
+    netlog = tmp / f"{page.stem}-net.json"
+    command = [
+        CHROMIUM,
+        "--headless",
+        "--no-sandbox",
+        "--disable-gpu",
+        "--disable-background-networking",
+        "--disable-component-update",
+        "--disable-sync",
+        "--no-first-run",
+        "--no-default-browser-check",
+        f"--user-data-dir={tmp / 'chromium-profile'}",
+        "--host-resolver-rules=MAP * ~NOTFOUND",
+        f"--log-net-log={netlog}",
+        "--net-log-capture-mode=Everything",
+        *extra,
+        page.as_uri(),
+    ]
+    done = subprocess.run(command, capture_output=True, text=True, timeout=60, check=True)
+    log = json.loads(netlog.read_text(encoding="utf-8"))
+    start = log["constants"]["logEventTypes"]["URL_REQUEST_START_JOB"]
+    urls = [
+        e["params"]["url"]
+        for e in log["events"]
+        if e["type"] == start and "file://" in str(e.get("params", {}).get("network_isolation_key", ""))
+    ]
+    assert log["events"], "the network log is empty: logging did not work"
+    return done.stdout, urls
+
+
+def network_urls(urls: list[str]) -> list[str]:
+    return [u for u in urls if not u.startswith(("file:", "data:", "about:", "chrome:", "blob:"))]
+
+
+def test_chromium_detects_a_network_request(tmp_path):
+    # Control: a page that does fetch something shows up in the network log, so the check below can fail.
+    page = tmp_path / "fetching.html"
+    page.write_text('<html><body><img src="http://example.invalid/x.png"></body></html>', encoding="utf-8")
+    _, urls = chromium(page, tmp_path, "--dump-dom")
+    assert any("example.invalid" in u for u in network_urls(urls))
+
+
+def test_report_renders_offline_in_chromium(site, tmp_path):
+    report = site["out"] / REPORT_NAME
+    dom, urls = chromium(report, tmp_path, "--dump-dom", "--virtual-time-budget=3000")
+    assert network_urls(urls) == []
+    assert dom.count("<svg") >= 12
+    assert CAUTION_WORDS in dom
+    assert "Blood gas record audit" in dom
+    assert not tokens(dom) & set(site["ids"])
+    shot = tmp_path / "first-screen.png"
+    _, urls = chromium(report, tmp_path, f"--screenshot={shot}", "--window-size=1280,900")
+    assert network_urls(urls) == []
+    assert shot.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n" and shot.stat().st_size > 20_000
+
+
+# --------------------------------------------------------------------------------------
+# The report command and the nightly run
+# --------------------------------------------------------------------------------------
+
+SITE_TOML = """\
+[site]
+name = "Invented report test site"
+barometric_pressure_mmhg = 760
+
+[store]
+path = "store/abg_audit.duckdb"
+
+[output]
+folder = "output"
+
+[privacy]
+small_cell_threshold = 11
+
+[audit]
+period = "month"
+complete_periods_only = false
+
+[[inputs]]
+path = "exports"
+profile = "{profile}"
+pattern = "*.csv"
+"""
+PROFILE = Path(__file__).parent / "fixtures" / "profiles" / "minimal.toml"
+HEADER = "id,mrn,ward,collected,resulted,type,device,fio2,ph,pco2,po2,hco3\n"
+
+
+def export_rows(count: int) -> str:
+    rows = []
+    for n in range(count):
+        day, minute = 2 + n // 40, n % 40
+        po2 = 55 if n % 6 == 0 else 88
+        rows.append(
+            f"S{n:05d},MRN-{n % 37:03d}-X,W{n % 2 + 1},2026-03-{day:02d} 10:{minute:02d},"
+            f"2026-03-{day:02d} 10:{minute + 8:02d},A,RA,0.21,7.40,40,{po2},24.5\n"
+        )
+    return HEADER + "".join(rows)
+
+
+def test_nightly_run_writes_the_outputs_and_report_command_rebuilds_them(tmp_path, monkeypatch):
+    from pipeline.cli import main
+
+    monkeypatch.setenv("ABG_AUDIT_PSEUDONYM_KEY", "report-test-key-0123456789abcdef")
+    (tmp_path / "exports").mkdir()
+    (tmp_path / "exports" / "2026-03.csv").write_text(export_rows(120), encoding="utf-8")
+    config = tmp_path / "site.toml"
+    config.write_text(SITE_TOML.format(profile=PROFILE.as_posix()), encoding="utf-8")
+    runner = CliRunner()
+    result = runner.invoke(main, ["run", "--config", str(config)])
+    assert result.exit_code == 0, result.output
+    report = tmp_path / "output" / REPORT_NAME
+    assert report.is_file()
+    first = report.stat().st_mtime_ns
+    html = report.read_text(encoding="utf-8")
+    assert "2026-03" in html and "MRN-" not in html
+    volume = pl.read_parquet(tmp_path / "output" / TABLES_DIR / "audit_volume.parquet")
+    assert volume.filter(pl.col("all_units") & pl.col("all_periods"))["samples"].to_list() == [120]
+
+    result = runner.invoke(main, ["report", "--config", str(config), "--period", "week"])
+    assert result.exit_code == 0, result.output
+    assert "files written" in result.output and "not a diagnostic device" in result.output
+    assert report.stat().st_mtime_ns > first
+    weeks = pl.read_parquet(tmp_path / "output" / TABLES_DIR / "audit_volume.parquet")
+    assert any(p.startswith("2026-W") for p in weeks["period"].to_list())
+
+
+def test_report_command_on_a_missing_store_is_a_clear_error(tmp_path):
+    from pipeline.cli import main
+
+    config = tmp_path / "site.toml"
+    config.write_text(SITE_TOML.format(profile=PROFILE.as_posix()), encoding="utf-8")
+    result = CliRunner().invoke(main, ["report", "--config", str(config)])
+    assert result.exit_code == 74
+    assert "no store" in result.output and "Traceback" not in result.output
