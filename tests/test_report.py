@@ -381,3 +381,18 @@ def test_report_command_on_a_missing_store_is_a_clear_error(tmp_path):
     result = CliRunner().invoke(main, ["report", "--config", str(config)])
     assert result.exit_code == 74
     assert "no store" in result.output and "Traceback" not in result.output
+
+
+def test_first_night_without_a_complete_period(tmp_path):
+    # One sample in a month still under way: the tables hold only a zero total and the report says so.
+    from tests.rule_harness import record
+
+    config = audit_config(tmp_path, k=11)
+    con = build_store(tmp_path, [record("ONLY")], config)
+    audit(con, config)
+    write_outputs(con, config, RUN_ID, Log(quiet=True))
+    con.close()
+    html = (config.output_folder / REPORT_NAME).read_text(encoding="utf-8")
+    assert "No complete period with data yet." in html and "no complete period yet" in html
+    volume = pl.read_parquet(config.output_folder / TABLES_DIR / "audit_volume.parquet")
+    assert volume.select("samples", "samples_usable").rows() == [(0, 0)]

@@ -42,7 +42,8 @@ sample_cells as (
         f.family,
         g.unit,
         g.period_start,
-        case f.family
+        -- an empty window still has its all-units, all-periods row: zero, not NULL
+        coalesce(case f.family
             when 'samples' then g.samples
             when 'patients' then g.patients
             when 'samples_usable' then g.samples_usable
@@ -65,7 +66,7 @@ sample_cells as (
             when 'pf_moderate' then g.pf_moderate
             when 'pf_mild' then g.pf_mild
             when 'pf_above_300' then g.pf_above_300
-        end as value
+        end, 0) as value
     from grouped as g
     cross join (
         values
