@@ -47,8 +47,9 @@ WORKBOOK_NAME = "audit_tables.xlsx"
 TABLES_DIR = "tables"
 RESTRICTED_DIR = "restricted"
 TEMPLATES = Path(__file__).resolve().parent / "templates"
-# Cells a spreadsheet would run as a formula (OWASP "CSV injection"): prefix with an apostrophe.
-_FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
+EXCEL_MAX_ROWS = 1_000_000  # a sheet holds 1 048 576 rows; Parquet and CSV always hold every row
+# Text a spreadsheet would run as a formula (OWASP "CSV injection") gets a leading apostrophe.
+_FORMULA_START = r"^[=+\-@\t\r]"
 _PROPORTION_COLUMNS = {
     "rate",
     "ci_low",
@@ -103,11 +104,6 @@ def _suppressed_sets(frame: pl.DataFrame) -> list[set[str]]:
     return [set(s.split(", ")) if s else set() for s in frame["suppressed_columns"].to_list()]
 
 
-def guard_formula(value: str) -> str:
-    """A text cell that a spreadsheet would evaluate gets a leading apostrophe."""
-    return "'" + value if value.startswith(_FORMULA_START) else value
-
-
 def csv_frame(frame: pl.DataFrame) -> pl.DataFrame:
     """The frame as it goes into a CSV file: suppressed cells say ``suppressed`` (distinct from 0 and
     from an empty cell, which means "not defined"), and text cells cannot start a formula."""
@@ -117,7 +113,11 @@ def csv_frame(frame: pl.DataFrame) -> pl.DataFrame:
         series = frame[name]
         hidden = [name in f for f in flags]
         if series.dtype == pl.String:
-            series = series.map_elements(guard_formula, return_dtype=pl.String, skip_nulls=True)
+            series = (
+                pl.select(pl.when(series.str.contains(_FORMULA_START)).then(pl.lit("'") + series).otherwise(series))
+                .to_series()
+                .alias(name)
+            )
         if any(hidden):
             text = series.cast(pl.String)
             series = pl.Series(name, [SUPPRESSED if h else v for h, v in zip(hidden, text.to_list(), strict=True)])
@@ -160,7 +160,7 @@ def _write_workbook(path: Path, about: list[tuple[str, str]], sheets: dict[str, 
                 sheet.write_string(0, col, column, header)
                 width = max([len(column)] + [len(str(v)) for v in frame[column].head(200).to_list()])
                 sheet.set_column(col, col, min(max(width + 2, 8), 60))
-            for row_number, row in enumerate(frame.iter_rows(), start=1):
+            for row_number, row in enumerate(frame.head(EXCEL_MAX_ROWS).iter_rows(), start=1):
                 for col, (column, value) in enumerate(zip(frame.columns, row, strict=True)):
                     if column in flags[row_number - 1]:
                         sheet.write_string(row_number, col, SUPPRESSED, marker)
@@ -179,7 +179,7 @@ def _write_workbook(path: Path, about: list[tuple[str, str]], sheets: dict[str, 
                         sheet.write_string(row_number, col, str(value))
             sheet.freeze_panes(1, 0)
             if frame.height:
-                sheet.autofilter(0, 0, frame.height, max(frame.width - 1, 0))
+                sheet.autofilter(0, 0, min(frame.height, EXCEL_MAX_ROWS), max(frame.width - 1, 0))
         book.close()
 
     return atomic_write(path, write, mode)
@@ -535,7 +535,9 @@ def render_report(con: duckdb.DuckDBPyConnection, config: SiteConfig, run_id: st
     flags_total = flag_rates.filter(pl.col("all_periods"))
     units = volume.filter(~pl.col("all_units"))["unit"].unique(maintain_order=True).to_list()
     flag_matrix = []
-    for rule in dq_rules.sort("severity", "rule_id").to_dicts():
+    severity_order = {"high": 0, "medium": 1, "low": 2, "info": 3}
+    ordered = sorted(dq_rules.to_dicts(), key=lambda r: (severity_order.get(r["severity"], 9), r["rule_id"]))
+    for rule in ordered:
         rows = {r["unit"]: r for r in flags_total.filter(pl.col("rule_id") == rule["rule_id"]).to_dicts()}
         flag_matrix.append({"rule": rule, "cells": [rows.get(u) for u in units], "total": rows.get("All units")})
     band_rows = bands.filter(pl.col("all_periods")).sort("all_units", "unit", "sort_order")
