@@ -15,3 +15,8 @@ where $rebuild
        select patient_key from records
        where run_id in (select run_id from scope_runs) and patient_key is not null
    );
+
+-- Whether this is a rebuild, for stages that keep their own incremental state
+-- (analyser_patient_median_shift keeps its complete blocks).
+create or replace temp table scope_settings as
+select $rebuild::boolean as rebuild;
