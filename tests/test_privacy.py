@@ -46,6 +46,10 @@ def plant_failing_files(root: Path) -> None:
     rows = day_rows(7, 4, canary)
     # No header line: the first record is taken as the header and the file is rejected.
     (exports / "day07_no_header.csv").write_text("".join(rows), encoding="utf-8")
+    # No header line, and the identifier in two columns: the "header" repeats a name.
+    cells = rows[1].split(",")
+    cells[2] = cells[1]
+    (exports / "day07_no_header_twice.csv").write_text(",".join(cells) + "".join(rows[2:]), encoding="utf-8")
     # NUL bytes: not a text export.
     (exports / "day08_binary.csv").write_bytes((HEADER + "".join(rows)).encode() + b"\x00\x01")
     # Latin-1 bytes in a file declared UTF-8.
@@ -120,7 +124,7 @@ def test_planted_identifiers_stay_in_the_protected_store(tmp_path):
         held = one(f"select count(*) from records where patient_id like '{CANARY}-%'")[0][0]
     finally:
         con.close()
-    assert {"MISSING_COLUMN", "BINARY_FILE", "ENCODING_INVALID"} <= reasons
+    assert {"MISSING_COLUMN", "DUPLICATE_COLUMN", "BINARY_FILE", "ENCODING_INVALID"} <= reasons
     assert quarantined == 13 and held == 4 * 30 + 3  # 4 days x 3 failing rows + 1 misplaced; 3 of day 10 load
     assert sum("rejected" in text for text in said) >= 3
 

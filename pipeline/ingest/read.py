@@ -79,10 +79,13 @@ def _header(path: Path, text_head: str, profile: Profile) -> list[str]:
         ) from None
     header = [h.strip() for h in header]
     folded = [h.casefold() for h in header]
-    dupes = sorted({h for h, f in zip(header, folded, strict=True) if folded.count(f) > 1})
-    if dupes:
+    repeated = [str(number) for number, f in enumerate(folded, start=1) if folded.count(f) > 1]
+    if repeated:
+        # Positions, not names: in a file without its header line the "names" are a patient's data.
         raise FileRejected(
-            "DUPLICATE_COLUMN", f"{path.name}: column names appear twice in the header: {', '.join(dupes)}"
+            "DUPLICATE_COLUMN",
+            f"{path.name}: header columns {', '.join(repeated)} have the same name (ignoring case); "
+            "each column must be named once",
         )
     return header
 
