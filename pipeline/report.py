@@ -15,6 +15,7 @@ from __future__ import annotations
 import json
 import os
 import re
+import stat
 import tempfile
 from collections.abc import Callable, Iterable
 from datetime import UTC, date, datetime
@@ -620,6 +621,10 @@ def write_outputs(con: duckdb.DuckDBPyConnection, config: SiteConfig, run_id: st
     out = config.output_folder
     try:
         out.mkdir(parents=True, exist_ok=True, mode=0o750)
+        (out / TABLES_DIR).mkdir(exist_ok=True, mode=0o750)
+        for published in (out, out / TABLES_DIR):
+            # A run's umask is 077 (the store's files); the analysts' group still needs to enter these.
+            os.chmod(published, stat.S_IMODE(published.stat().st_mode) | 0o050)
         restricted = out / RESTRICTED_DIR
         restricted.mkdir(exist_ok=True, mode=0o700)
         os.chmod(restricted, 0o700)

@@ -183,6 +183,10 @@ def test_store_wal_lock_and_outputs_folder_are_owner_only(tmp_path, monkeypatch)
     restricted = config.output_folder / "restricted"
     for path in [restricted, *restricted.iterdir()]:
         assert stat.S_IMODE(path.stat().st_mode) & 0o077 == 0, path.name
+    # Published aggregate outputs: the analysts' group may enter and read, nobody else.
+    for folder in (config.output_folder, config.output_folder / "tables"):
+        assert stat.S_IMODE(folder.stat().st_mode) == 0o750, folder.name
+    assert stat.S_IMODE((config.output_folder / "audit_report.html").stat().st_mode) == 0o640
 
 
 def test_created_key_file_is_owner_only_in_an_owner_only_folder(tmp_path):
