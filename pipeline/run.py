@@ -40,6 +40,7 @@ from pipeline.testhooks import pause_point
 
 EXIT_OK = 0
 EXIT_DATA_ERROR = 65  # some file was rejected; the others loaded
+EXIT_NO_INPUT = 66  # no input file or folder found at all
 
 
 @dataclass
@@ -61,6 +62,8 @@ class RunResult:
     def outcome(self) -> str:
         if self.exit_code == EXIT_OK:
             return "succeeded"
+        if self.exit_code == EXIT_NO_INPUT:
+            return "no_input"
         return "completed_with_rejections"
 
 
@@ -349,6 +352,8 @@ def run_pipeline(
                     _run_stages(con, config, catalogue, key, result, log, plan, stats, known, rebuild=rebuild)
                     if any(f.outcome == "rejected" for f in result.files):
                         result.exit_code = EXIT_DATA_ERROR
+                    if result.missing_inputs and not result.files:
+                        result.exit_code = EXIT_NO_INPUT  # recorded as such, then raised below
                     result.duration_s = time.monotonic() - started
                     _record_run_end(con, result, result.duration_s)
                 except PipelineError as err:

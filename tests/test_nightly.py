@@ -437,6 +437,16 @@ def test_unexpected_error_is_one_line_without_its_message_and_the_run_is_marked_
     assert (config_of(config_path).output_folder / "audit_report.html").exists()
 
 
+def test_missing_input_folder_exits_66_and_is_recorded(tmp_path):
+    config_path = make_site(tmp_path / "site")
+    shutil.rmtree(config_path.parent / "exports")
+    outcome = CliRunner().invoke(main, ["run", "--config", str(config_path)], env=env())
+    assert outcome.exit_code == 66
+    assert outcome.stderr.splitlines()[-1].startswith("error: no input found: ")
+    store = config_of(config_path).store_path
+    assert one(store, "select outcome || ' ' || exit_code from runs") == "no_input 66"
+
+
 # --------------------------------------------------------------------------------------
 # Logs
 # --------------------------------------------------------------------------------------

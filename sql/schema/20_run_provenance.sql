@@ -1,6 +1,8 @@
 -- Provenance of each run beyond the first columns of `runs`, and the fingerprints that let
 -- a nightly run skip unchanged files without reading them. Idempotent: ADD COLUMN IF NOT
 -- EXISTS upgrades a store made by an earlier version in place.
+-- runs.outcome: running, succeeded, completed_with_rejections (exit 65), no_input (66),
+-- failed (the exit code and error are kept), interrupted (killed; marked by the next run).
 
 alter table runs add column if not exists rebuild boolean;
 alter table runs add column if not exists python_version varchar;
