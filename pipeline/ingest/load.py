@@ -15,6 +15,7 @@ from pathlib import Path
 import duckdb
 import polars as pl
 
+from pipeline.contract import ContractOutcome, keep_results, validate_stage
 from pipeline.errors import FileRejected
 from pipeline.ingest.parse import FAILED, REASON, STATUS, UNIT_SUFFIX, parse_export
 from pipeline.ingest.read import ROW, read_export
@@ -166,12 +167,16 @@ def ingest_file(
     notes = parsed.notes.to_arrow()
     unit_params = {f"unit_{name}": profile.unit_of(name) for name in UNIT_FIELDS}
     names = {"run_id": run_id, "source_file": str(path), "file_sha256": result.sha256}
+    contract: ContractOutcome | None = None
     con.execute("begin transaction")
     try:
         con.register("stage_input", stage)
         con.register("stage_notes", notes)
         run_sql(con, "ingest/10_convert.sql", **unit_params)
         _check_units(con, path, profile)
+        contract = validate_stage(con, path, run_id, result.sha256)
+        keep_results(con, contract)
+        contract.raise_if_rejected()
         run_sql(con, "ingest/30_classify.sql")
         run_sql(con, "ingest/40_merge.sql", **names)
         counts = con.execute(read_sql("ingest/50_counts.sql")).fetchall()[0]
@@ -205,6 +210,8 @@ def ingest_file(
         con.execute("commit")
     except FileRejected as err:
         con.execute("rollback")
+        if contract is not None:  # the rollback took the file's contract results; keep them
+            keep_results(con, contract, own_transaction=True)
         result.outcome, result.reason_code, result.message = "rejected", err.reason_code, str(err)
         result.rows_loaded = result.rows_quarantined = result.rows_duplicate = result.rows_superseded_in_file = 0
     except BaseException:
