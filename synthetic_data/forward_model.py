@@ -36,8 +36,8 @@ files beside this module (``synthetic_data/sql/``). The steps, per sample:
    ``base_excess_ecf_mmol_l``. SaO2 is measured by co-oximetry: ``predicted_sao2_pct(PO2, pH,
    37 C, BE)`` (the curve shifted for pH and base excess, read at 37 C because PO2 and pH
    are the analyser's 37 C values, as the derive stage reads it) plus co-oximeter error (SD
-   0.7, clipped at 2 points); on samples flagged ``sao2_is_calculated`` (a configurable share) it is the curve value itself. Chloride
-   follows from the patient's own anion gap.
+   0.7, clipped at 2 points); on samples flagged ``sao2_is_calculated`` (a configurable
+   share) it is the curve value itself. Chloride follows from the patient's own anion gap.
 8. **Times.** Collected on a whole minute (a morning-round bump around 06:00 UTC), resulted
    2-28 minutes later (log-normal; point-of-care median 4 min, laboratory 11-12 min).
 
