@@ -17,8 +17,17 @@ import polars as pl
 
 from pipeline.contract import ContractOutcome, keep_results, validate_stage
 from pipeline.errors import FileRejected
-from pipeline.ingest.parse import FAILED, REASON, STATUS, UNIT_SUFFIX, parse_export
-from pipeline.ingest.read import ROW, read_export
+from pipeline.ingest.parse import (
+    FAILED,
+    REASON,
+    STATUS,
+    UNIT_SUFFIX,
+    ColumnPlan,
+    FailureTally,
+    parse_batch,
+    plan_columns,
+)
+from pipeline.ingest.read import ROW, ExportReader, ParquetExport, open_export
 from pipeline.profile import Profile
 from pipeline.pseudonym import add_patient_key
 from pipeline.schema import FIELDS, UNIT_CHOICES, Kind
@@ -34,6 +43,7 @@ _POLARS_TYPES = {
     Kind.BOOLEAN: pl.Boolean,
 }
 UNIT_FIELDS = tuple(f.name for f in FIELDS if f.unit_family is not None)
+_STAGE_TABLES = ("stage_converted", "stage_repeats", "stage_set_aside", "stage_held")
 
 # Median of each field after conversion must fall here, or the declared unit is wrong for
 # the whole file (common practice: adult ranges, domain notes section 11).
@@ -101,7 +111,13 @@ def _stage_frame(values: pl.DataFrame, key: bytes, keep_patient_id: bool) -> pl.
     return frame.with_columns(missing + units)
 
 
-def _check_units(con: duckdb.DuckDBPyConnection, path: Path, profile: Profile) -> None:
+def _check_units(
+    con: duckdb.DuckDBPyConnection,
+    path: Path,
+    profile: Profile,
+    reader: ExportReader | ParquetExport,
+    plan: ColumnPlan,
+) -> None:
     medians = con.execute(read_sql("ingest/20_unit_sanity.sql")).fetchall()
     for field_name, count, median in medians:
         low, high = UNIT_SANITY[field_name]
@@ -109,7 +125,7 @@ def _check_units(con: duckdb.DuckDBPyConnection, path: Path, profile: Profile) -
             continue
         declared = profile.unit_of(field_name)
         source = profile.columns.get(field_name, field_name)
-        raw_median = con.execute(f"select median({field_name}) from stage_input where {REASON} is null").fetchall()[0]
+        raw_median = _raw_median(con, reader, plan, profile, field_name)
         hint = ""
         family = next(f.unit_family for f in FIELDS if f.name == field_name)
         for alternative in UNIT_CHOICES[family or ""]:
@@ -126,6 +142,104 @@ def _check_units(con: duckdb.DuckDBPyConnection, path: Path, profile: Profile) -
             f"{path.name}: column {source!r} ({field_name}) has median {median:.3g} after converting from "
             f"{declared}, outside the plausible {low:g}-{high:g}{hint}",
         )
+
+
+def _raw_median(
+    con: duckdb.DuckDBPyConnection,
+    reader: ExportReader | ParquetExport,
+    plan: ColumnPlan,
+    profile: Profile,
+    field_name: str,
+) -> tuple[float | None]:
+    """Median of one field in the profile's unit over the parsed rows of the whole file.
+
+    Only needed for the hint of a file rejected for its unit, so the file is parsed again
+    rather than keeping every raw value while loading."""
+    parts = []
+    for batch in reader.batches():
+        if batch.restart:
+            parts = []
+        values = parse_batch(batch, profile, plan, FailureTally(plan)).values
+        parts.append(values.filter(pl.col(REASON).is_null()).select(pl.col(field_name).alias("value")))
+    con.register("stage_raw_values", pl.concat(parts).to_arrow())
+    try:
+        return con.execute("select median(value) from stage_raw_values").fetchall()[0]
+    finally:
+        con.unregister("stage_raw_values")
+
+
+@dataclass
+class StagedFile:
+    """What staging one file left behind besides the temp table ``stage_converted``."""
+
+    rows_in: int
+    malformed: list[tuple[int, str, str]]
+    originals: pl.DataFrame  # source_row, original_text (cells as JSON) of every row with a reason
+
+
+def _stage_file(
+    con: duckdb.DuckDBPyConnection,
+    reader: ExportReader | ParquetExport,
+    plan: ColumnPlan,
+    profile: Profile,
+    key: bytes,
+    keep_patient_id: bool,
+    unit_params: dict[str, str],
+) -> StagedFile:
+    """Parse the file batch by batch into the temp table ``stage_converted`` (canonical units,
+    hard limits, content hash per row); register ``stage_notes``. Memory stays bounded by
+    the batch size whatever the size of the file.
+
+    Raises FileRejected for a fault of the whole file, after every batch was counted.
+    """
+    convert = read_sql("ingest/10_convert.sql").strip().rstrip(";")
+    used = con.extract_statements(convert)[0].named_parameters
+    params = {k: v for k, v in unit_params.items() if k in used}
+    tally = FailureTally(plan)
+    rows_in = 0
+    malformed: list[tuple[int, str, str]] = []
+    notes: list[pl.DataFrame] = []
+    originals: list[pl.DataFrame] = []
+    first = True
+    for batch in reader.batches():
+        if batch.restart:  # the file is read again record by record: forget the batches so far
+            tally, rows_in, malformed, notes, originals, first = FailureTally(plan), 0, [], [], [], True
+        parsed = parse_batch(batch, profile, plan, tally)
+        rows_in += batch.cells.height + len(batch.malformed)
+        malformed += batch.malformed
+        notes.append(parsed.notes)
+        stage = _stage_frame(parsed.values, key, keep_patient_id)
+        con.register("stage_input", stage.to_arrow(compat_level=pl.CompatLevel.newest()))
+        target = "create or replace temp table stage_converted as" if first else "insert into stage_converted"
+        con.execute(f"{target}\n{convert}", params)
+        first = False
+        if batch.cells.height:
+            rows = batch.cells.get_column(ROW)
+            bad = con.execute(
+                "select source_row from stage_converted "
+                "where source_row between ? and ? and reason_code is not null order by source_row",
+                [rows.min(), rows.max()],
+            ).fetchall()
+            if bad:
+                originals.append(_original_cells(batch.cells, [r[0] for r in bad]))
+    tally.check(reader.path)
+    con.register("stage_notes", pl.concat(notes).to_arrow())
+    original = (
+        pl.concat(originals)
+        if originals
+        else pl.DataFrame(schema={"source_row": pl.Int64, "original_text": pl.String})
+    )
+    return StagedFile(rows_in=rows_in, malformed=malformed, originals=original)
+
+
+def _original_cells(cells: pl.DataFrame, rows: list[int]) -> pl.DataFrame:
+    """The cells of the given rows as one JSON object each (source header -> text)."""
+    header = [c for c in cells.columns if c != ROW]
+    picked = cells.filter(pl.col(ROW).is_in(rows))
+    return picked.select(
+        pl.col(ROW).alias("source_row"),
+        pl.struct([pl.col(h).cast(pl.String) for h in header]).struct.json_encode().alias("original_text"),
+    )
 
 
 def ingest_file(
@@ -151,29 +265,25 @@ def ingest_file(
         result.outcome = "already_loaded"
         return result
     try:
-        raw = read_export(path, profile)
-        parsed = parse_export(raw, profile)
+        reader = open_export(path, profile)
+        plan = plan_columns(path, reader.header, profile)
     except FileRejected as err:
         result.outcome, result.reason_code, result.message = "rejected", err.reason_code, str(err)
         return result
-    result.notes = list(raw.notes)
-    if parsed.missing_optional:
-        result.notes.append(f"optional columns absent: {', '.join(parsed.missing_optional)}")
-    if parsed.extra_columns:
-        result.notes.append(f"columns not mapped (ignored): {len(parsed.extra_columns)}")
-    result.rows_in = raw.cells.height + len(raw.malformed)
 
-    stage = _stage_frame(parsed.values, key, keep_patient_id).to_arrow()
-    notes = parsed.notes.to_arrow()
     unit_params = {f"unit_{name}": profile.unit_of(name) for name in UNIT_FIELDS}
     names = {"run_id": run_id, "source_file": str(path), "file_sha256": result.sha256}
     contract: ContractOutcome | None = None
     con.execute("begin transaction")
     try:
-        con.register("stage_input", stage)
-        con.register("stage_notes", notes)
-        run_sql(con, "ingest/10_convert.sql", **unit_params)
-        _check_units(con, path, profile)
+        staged = _stage_file(con, reader, plan, profile, key, keep_patient_id, unit_params)
+        result.notes = list(reader.notes)
+        if plan.missing_optional:
+            result.notes.append(f"optional columns absent: {', '.join(plan.missing_optional)}")
+        if plan.extra_columns:
+            result.notes.append(f"columns not mapped (ignored): {len(plan.extra_columns)}")
+        result.rows_in = staged.rows_in
+        _check_units(con, path, profile, reader, plan)
         contract = validate_stage(con, path, run_id, result.sha256)
         keep_results(con, contract)
         contract.raise_if_rejected()
@@ -181,8 +291,8 @@ def ingest_file(
         run_sql(con, "ingest/40_merge.sql", **names)
         counts = con.execute(read_sql("ingest/50_counts.sql")).fetchall()[0]
         _parsed, quarantined, dup_in_file, superseded, new, corrected, dup_store = counts
-        _quarantine_rows(con, raw.cells, raw.malformed, run_id, str(path), result.sha256)
-        result.rows_quarantined = quarantined + len(raw.malformed)
+        _quarantine_rows(con, staged.originals, staged.malformed, run_id, str(path), result.sha256)
+        result.rows_quarantined = quarantined + len(staged.malformed)
         result.rows_duplicate = dup_in_file + dup_store
         result.rows_superseded_in_file = superseded
         result.rows_loaded = new + corrected
@@ -223,12 +333,17 @@ def ingest_file(
                 con.unregister(view)
             except duckdb.Error:
                 pass
+        for table in _STAGE_TABLES:  # a big file's stage would hold memory into the later stages
+            try:
+                con.execute(f"drop table if exists {table}")
+            except duckdb.Error:
+                pass
     return result
 
 
 def _quarantine_rows(
     con: duckdb.DuckDBPyConnection,
-    cells: pl.DataFrame,
+    originals: pl.DataFrame,
     malformed: list[tuple[int, str, str]],
     run_id: str,
     source_file: str,
@@ -236,15 +351,11 @@ def _quarantine_rows(
 ) -> None:
     """Quarantine rows with the original cells as JSON, from the classified stage."""
     bad = con.sql(
-        "select source_row, sample_id, reason_code, failed_columns from stage_checked where outcome = 'quarantined'"
+        "select source_row, sample_id, reason_code, failed_columns from stage_set_aside "
+        "where outcome = 'quarantined' order by source_row"
     ).pl()
-    header = [c for c in cells.columns if c != ROW]
     if bad.height:
-        original = cells.join(bad.select(pl.col("source_row").alias(ROW)), on=ROW, how="semi").select(
-            pl.col(ROW),
-            pl.struct([pl.col(h).cast(pl.String) for h in header]).struct.json_encode().alias("original_text"),
-        )
-        rows = bad.join(original, left_on="source_row", right_on=ROW, how="left")
+        rows = bad.join(originals, on="source_row", how="left")
     else:
         rows = bad.with_columns(pl.lit(None, dtype=pl.String).alias("original_text"))
     if malformed:

@@ -13,7 +13,11 @@ unmapped code list) is a fault of the whole file: ``FileRejected``, one message.
 from __future__ import annotations
 
 import re
+from collections import Counter
+from collections.abc import Callable
 from dataclasses import dataclass
+from functools import partial
+from pathlib import Path
 
 import polars as pl
 
@@ -73,6 +77,8 @@ UNIT_SPELLINGS: dict[str, str] = {
 SYSTEMATIC_MIN_CELLS = 3
 SYSTEMATIC_SHARE = 0.95
 SYSTEMATIC_MIN_CELLS_FOR_SHARE = 20
+_VALUE = "__value"  # the distinct texts of one column while they are parsed
+_IDENTIFIERS = frozenset({"sample_id", "patient_id"})  # nearly every cell differs: parsed cell by cell
 FILE_REASON_FOR_CELL_REASON = {
     "DATE_UNPARSEABLE": "DATE_FORMAT_MISMATCH",
     "NUMBER_FORMAT": "DIALECT_MISMATCH",
@@ -216,8 +222,20 @@ def _unit_column(name: str, source: pl.Expr, profile: Profile) -> list[pl.Expr]:
     return [pl.when(allowed).then(unit).alias(f"{name}{UNIT_SUFFIX}"), fail.alias(f"{name}{UNIT_SUFFIX}__fail")]
 
 
-def _resolve_columns(raw: RawExport, profile: Profile) -> tuple[dict[str, str], dict[str, str], list[str], list[str]]:
-    by_fold = {h.casefold(): h for h in raw.header}
+@dataclass(frozen=True)
+class ColumnPlan:
+    """Which source column feeds each canonical field; resolved once per file."""
+
+    mapped: dict[str, str]  # canonical field -> source header present in the file
+    unit_sources: dict[str, str]  # canonical field -> source header of its per-row unit column
+    missing_optional: list[str]
+    extra_columns: list[str]
+
+
+def plan_columns(path: Path, header: list[str], profile: Profile) -> ColumnPlan:
+    """Match the profile's columns to the file's header (case-insensitive); FileRejected
+    when a required column is absent."""
+    by_fold = {h.casefold(): h for h in header}
     mapped: dict[str, str] = {}
     missing_required: list[str] = []
     missing_optional: list[str] = []
@@ -239,48 +257,194 @@ def _resolve_columns(raw: RawExport, profile: Profile) -> tuple[dict[str, str], 
     if missing_required:
         raise FileRejected(
             "MISSING_COLUMN",
-            f"{raw.path.name}: required column(s) not in the header: {', '.join(missing_required)} "
-            f"(profile {profile.name}; header has {len(raw.header)} columns)",
+            f"{path.name}: required column(s) not in the header: {', '.join(missing_required)} "
+            f"(profile {profile.name}; header has {len(header)} columns)",
         )
     used = {s.casefold() for s in [*mapped.values(), *unit_sources.values()]}
-    extra = [h for h in raw.header if h.casefold() not in used]
-    return mapped, unit_sources, missing_optional, extra
+    extra = [h for h in header if h.casefold() not in used]
+    return ColumnPlan(mapped, unit_sources, missing_optional, extra)
+
+
+class FailureTally:
+    """Cell failures per column over every batch of a file, for the whole-file verdict."""
+
+    def __init__(self, plan: ColumnPlan) -> None:
+        self.plan = plan
+        self.order: list[str] = []
+        self.failures: Counter[str] = Counter()
+        self.non_empty: Counter[str] = Counter()
+        self.reasons: dict[str, Counter[str]] = {}
+
+    def source_of(self, fail_column: str) -> str:
+        field = fail_column.removesuffix("__fail")
+        if field.endswith(UNIT_SUFFIX):
+            return self.plan.unit_sources[field.removesuffix(UNIT_SUFFIX)]
+        return self.plan.mapped[field]
+
+    def add(self, typed: pl.DataFrame, fail_columns: list[str], non_empty: dict[str, int]) -> None:
+        """Count one batch: failures and their reasons per column, and the non-empty cells
+        of each source column that can fail (``non_empty``, by source header)."""
+        if not self.order:
+            self.order = list(fail_columns)
+        if typed.height == 0:
+            return
+        counts = typed.select(pl.col(c).is_not_null().sum().alias(c) for c in fail_columns).row(0, named=True)
+        for column in fail_columns:
+            source = self.source_of(column)
+            if source in non_empty:
+                self.non_empty[column] += non_empty[source]
+            if not counts[column]:
+                continue
+            self.failures[column] += counts[column]
+            reasons = typed.get_column(column).drop_nulls().value_counts()
+            tally = self.reasons.setdefault(column, Counter())
+            for reason, count in reasons.iter_rows():
+                tally[reason] += count
+
+    def check(self, path: Path) -> None:
+        """FileRejected when a column fails in (nearly) every row: a fault of the whole file."""
+        for column in self.order:
+            failures = self.failures[column]
+            if not failures:
+                continue
+            field = column.removesuffix("__fail")
+            source = self.source_of(column)
+            non_empty = self.non_empty[column]
+            share = failures / max(non_empty, 1)
+            systematic = (failures >= SYSTEMATIC_MIN_CELLS and share >= 1.0) or (
+                non_empty >= SYSTEMATIC_MIN_CELLS_FOR_SHARE and share >= SYSTEMATIC_SHARE
+            )
+            if systematic:
+                ranked = sorted(self.reasons[column].items(), key=lambda item: (-item[1], item[0]))
+                cell_reason = ranked[0][0]
+                reason = FILE_REASON_FOR_CELL_REASON.get(cell_reason, cell_reason)
+                raise FileRejected(
+                    reason,
+                    f"{path.name}: column {source!r} ({field}) fails in {failures} of {non_empty} rows "
+                    f"({cell_reason}); the file does not match its profile",
+                )
 
 
 def parse_export(raw: RawExport, profile: Profile) -> ParsedExport:
-    """Parse every mapped cell; see the module docstring for what can happen to a cell."""
-    mapped, unit_sources, missing_optional, extra = _resolve_columns(raw, profile)
-    schema = raw.cells.schema
-    exprs: list[pl.Expr] = [pl.col(ROW)]
+    """Parse every mapped cell of a whole file; see the module docstring for what can
+    happen to a cell. Raises FileRejected for a fault of the whole file."""
+    plan = plan_columns(raw.path, raw.header, profile)
+    tally = FailureTally(plan)
+    parsed = parse_batch(raw, profile, plan, tally)
+    tally.check(raw.path)
+    return parsed
+
+
+def _cell_exprs(canonical: str, source: pl.Expr, dtype: pl.DataType, profile: Profile) -> list[pl.Expr]:
+    spec = FIELDS_BY_NAME[canonical]
+    if spec.kind is Kind.NUMBER:
+        return _number(canonical, source, dtype, profile)
+    if spec.kind is Kind.TIMESTAMP:
+        return _timestamp(canonical, source, dtype, profile, profile.datetime_format)
+    if spec.kind is Kind.DATE:
+        return _date(canonical, source, dtype, profile)
+    if spec.kind is Kind.CODE:
+        return _code(canonical, source, profile)
+    if spec.kind is Kind.BOOLEAN:
+        return _boolean(canonical, source, dtype, profile)
+    return _text(canonical, source, profile)
+
+
+def _distinct_codes(column: pl.Series) -> tuple[pl.Series, pl.Series]:
+    """The distinct texts of a column and, per cell, the position of its text among them
+    (a missing cell points one past the end). One hashing pass over the column."""
+    categorical = column.cast(pl.Categorical(pl.Categories.random()))
+    present = categorical.drop_nulls().unique()
+    ids = present.to_physical()
+    # Categories made afresh number their texts 0, 1, 2, ... as they first appear.
+    if not ids.sort().equals(pl.int_range(0, ids.len(), dtype=ids.dtype, eager=True), check_names=False):
+        texts = column.drop_nulls().unique()
+        return texts, column.cast(pl.Enum(texts)).to_physical().fill_null(texts.len())
+    texts = present.cast(pl.String).gather(ids.arg_sort())
+    return texts, categorical.to_physical().fill_null(texts.len())
+
+
+def _typed_cells(
+    cells: pl.DataFrame, plan: ColumnPlan, profile: Profile
+) -> tuple[pl.DataFrame, list[str], dict[str, int]]:
+    """Every mapped cell parsed by the expressions above; returns the frame, the number
+    fields and, per source column that can fail, its count of non-empty cells.
+
+    Text columns are parsed by distinct value: an export repeats the same few hundred texts
+    per column (7.40, 40.1, ART, NC, the ward names), so each distinct text is parsed once,
+    with the same expressions, and its results are gathered back onto the rows by position.
+    Identifier columns, where nearly every cell differs, are parsed cell by cell; so are
+    Parquet's typed columns.
+    """
+    schema = cells.schema
+    columns: list[tuple[str, Callable[[pl.Expr], list[pl.Expr]], bool]] = []
     number_fields: list[str] = []
-    for canonical, source in mapped.items():
-        spec = FIELDS_BY_NAME[canonical]
-        col, dtype = pl.col(source), schema[source]
-        if spec.kind is Kind.NUMBER:
-            exprs += _number(canonical, col, dtype, profile)
+    fallible: set[str] = set(plan.unit_sources.values())  # source columns whose cells can fail
+    for canonical, source in plan.mapped.items():
+        kind, dtype = FIELDS_BY_NAME[canonical].kind, schema[source]
+        if kind is Kind.NUMBER:
             number_fields.append(canonical)
-        elif spec.kind is Kind.TIMESTAMP:
-            exprs += _timestamp(canonical, col, dtype, profile, profile.datetime_format)
-        elif spec.kind is Kind.DATE:
-            exprs += _date(canonical, col, dtype, profile)
-        elif spec.kind is Kind.CODE:
-            exprs += _code(canonical, col, profile)
-        elif spec.kind is Kind.BOOLEAN:
-            exprs += _boolean(canonical, col, dtype, profile)
-        else:
-            exprs += _text(canonical, col, profile)
-    for canonical, source in unit_sources.items():
-        exprs += _unit_column(canonical, pl.col(source), profile)
-    typed = raw.cells.select(exprs)
+        if kind is not Kind.TEXT:
+            fallible.add(source)
+        build = partial(_cell_exprs, canonical, dtype=dtype, profile=profile)
+        columns.append((source, build, dtype == pl.String and canonical not in _IDENTIFIERS))
+    for canonical, source in plan.unit_sources.items():
+        columns.append((source, partial(_unit_column, canonical, profile=profile), schema[source] == pl.String))
+
+    by_value = list(dict.fromkeys(source for source, _, distinct in columns if distinct))
+    distinct: dict[str, pl.Series] = {}
+    codes: dict[str, pl.Series] = {}
+    for source in by_value:
+        distinct[source], codes[source] = _distinct_codes(cells.get_column(source))
+
+    non_empty: dict[str, int] = {}
+    for source in by_value:
+        if source in fallible:
+            filled = pl.concat([distinct[source].str.strip_chars() != "", pl.Series([False])])
+            non_empty[source] = int(filled.gather(codes[source]).sum())
+    typed_sources = [s for s, _, by_text in columns if not by_text and s in fallible]
+    if typed_sources:
+        counted = cells.select(
+            (pl.col(s).is_not_null() & (pl.col(s).cast(pl.String).str.strip_chars() != "")).sum().alias(s)
+            for s in dict.fromkeys(typed_sources)
+        )
+        non_empty.update(counted.row(0, named=True))
+
+    names: list[str] = [ROW]
+    exprs: list[pl.Expr] = [pl.col(ROW)]
+    gathered: list[pl.Series] = []
+    for source, build, by_text in columns:
+        if not by_text:
+            cell_exprs = build(pl.col(source))
+            exprs += cell_exprs
+            names += [e.meta.output_name() for e in cell_exprs]
+            continue
+        texts = pl.concat([distinct[source], pl.Series([None], dtype=pl.String)])
+        parsed = pl.DataFrame({_VALUE: texts}).select(build(pl.col(_VALUE)))
+        for result in parsed.iter_columns():
+            names.append(result.name)
+            if result.null_count() == result.len():
+                exprs.append(pl.lit(None, dtype=result.dtype).alias(result.name))
+            else:
+                gathered.append(result.gather(codes[source]))
+    typed = cells.select(exprs)
+    if gathered:
+        typed = typed.with_columns(gathered)
+    return typed.select(names), number_fields, non_empty
+
+
+def parse_batch(raw: RawExport, profile: Profile, plan: ColumnPlan, tally: FailureTally) -> ParsedExport:
+    """Parse the cells of one batch of a file; failures are added to ``tally``."""
+    typed, number_fields, non_empty = _typed_cells(raw.cells, plan, profile)
 
     fail_columns = [c for c in typed.columns if c.endswith("__fail")]
-    _reject_systematic_failures(raw, typed, fail_columns, mapped, unit_sources)
+    tally.add(typed, fail_columns, non_empty)
 
     required_missing = [
         pl.when(pl.col(f).is_null() & pl.col(f"{f}__fail").is_null()).then(pl.lit("MISSING_REQUIRED")).alias(f)
         for f in REQUIRED_FIELDS
     ]
-    typed = typed.with_columns(
+    reasons = [
         pl.coalesce([pl.col(c) for c in fail_columns] + [e for e in required_missing]).alias(REASON),
         pl.concat_str(
             [
@@ -294,67 +458,51 @@ def parse_export(raw: RawExport, profile: Profile) -> ParsedExport:
             separator="; ",
             ignore_nulls=True,
         ).alias(FAILED),
+    ]
+    # Most rows have no failure: work the reasons out on the rows that have one.
+    failing = [c for c in fail_columns if typed.get_column(c).null_count() < typed.height]
+    bad = pl.any_horizontal(
+        [pl.col(c).is_not_null() for c in failing]
+        + [pl.col(f).is_null() & pl.col(f"{f}__fail").is_null() for f in REQUIRED_FIELDS]
+    )
+    where = typed.select(bad.arg_true()).to_series() if typed.height else pl.Series(dtype=pl.UInt32)
+    explained = typed[where].select(reasons).with_columns(
+        pl.when(pl.col(FAILED) == "").then(None).otherwise(pl.col(FAILED)).alias(FAILED)
+    )
+    typed = typed.with_columns(
+        pl.Series(REASON, [None] * typed.height, dtype=pl.String).scatter(where, explained.get_column(REASON)),
+        pl.Series(FAILED, [None] * typed.height, dtype=pl.String).scatter(where, explained.get_column(FAILED)),
         pl.coalesce([pl.col(f"{f}__status") for f in number_fields] + [pl.lit("reported")]).alias(STATUS),
     )
 
-    notes = _value_notes(raw, typed, number_fields, mapped)
+    notes = _value_notes(raw, typed, number_fields, plan.mapped)
     drop = fail_columns + [f"{f}__cmp" for f in number_fields] + [f"{f}__status" for f in number_fields]
-    values = typed.drop(drop).with_columns(
-        pl.when(pl.col(FAILED) == "").then(None).otherwise(pl.col(FAILED)).alias(FAILED)
-    )
+    values = typed.drop(drop)
     return ParsedExport(
-        values=values, notes=notes, mapped=mapped, missing_optional=missing_optional, extra_columns=extra
+        values=values,
+        notes=notes,
+        mapped=plan.mapped,
+        missing_optional=plan.missing_optional,
+        extra_columns=plan.extra_columns,
     )
-
-
-def _reject_systematic_failures(
-    raw: RawExport, typed: pl.DataFrame, fail_columns: list[str], mapped: dict[str, str], unit_sources: dict[str, str]
-) -> None:
-    if typed.height == 0:
-        return
-    counts = typed.select(
-        [pl.col(c).is_not_null().sum().alias(c) for c in fail_columns]
-        + [pl.col(c).drop_nulls().mode().first().alias(c + "_mode") for c in fail_columns]
-    ).row(0, named=True)
-    for column in fail_columns:
-        failures = counts[column]
-        if not failures:
-            continue
-        field = column.removesuffix("__fail")
-        if field.endswith(UNIT_SUFFIX):
-            source = unit_sources[field.removesuffix(UNIT_SUFFIX)]
-        else:
-            source = mapped[field]
-        non_empty = raw.cells.select(
-            (pl.col(source).is_not_null() & (pl.col(source).cast(pl.String).str.strip_chars() != "")).sum()
-        ).item()
-        share = failures / max(non_empty, 1)
-        systematic = (failures >= SYSTEMATIC_MIN_CELLS and share >= 1.0) or (
-            non_empty >= SYSTEMATIC_MIN_CELLS_FOR_SHARE and share >= SYSTEMATIC_SHARE
-        )
-        if systematic:
-            cell_reason = counts[column + "_mode"]
-            reason = FILE_REASON_FOR_CELL_REASON.get(cell_reason, cell_reason)
-            raise FileRejected(
-                reason,
-                f"{raw.path.name}: column {source!r} ({field}) fails in {failures} of {non_empty} rows "
-                f"({cell_reason}); the file does not match its profile",
-            )
 
 
 def _value_notes(raw: RawExport, typed: pl.DataFrame, number_fields: list[str], mapped: dict[str, str]) -> pl.DataFrame:
     """One row per qualified or text-result cell, keeping the original text."""
     parts = []
     for field in number_fields:
-        part = typed.filter(pl.col(f"{field}__cmp").is_not_null() | pl.col(f"{field}__status").is_not_null()).select(
+        noted = typed.get_column(f"{field}__cmp").is_not_null() | typed.get_column(f"{field}__status").is_not_null()
+        if not noted.any():
+            continue
+        # typed has the rows of raw.cells in the same order, so the mask picks the same cells
+        original = raw.cells.get_column(mapped[field]).cast(pl.String).filter(noted).alias("original_text")
+        part = typed.filter(noted).select(
             pl.col(ROW),
             pl.lit(field).alias("field"),
             pl.col(f"{field}__cmp").alias("comparator"),
             pl.col(f"{field}__status").alias("result_status"),
         )
-        if part.height:
-            original = raw.cells.select(ROW, pl.col(mapped[field]).cast(pl.String).alias("original_text"))
-            parts.append(part.join(original, on=ROW, how="left"))
+        parts.append(part.with_columns(original))
     if not parts:
         return pl.DataFrame(
             schema={

@@ -12,9 +12,11 @@ and rows of only empty cells are not records and are not counted.
 
 from __future__ import annotations
 
+import codecs
 import csv
 import io
-from dataclasses import dataclass, field
+from collections.abc import Iterator
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 import polars as pl
@@ -26,6 +28,10 @@ ROW = "__row"
 BOM = b"\xef\xbb\xbf"
 # Cap the size of a single export so a runaway or wrong file cannot exhaust memory.
 MAX_FILE_BYTES = 8 * 1024**3
+# Records parsed and staged at a time: bounds memory whatever the size of the file.
+BATCH_ROWS = 250_000
+_BLOCK_BYTES = 1 << 24
+_HEAD_BYTES = 1 << 20
 
 
 @dataclass
@@ -37,6 +43,7 @@ class RawExport:
     header: list[str]
     malformed: list[tuple[int, str, str]] = field(default_factory=list)  # (row, reason, raw text)
     notes: list[str] = field(default_factory=list)
+    restart: bool = False  # batches handed out before this one are void; this one holds every record
 
 
 def _decode(path: Path, data: bytes, profile: Profile) -> tuple[str | None, list[str]]:
@@ -125,8 +132,7 @@ def _slow_split(text: str, header: list[str], profile: Profile) -> tuple[list[li
     return rows, numbers, malformed
 
 
-def read_export(path: Path, profile: Profile) -> RawExport:
-    """Read one file under its profile. Raises FileRejected for whole-file faults."""
+def _stat_size(path: Path) -> int:
     try:
         size = path.stat().st_size
     except OSError as err:
@@ -135,63 +141,243 @@ def read_export(path: Path, profile: Profile) -> RawExport:
         raise FileRejected("EMPTY_FILE", f"{path.name}: file is empty (0 bytes); the export probably failed")
     if size > MAX_FILE_BYTES:
         raise FileRejected("OVERSIZE", f"{path.name}: {size} bytes exceeds the {MAX_FILE_BYTES} byte limit")
-    if profile.format == "parquet":
-        return _read_parquet(path)
+    return size
+
+
+def _read_bytes(path: Path) -> bytes:
     try:
-        data = path.read_bytes()
+        return path.read_bytes()
+    except OSError as err:
+        raise FileRejected("UNREADABLE", f"{path.name}: cannot be read ({err.strerror})") from None
+
+
+def _utf8_valid(path: Path, skip: int) -> bool:
+    """True when the file from byte ``skip`` on is valid UTF-8; reads block by block."""
+    decoder = codecs.getincrementaldecoder("utf-8")()
+    try:
+        with path.open("rb") as handle:
+            handle.seek(skip)
+            while block := handle.read(_BLOCK_BYTES):
+                if block.isascii() and not decoder.getstate()[0]:
+                    continue
+                decoder.decode(block)
+            decoder.decode(b"", final=True)
+    except UnicodeDecodeError:
+        return False
+    except OSError as err:
+        raise FileRejected("UNREADABLE", f"{path.name}: cannot be read ({err.strerror})") from None
+    return True
+
+
+def _only_whitespace(path: Path, skip: int) -> bool:
+    try:
+        with path.open("rb") as handle:
+            handle.seek(skip)
+            while block := handle.read(_BLOCK_BYTES):
+                if block.strip():
+                    return False
+    except OSError as err:
+        raise FileRejected("UNREADABLE", f"{path.name}: cannot be read ({err.strerror})") from None
+    return True
+
+
+def _last_byte(path: Path) -> bytes:
+    try:
+        with path.open("rb") as handle:
+            handle.seek(-1, io.SEEK_END)
+            return handle.read(1)
+    except OSError as err:
+        raise FileRejected("UNREADABLE", f"{path.name}: cannot be read ({err.strerror})") from None
+
+
+@dataclass
+class ExportReader:
+    """A CSV export whose whole-file checks passed; hands out its records in batches.
+
+    ``source`` is what polars reads: the file itself when it is UTF-8, else the text
+    re-encoded to UTF-8 in memory.
+    """
+
+    path: Path
+    profile: Profile
+    header: list[str]
+    notes: list[str]
+    source: Path | bytes
+    ends_with_newline: bool
+    skip: int = 0  # bytes before the text (a UTF-8 byte order mark)
+
+    def batches(self, batch_rows: int | None = None) -> Iterator[RawExport]:
+        """Records in batches of at most ``batch_rows`` (default BATCH_ROWS), numbered
+        across the whole file.
+
+        A structural fault anywhere (a ragged record, an unbalanced quote) switches to
+        splitting record by record so each malformed record can be named; that batch has
+        ``restart`` set and holds every record of the file.
+        """
+        restart = False
+        if self.ends_with_newline:
+            yielded = False
+            try:
+                number = 0
+                for frame in self._scan().collect_batches(chunk_size=batch_rows or BATCH_ROWS):
+                    cells = _number_records(frame, self.header, number)
+                    number += cells.height
+                    yield RawExport(path=self.path, cells=cells, header=self.header, notes=self.notes)
+                    yielded = True
+                if not yielded:
+                    empty = _empty_cells(self.header)
+                    yield RawExport(path=self.path, cells=empty, header=self.header, notes=self.notes)
+                return
+            except pl.exceptions.PolarsError:
+                restart = yielded  # structural fault somewhere: split record by record to name it
+        yield self._split_slowly(restart)
+
+    def read_all(self) -> RawExport:
+        """Every record in one frame."""
+        parts: list[RawExport] = []
+        for batch in self.batches():
+            if batch.restart:
+                parts = []
+            parts.append(batch)
+        if len(parts) == 1:
+            return replace(parts[0], restart=False)
+        cells = pl.concat([p.cells for p in parts])
+        return RawExport(path=self.path, cells=cells, header=self.header, notes=self.notes)
+
+    def _scan(self) -> pl.LazyFrame:
+        return pl.scan_csv(
+            self.source,
+            has_header=True,
+            new_columns=self.header,
+            separator=self.profile.delimiter,
+            quote_char=self.profile.quote_char or None,
+            infer_schema=False,
+            empty_string_is_null=False,
+            raise_if_empty=False,
+            truncate_ragged_lines=False,
+        )
+
+    def _split_slowly(self, restart: bool) -> RawExport:
+        if isinstance(self.source, Path):
+            text = _read_bytes(self.path)[self.skip :].decode("utf-8")
+        else:
+            text = self.source.decode("utf-8")
+        rows, numbers, malformed = _slow_split(text, self.header, self.profile)
+        cells = pl.DataFrame(
+            {name: [r[i] for r in rows] for i, name in enumerate(self.header)},
+            schema={name: pl.String for name in self.header},
+        ).with_columns(pl.Series(ROW, numbers, dtype=pl.Int64))
+        return RawExport(
+            path=self.path,
+            cells=cells.select([ROW, *self.header]),
+            header=self.header,
+            malformed=malformed,
+            notes=self.notes,
+            restart=restart,
+        )
+
+
+def _empty_cells(header: list[str]) -> pl.DataFrame:
+    return pl.DataFrame(schema={ROW: pl.Int64, **{name: pl.String for name in header}})
+
+
+def _number_records(frame: pl.DataFrame, header: list[str], before: int) -> pl.DataFrame:
+    """Drop blank rows (not records) and number the rest, continuing after ``before``."""
+    first = pl.col(header[0])
+    if frame.select((first.is_null() | (first.str.strip_chars() == "")).any()).item():
+        blank = pl.all_horizontal(pl.col(header).fill_null("").str.strip_chars() == "")
+        frame = frame.filter(~blank)
+    numbered = frame.with_row_index(ROW, offset=before + 1).with_columns(pl.col(ROW).cast(pl.Int64))
+    return numbered.select([ROW, *header])
+
+
+def open_export(path: Path, profile: Profile) -> ExportReader | ParquetExport:
+    """Check one file under its profile and get it ready to read. Raises FileRejected for
+    whole-file faults (empty, wrong encoding, wrong delimiter, duplicated columns)."""
+    size = _stat_size(path)
+    if profile.format == "parquet":
+        return ParquetExport(_read_parquet(path))
+    try:
+        with path.open("rb") as handle:
+            head = handle.read(_HEAD_BYTES)
     except OSError as err:
         raise FileRejected("UNREADABLE", f"{path.name}: cannot be read ({err.strerror})") from None
     notes: list[str] = []
-    if data.startswith(BOM):
-        data = data[len(BOM) :]
+    skip = 0
+    if head.startswith(BOM):
+        head = head[len(BOM) :]
+        skip = len(BOM)
         notes.append("BOM_STRIPPED")
-    if not data.strip():
+    if not head.strip() and (size <= skip + len(head) or _only_whitespace(path, skip)):
         raise FileRejected("EMPTY_FILE", f"{path.name}: file holds only whitespace")
-    text, decode_notes = _decode(path, data, profile)
-    notes += decode_notes
-    if text is not None:
-        data = text.encode("utf-8")
-    head = text[:65536] if text is not None else data[:65536].decode("utf-8", errors="replace")
-    header = _header(path, head, profile)
-    if len(header) == 1 and profile.delimiter not in head.split("\n", 1)[0]:
+    source: Path | bytes = path
+    if profile.encoding == "utf-8":
+        if b"\x00" in head or not _utf8_valid(path, skip):
+            _decode(path, _read_bytes(path)[skip:], profile)  # raises with the line of the fault
+        ends_with_newline = _last_byte(path) in (b"\n", b"\r")
+        head_text = head[:65536].decode("utf-8", errors="replace")
+    else:
+        data = _read_bytes(path)[skip:]
+        text, decode_notes = _decode(path, data, profile)
+        assert text is not None
+        notes += decode_notes
+        source = text.encode("utf-8")
+        ends_with_newline = source.endswith((b"\n", b"\r"))
+        head_text = text[:65536]
+        skip = 0
+    header = _header(path, head_text, profile)
+    if len(header) == 1 and profile.delimiter not in head_text.split("\n", 1)[0]:
         others = [d for d in (",", ";", "\t", "|") if d != profile.delimiter and d in header[0]]
         hint = f" but the header contains {others[0]!r}" if others else ""
         raise FileRejected(
             "DIALECT_MISMATCH",
             f"{path.name}: header has a single column: the profile declares delimiter {profile.delimiter!r}{hint}",
         )
+    return ExportReader(
+        path=path,
+        profile=profile,
+        header=header,
+        notes=notes,
+        source=source,
+        ends_with_newline=ends_with_newline,
+        skip=skip,
+    )
 
-    ends_with_newline = data.endswith((b"\n", b"\r"))
-    cells: pl.DataFrame | None = None
-    malformed: list[tuple[int, str, str]] = []
-    if ends_with_newline:
-        try:
-            cells = pl.read_csv(
-                data,
-                has_header=True,
-                new_columns=header,
-                separator=profile.delimiter,
-                quote_char=profile.quote_char or None,
-                infer_schema=False,
-                empty_string_is_null=False,
-                raise_if_empty=False,
-                truncate_ragged_lines=False,
-            )
-        except pl.exceptions.PolarsError:
-            cells = None  # structural fault somewhere: split record by record to name it
-    if cells is None:
-        if text is None:
-            text = data.decode("utf-8")
-        rows, numbers, malformed = _slow_split(text, header, profile)
-        cells = pl.DataFrame(
-            {name: [r[i] for r in rows] for i, name in enumerate(header)},
-            schema={name: pl.String for name in header},
-        ).with_columns(pl.Series(ROW, numbers, dtype=pl.Int64))
-    else:
-        blank = pl.all_horizontal(pl.col(header).fill_null("").str.strip_chars() == "")
-        cells = cells.filter(~blank).with_row_index(ROW, offset=1).with_columns(pl.col(ROW).cast(pl.Int64))
-    cells = cells.select([ROW, *header])
-    return RawExport(path=path, cells=cells, header=header, malformed=malformed, notes=notes)
+
+@dataclass
+class ParquetExport:
+    """A Parquet export (typed columns), handed out in batches like a CSV export."""
+
+    raw: RawExport
+
+    @property
+    def path(self) -> Path:
+        return self.raw.path
+
+    @property
+    def header(self) -> list[str]:
+        return self.raw.header
+
+    @property
+    def notes(self) -> list[str]:
+        return self.raw.notes
+
+    def batches(self, batch_rows: int | None = None) -> Iterator[RawExport]:
+        size = batch_rows or BATCH_ROWS
+        cells = self.raw.cells
+        if cells.height <= size:
+            yield self.raw
+            return
+        for start in range(0, cells.height, size):
+            yield replace(self.raw, cells=cells.slice(start, size))
+
+    def read_all(self) -> RawExport:
+        return self.raw
+
+
+def read_export(path: Path, profile: Profile) -> RawExport:
+    """Read one whole file under its profile. Raises FileRejected for whole-file faults."""
+    return open_export(path, profile).read_all()
 
 
 def _read_parquet(path: Path) -> RawExport:
