@@ -2,13 +2,19 @@
 
 Every table is built by a SQL file in ``sql/audit/`` (one relation per file) inside one
 transaction, so analysts reading the store see either the previous night's tables or the
-new ones, never a mix. Counts pass through ``audit_cell``, where small counts are hidden
+new ones, never a mix. Counts come from a persistent aggregate layer (per sample facts and
+per unit and period counts, ``02_audit_layer_update.sql``) that a nightly run updates for
+its own samples only; every later step reads those small tables, so the stage costs what
+the new data touches, not what the store holds. Counts pass through ``audit_cell``, where small counts are hidden
 (primary suppression) and then, step by step, one more cell in every line that would let
 a hidden count be recovered from a total (complementary suppression), before any
 published table reads them.
 """
 
 from __future__ import annotations
+
+import hashlib
+import json
 
 import duckdb
 
@@ -17,9 +23,22 @@ from pipeline.errors import StorageError
 from pipeline.rules import Catalogue, store_catalogue
 from pipeline.sql_files import read_sql, run_sql
 
+# The persistent aggregate layer: reset (full rebuild) or scope (this run's samples), then update.
+_LAYER_RESET = "audit/01_audit_layer_reset.sql"
+_LAYER_SCOPE = "audit/01_audit_layer_scope.sql"
+_LAYER_UPDATE = "audit/02_audit_layer_update.sql"
+LAYER_TABLES = (
+    "audit_sample_fact",
+    "audit_sample_flag",
+    "audit_unit_period_counts",
+    "audit_unit_period_flags",
+    "audit_unit_period_patients",
+    "audit_layer_runs",
+    "audit_layer_state",
+)
 # Build order; each file creates one relation (12_... is the repeated suppression step).
 _WORK_FILES = (
-    "audit/00_audit_sample.sql",
+    "audit/08_audit_window.sql",
     "audit/05_audit_measure.sql",
     "audit/06_audit_partition.sql",
     "audit/07_audit_pair.sql",
@@ -41,7 +60,7 @@ _PUBLISH_FILES = (
     "audit/70_audit_run_reconciliation.sql",
 )
 _TEMP_TABLES = (
-    "audit_sample",
+    "audit_window",
     "audit_measure",
     "audit_partition",
     "audit_pair",
@@ -82,6 +101,7 @@ def audit_parameters(config: SiteConfig, catalogue: Catalogue, run_id: str) -> d
         "trend_run": settings.trend_run,
         "chart_limits": settings.chart_limits,
         "run_id": run_id,
+        "worklist_days": settings.worklist_days,
         "hypoxaemia_pao2_mmhg": catalogue.derive["hypoxaemia_pao2_mmhg"],
         "hypoxaemia_sat_pct": catalogue.derive["hypoxaemia_sat_pct"],
         "hyperoxaemia_pao2_mmhg": catalogue.derive["hyperoxaemia_pao2_mmhg"],
@@ -103,18 +123,62 @@ def suppress_complementary(con: duckdb.DuckDBPyConnection) -> int:
     raise RuntimeError(f"complementary suppression did not settle in {MAX_SUPPRESSION_STEPS} steps")
 
 
-def build_audit(con: duckdb.DuckDBPyConnection, config: SiteConfig, catalogue: Catalogue, run_id: str) -> None:
-    """Rebuild every audit table from the store in one transaction (the new tables replace the old at commit)."""
+def layer_sha256(config: SiteConfig) -> str:
+    """What the persistent layer's rows depend on besides the store: the reporting period and
+    the layer's SQL. A different value means the layer is rebuilt from every record."""
+    basis = {"period": config.audit.period, "sql": [read_sql(p) for p in (_LAYER_RESET, _LAYER_SCOPE, _LAYER_UPDATE)]}
+    return hashlib.sha256(json.dumps(basis, sort_keys=True).encode()).hexdigest()
+
+
+def _layer_current(con: duckdb.DuckDBPyConnection, sha256: str) -> bool:
+    """True when the layer holds every analysed run except this run's scope, with these settings."""
+    tables = _existing_tables(con)
+    if any(t not in tables for t in LAYER_TABLES):
+        return False
+    temporary = {
+        r[0] for r in con.execute("select table_name from duckdb_tables() where temporary").fetchall()
+    }
+    if not {"scope_samples", "scope_runs"} <= temporary:
+        return False
+    state = con.execute("select settings_sha256 from audit_layer_state").fetchall()
+    if state != [(sha256,)]:
+        return False
+    missing = con.execute(
+        "select count(*) from runs where analysed_at is not null "
+        "and run_id not in (select run_id from audit_layer_runs) and run_id not in (select run_id from scope_runs)"
+    ).fetchall()[0][0]
+    return missing == 0
+
+
+def build_audit(
+    con: duckdb.DuckDBPyConnection,
+    config: SiteConfig,
+    catalogue: Catalogue,
+    run_id: str,
+    *,
+    incremental: bool = False,
+) -> bool:
+    """Rebuild every audit table in one transaction (the new tables replace the old at commit).
+
+    With ``incremental`` (a nightly run, after ``analyse``), the aggregate layer is updated
+    for ``scope_samples`` only, when it is current: same period setting and layer SQL, and
+    every earlier analysed run folded in. Otherwise, and by default, the layer is rebuilt from
+    every record. Returns True when the layer was updated incrementally.
+    """
     missing = [t for t in _NEEDED if t not in _existing_tables(con)]
     if missing:
         raise StorageError(
             f"the store has no analysed records yet (missing {', '.join(missing)}); run the pipeline first"
         )
     params = audit_parameters(config, catalogue, run_id)
+    sha256 = layer_sha256(config)
     con.execute("begin transaction")
     try:
         if "rule_catalogue" not in _existing_tables(con):
             store_catalogue(con, catalogue)
+        updated = incremental and _layer_current(con, sha256)
+        run_sql(con, _LAYER_SCOPE if updated else _LAYER_RESET)
+        run_sql(con, _LAYER_UPDATE, period=config.audit.period, layer_sha256=sha256)
         for path in _WORK_FILES:
             run_sql(con, path, **params)
         suppress_complementary(con)
@@ -126,3 +190,4 @@ def build_audit(con: duckdb.DuckDBPyConnection, config: SiteConfig, catalogue: C
     except BaseException:
         con.execute("rollback")
         raise
+    return updated

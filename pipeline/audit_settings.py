@@ -9,12 +9,16 @@ chart_limits = "p_chart"    # or "laney": which limits the "beyond limits" signa
 sigma = 3.0                 # control limits at centre -/+ sigma standard errors
 shift_run = 8               # points in a row on one side of the centre line
 trend_run = 6               # points in a row each rising (or each falling)
+worklist_days = 31          # review worklist: flags on samples collected in the last 31 days
 ```
 
 Defaults and sources: limits at 3 sigma (Shewhart p-chart); a run of 8 on one side of the
 centre line (Western Electric Statistical Quality Control Handbook, 1956; Nelson LS 1984,
 J Qual Technol 16:237 uses 9; the NHS "Making Data Count" guidance uses 7); a trend of 6
 points (Nelson 1984; other guides use 5-7). Citations from memory; each is a parameter.
+The review worklist covers the samples collected in the ``worklist_days`` calendar days up to
+the latest collection time in the store (0: every flag in the store), so the morning list
+stays a morning list and its cost does not grow with the history.
 """
 
 from __future__ import annotations
@@ -39,13 +43,23 @@ class AuditSettings:
     sigma: float = 3.0
     shift_run: int = 8
     trend_run: int = 6
+    worklist_days: int = 31
 
 
 def parse_audit_settings(raw: Any, source: Path | str = "site configuration") -> AuditSettings:
     """Validate an ``[audit]`` table; unknown names and out-of-range values are configuration errors."""
     if not isinstance(raw, dict):
         raise ConfigError(f"{source}: [audit] must be a table")
-    known = {"period", "history_periods", "complete_periods_only", "chart_limits", "sigma", "shift_run", "trend_run"}
+    known = {
+        "period",
+        "history_periods",
+        "complete_periods_only",
+        "chart_limits",
+        "sigma",
+        "shift_run",
+        "trend_run",
+        "worklist_days",
+    }
     unknown = set(raw) - known
     if unknown:
         raise ConfigError(
@@ -64,7 +78,13 @@ def parse_audit_settings(raw: Any, source: Path | str = "site configuration") ->
     sigma = raw.get("sigma", 3.0)
     shift_run = raw.get("shift_run", 8)
     trend_run = raw.get("trend_run", 6)
-    for name, value, low in (("history_periods", history, 1), ("shift_run", shift_run, 2), ("trend_run", trend_run, 2)):
+    worklist_days = raw.get("worklist_days", 31)
+    for name, value, low in (
+        ("history_periods", history, 1),
+        ("shift_run", shift_run, 2),
+        ("trend_run", trend_run, 2),
+        ("worklist_days", worklist_days, 0),
+    ):
         if not isinstance(value, int) or isinstance(value, bool) or value < low:
             raise ConfigError(f"{source}: [audit] {name} must be an integer of at least {low}")
     if not isinstance(sigma, (int, float)) or isinstance(sigma, bool) or not 0 < sigma <= 6:
@@ -77,4 +97,5 @@ def parse_audit_settings(raw: Any, source: Path | str = "site configuration") ->
         sigma=float(sigma),
         shift_run=shift_run,
         trend_run=trend_run,
+        worklist_days=worklist_days,
     )

@@ -417,7 +417,7 @@ def _run_stages(
         log.info("nothing new since the last completed run: audit tables and outputs are current, left as they are")
     else:
         log.progress("building audit tables")
-        build_audit(con, config, catalogue, result.run_id)
+        build_audit(con, config, catalogue, result.run_id, incremental=not rebuild)
         log.progress("writing outputs")
         _remove_stale_temporaries(config.output_folder)
         write_outputs(con, config, result.run_id, log)

@@ -8,6 +8,8 @@ quotes the publication; statsmodels is the independent oracle for Wilson interva
 
 from __future__ import annotations
 
+import dataclasses
+
 from datetime import datetime, timedelta
 from pathlib import Path
 from typing import Any
@@ -311,9 +313,9 @@ def test_worklist_ranks_by_severity_then_recency_with_evidence(hand_store):
     assert top["new_in_this_run"] is True
 
 
-def test_worklist_order(tmp_path):
+def test_worklist_order_and_window(tmp_path):
     # Two high and one medium flag: high first, latest collection first within a severity.
-    config = audit_config(tmp_path, k=1, complete_periods_only=False)
+    config = audit_config(tmp_path, k=1, complete_periods_only=False, worklist_days=0)
     rows = [
         record("OLD_HIGH", pao2_mmhg=130.0, sao2_pct=None, collected_at=JAN, resulted_at=JAN + timedelta(minutes=5)),
         record(
@@ -337,6 +339,17 @@ def test_worklist_order(tmp_path):
     audit(con, config)
     order = [r[0] for r in con.execute("select sample_id from review_worklist order by review_rank").fetchall()]
     assert order.index("NEW_HIGH") < order.index("OLD_HIGH") < order.index("NEWEST_MEDIUM")
+    # The default window: samples collected in the 31 days up to the latest collection time.
+    # OLD_HIGH (January) falls out, NEW_HIGH (3 days before the latest) stays, ranks unchanged.
+    recent = dataclasses.replace(config, audit=dataclasses.replace(config.audit, worklist_days=31))
+    audit(con, recent)
+    ranked = con.execute("select sample_id, review_rank from review_worklist order by review_rank").fetchall()
+    assert [r[0] for r in ranked] == [s for s in order if s != "OLD_HIGH"]
+    assert [r[1] for r in ranked] == list(range(1, len(ranked) + 1))
+    # A window of one day: only the latest day's samples.
+    latest_day = dataclasses.replace(config, audit=dataclasses.replace(config.audit, worklist_days=1))
+    audit(con, latest_day)
+    assert {r[0] for r in con.execute("select sample_id from review_worklist").fetchall()} == {"NEWEST_MEDIUM"}
     con.close()
 
 

@@ -1,6 +1,7 @@
 -- Every count the audit publishes, before and after small-cell suppression. A family is a
--- set of samples (a boolean column of audit_sample, or 'flag:<rule_id>', the samples flagged
--- by a data-quality or documentation rule) or 'patients' (distinct patient_key, not additive).
+-- set of samples (a count column of audit_unit_period_counts, or 'flag:<rule_id>', the samples
+-- flagged by a data-quality or documentation rule) or 'patients' (distinct patient_key, not
+-- additive: counted from audit_unit_period_patients). Only periods of audit_window count.
 -- Grain: one row per (family, unit or all units, period or all periods) with any sample in the
 -- reporting window; unit NULL = all units, period_start NULL = all periods.
 -- hidden starts as the primary rule: a count 1..$k-1 is small (is_small_cell, CMS cell size
@@ -8,34 +9,54 @@
 -- numerator is small (audit_pair) is hidden too; 12_audit_complementary_step.sql then adds
 -- the complementary cells.
 create or replace temp table audit_cell as
-with grouped as (
+with windowed as (
+    select c.*
+    from audit_unit_period_counts as c
+    semi join audit_window as w on w.period_start = c.period_start
+),
+sums as (
     select
         case when grouping(unit) = 1 then null else unit end as unit,
         case when grouping(period_start) = 1 then null else period_start end as period_start,
-        count(*) as samples,
-        count(distinct patient_key) as patients,
-        sum(case when samples_usable then 1 else 0 end) as samples_usable,
-        sum(case when samples_caution then 1 else 0 end) as samples_caution,
-        sum(case when samples_excluded then 1 else 0 end) as samples_excluded,
-        sum(case when excluded_sample_type then 1 else 0 end) as excluded_sample_type,
-        sum(case when excluded_data_quality then 1 else 0 end) as excluded_data_quality,
-        sum(case when arterial then 1 else 0 end) as arterial,
-        sum(case when fio2_device_documented then 1 else 0 end) as fio2_device_documented,
-        sum(case when fio2_device_mismatch then 1 else 0 end) as fio2_device_mismatch,
-        sum(case when oxygen_assessed then 1 else 0 end) as oxygen_assessed,
-        sum(case when hypoxaemic then 1 else 0 end) as hypoxaemic,
-        sum(case when on_oxygen then 1 else 0 end) as on_oxygen,
-        sum(case when above_target_on_oxygen then 1 else 0 end) as above_target_on_oxygen,
-        sum(case when hyperoxaemic_on_oxygen then 1 else 0 end) as hyperoxaemic_on_oxygen,
-        sum(case when aa_assessed then 1 else 0 end) as aa_assessed,
-        sum(case when aa_above_limit then 1 else 0 end) as aa_above_limit,
-        sum(case when pf_assessed then 1 else 0 end) as pf_assessed,
-        sum(case when pf_severe then 1 else 0 end) as pf_severe,
-        sum(case when pf_moderate then 1 else 0 end) as pf_moderate,
-        sum(case when pf_mild then 1 else 0 end) as pf_mild,
-        sum(case when pf_above_300 then 1 else 0 end) as pf_above_300
-    from audit_sample
+        sum(c.samples) as samples,
+        sum(c.samples_usable) as samples_usable,
+        sum(c.samples_caution) as samples_caution,
+        sum(c.samples_excluded) as samples_excluded,
+        sum(c.excluded_sample_type) as excluded_sample_type,
+        sum(c.excluded_data_quality) as excluded_data_quality,
+        sum(c.arterial) as arterial,
+        sum(c.fio2_device_documented) as fio2_device_documented,
+        sum(c.fio2_device_mismatch) as fio2_device_mismatch,
+        sum(c.oxygen_assessed) as oxygen_assessed,
+        sum(c.hypoxaemic) as hypoxaemic,
+        sum(c.on_oxygen) as on_oxygen,
+        sum(c.above_target_on_oxygen) as above_target_on_oxygen,
+        sum(c.hyperoxaemic_on_oxygen) as hyperoxaemic_on_oxygen,
+        sum(c.aa_assessed) as aa_assessed,
+        sum(c.aa_above_limit) as aa_above_limit,
+        sum(c.pf_assessed) as pf_assessed,
+        sum(c.pf_severe) as pf_severe,
+        sum(c.pf_moderate) as pf_moderate,
+        sum(c.pf_mild) as pf_mild,
+        sum(c.pf_above_300) as pf_above_300
+    from windowed as c
     group by grouping sets ((unit, period_start), (unit), (period_start), ())
+),
+patient_counts as (
+    select
+        case when grouping(unit) = 1 then null else unit end as unit,
+        case when grouping(period_start) = 1 then null else period_start end as period_start,
+        count(distinct patient_key) as patients
+    from audit_unit_period_patients as p
+    semi join audit_window as w on w.period_start = p.period_start
+    group by grouping sets ((unit, period_start), (unit), (period_start), ())
+),
+grouped as (
+    select s.*, pc.patients
+    from sums as s
+    left join patient_counts as pc
+        on pc.unit is not distinct from s.unit
+       and pc.period_start is not distinct from s.period_start
 ),
 sample_cells as (
     select
@@ -97,13 +118,12 @@ sample_cells as (
 flag_counts as (
     select
         f.rule_id,
-        case when grouping(s.unit) = 1 then null else s.unit end as unit,
-        case when grouping(s.period_start) = 1 then null else s.period_start end as period_start,
-        count(distinct f.sample_id) as value
-    from flags as f
-    join audit_sample as s on s.sample_id = f.sample_id
-    where f.kind in ('data_quality', 'documentation')
-    group by f.rule_id, grouping sets ((s.unit, s.period_start), (s.unit), (s.period_start), ())
+        case when grouping(f.unit) = 1 then null else f.unit end as unit,
+        case when grouping(f.period_start) = 1 then null else f.period_start end as period_start,
+        sum(f.flagged) as value
+    from audit_unit_period_flags as f
+    semi join audit_window as w on w.period_start = f.period_start
+    group by f.rule_id, grouping sets ((f.unit, f.period_start), (f.unit), (f.period_start), ())
 ),
 flag_cells as (
     select

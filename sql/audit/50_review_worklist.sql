@@ -3,6 +3,9 @@
 -- evidence in words, the rule title, unit, analyser, collection time, the sample's accession
 -- number and the pseudonymised patient (patient_key; never the raw identifier).
 -- new_in_this_run: the sample was loaded or corrected by run $run_id.
+-- Window: samples collected in the $worklist_days calendar days up to the latest collection
+-- time in the store (0 = every flag), so the list stays a morning list and its cost does not
+-- grow with the history.
 -- Grain: one row per data-quality flag (sample and rule).
 create or replace table review_worklist as
 with ranked as (
@@ -25,6 +28,11 @@ with ranked as (
     left join rule_catalogue as c on c.rule_id = f.rule_id
     left join audit_status as a on a.sample_id = f.sample_id
     where f.kind = 'data_quality'
+      and (
+          $worklist_days = 0
+          or cast(r.collected_at as date)
+              >= (select cast(max(collected_at) as date) from records) - cast($worklist_days - 1 as integer)
+      )
 )
 select
     row_number() over (

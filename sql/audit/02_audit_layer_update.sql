@@ -1,0 +1,198 @@
+-- The audit's persistent aggregate layer, brought up to date for the samples of
+-- audit_layer_scope (01_audit_layer_scope.sql: this run's samples; 01_audit_layer_reset.sql:
+-- every record). Everything downstream (window, cells, suppression, rates, charts, funnel)
+-- reads the small per-(unit, period) tables, so a nightly run costs what its new samples
+-- touch, not what the store holds.
+--   audit_sample_fact           one row per record with a collection time and an audit
+--                               status: its unit, period ($period of the collection time in
+--                               UTC) and one boolean per count family (the families of
+--                               10_audit_cell.sql; denominators as stated there).
+--   audit_sample_flag           one row per (record of audit_sample_fact, data-quality or
+--                               documentation rule that flagged it).
+--   audit_unit_period_counts    per (unit, period): every family's count, distinct patients
+--                               and the latest collection time.
+--   audit_unit_period_flags     per (unit, period, rule): samples flagged.
+--   audit_unit_period_patients  per (unit, period): the distinct patient_key values, so that
+--                               patients over several periods or units are counted once.
+-- A (unit, period) pair is re-aggregated only when one of its facts changed: a new sample,
+-- a corrected one (also in the pair it moved out of), or a changed flag or status.
+
+-- Facts of the samples in scope as they are now.
+create or replace temp table audit_fact_now as
+with placed as (
+    select
+        r.sample_id,
+        r.patient_key,
+        coalesce(r.unit, '(unit not recorded)') as unit,
+        r.collected_at,
+        cast(date_trunc($period, r.collected_at) as date) as period_start,
+        a.audit_status,
+        coalesce(r.sample_type, 'unknown') in ('arterial', 'unknown') as arterial,
+        d.fio2_used,
+        r.o2_device,
+        d.oxygen_status,
+        coalesce(d.on_supplemental_oxygen, false) as on_supplemental_oxygen,
+        d.arterial_saturation_pct,
+        d.target_high_pct,
+        d.aa_gradient_excess_mmhg,
+        d.pf_band,
+        m.sample_id is not null as device_flagged
+    from audit_layer_scope as sc
+    join records as r on r.sample_id = sc.sample_id
+    join audit_status as a on a.sample_id = r.sample_id
+    left join derived as d on d.sample_id = r.sample_id
+    left join (
+        select distinct f.sample_id
+        from flags as f
+        semi join audit_layer_scope as fs on fs.sample_id = f.sample_id
+        where f.rule_id = 'fio2_outside_device_range'
+    ) as m on m.sample_id = r.sample_id
+    where r.collected_at is not null
+),
+status as (
+    select
+        *,
+        audit_status in ('usable', 'caution') and oxygen_status is not null as oxygen_assessed,
+        -- FiO2 typed, or implied (0.21) by a documented room-air device; device known
+        arterial and fio2_used is not null and o2_device is not null and o2_device <> 'unknown'
+            as fio2_device_documented
+    from placed
+)
+select
+    s.sample_id,
+    s.patient_key,
+    s.unit,
+    s.period_start,
+    s.collected_at,
+    s.arterial,
+    s.audit_status = 'usable' as samples_usable,
+    s.audit_status = 'caution' as samples_caution,
+    s.audit_status = 'excluded' as samples_excluded,
+    s.audit_status = 'excluded' and not s.arterial as excluded_sample_type,
+    s.audit_status = 'excluded' and s.arterial as excluded_data_quality,
+    s.fio2_device_documented,
+    s.fio2_device_documented and s.device_flagged as fio2_device_mismatch,
+    s.oxygen_assessed,
+    s.oxygen_assessed and s.oxygen_status = 'hypoxaemic' as hypoxaemic,
+    s.oxygen_assessed and s.on_supplemental_oxygen as on_oxygen,
+    -- saturation above the applicable target range, whether or not PaO2 also counts as hyperoxaemic
+    s.oxygen_assessed and s.on_supplemental_oxygen and s.arterial_saturation_pct > s.target_high_pct
+        as above_target_on_oxygen,
+    s.oxygen_assessed and s.on_supplemental_oxygen and s.oxygen_status = 'hyperoxaemic' as hyperoxaemic_on_oxygen,
+    s.oxygen_assessed and s.aa_gradient_excess_mmhg is not null as aa_assessed,
+    s.oxygen_assessed and s.aa_gradient_excess_mmhg > 0 as aa_above_limit,
+    s.oxygen_assessed and s.pf_band is not null as pf_assessed,
+    s.oxygen_assessed and s.pf_band = 'severe' as pf_severe,
+    s.oxygen_assessed and s.pf_band = 'moderate' as pf_moderate,
+    s.oxygen_assessed and s.pf_band = 'mild' as pf_mild,
+    s.oxygen_assessed and s.pf_band = 'none' as pf_above_300
+from status as s;
+
+create or replace temp table audit_flag_now as
+select distinct f.sample_id, f.rule_id, n.unit, n.period_start
+from flags as f
+join audit_fact_now as n on n.sample_id = f.sample_id
+where f.kind in ('data_quality', 'documentation');
+
+create table if not exists audit_sample_fact as select * from audit_fact_now with no data;
+create table if not exists audit_sample_flag as select * from audit_flag_now with no data;
+
+-- The (unit, period) pairs whose facts changed: the pair a changed fact is in now and the
+-- pair its previous version was in.
+create or replace temp table audit_touched as
+with fact_before as (
+    select * from audit_sample_fact semi join audit_layer_scope using (sample_id)
+),
+flag_before as (
+    select * from audit_sample_flag semi join audit_layer_scope using (sample_id)
+),
+changed as (
+    select unit, period_start from (select * from audit_fact_now except select * from fact_before)
+    union all
+    select unit, period_start from (select * from fact_before except select * from audit_fact_now)
+    union all
+    select unit, period_start from (select * from audit_flag_now except select * from flag_before)
+    union all
+    select unit, period_start from (select * from flag_before except select * from audit_flag_now)
+)
+select distinct unit, period_start from changed;
+
+delete from audit_sample_fact where sample_id in (select sample_id from audit_layer_scope);
+insert into audit_sample_fact select * from audit_fact_now;
+delete from audit_sample_flag where sample_id in (select sample_id from audit_layer_scope);
+insert into audit_sample_flag select * from audit_flag_now;
+
+-- Re-aggregation of the touched pairs from their facts.
+create or replace temp view audit_counts_fresh as
+select
+    f.unit,
+    f.period_start,
+    max(f.collected_at) as latest_collected_at,
+    count(*) as samples,
+    count(distinct f.patient_key) as patients,
+    count(*) filter (where f.samples_usable) as samples_usable,
+    count(*) filter (where f.samples_caution) as samples_caution,
+    count(*) filter (where f.samples_excluded) as samples_excluded,
+    count(*) filter (where f.excluded_sample_type) as excluded_sample_type,
+    count(*) filter (where f.excluded_data_quality) as excluded_data_quality,
+    count(*) filter (where f.arterial) as arterial,
+    count(*) filter (where f.fio2_device_documented) as fio2_device_documented,
+    count(*) filter (where f.fio2_device_mismatch) as fio2_device_mismatch,
+    count(*) filter (where f.oxygen_assessed) as oxygen_assessed,
+    count(*) filter (where f.hypoxaemic) as hypoxaemic,
+    count(*) filter (where f.on_oxygen) as on_oxygen,
+    count(*) filter (where f.above_target_on_oxygen) as above_target_on_oxygen,
+    count(*) filter (where f.hyperoxaemic_on_oxygen) as hyperoxaemic_on_oxygen,
+    count(*) filter (where f.aa_assessed) as aa_assessed,
+    count(*) filter (where f.aa_above_limit) as aa_above_limit,
+    count(*) filter (where f.pf_assessed) as pf_assessed,
+    count(*) filter (where f.pf_severe) as pf_severe,
+    count(*) filter (where f.pf_moderate) as pf_moderate,
+    count(*) filter (where f.pf_mild) as pf_mild,
+    count(*) filter (where f.pf_above_300) as pf_above_300
+from audit_sample_fact as f
+semi join audit_touched as t on t.unit = f.unit and t.period_start = f.period_start
+group by f.unit, f.period_start;
+
+create or replace temp view audit_flags_fresh as
+select f.unit, f.period_start, f.rule_id, count(distinct f.sample_id) as flagged
+from audit_sample_flag as f
+semi join audit_touched as t on t.unit = f.unit and t.period_start = f.period_start
+group by f.unit, f.period_start, f.rule_id;
+
+create or replace temp view audit_patients_fresh as
+select distinct f.unit, f.period_start, f.patient_key
+from audit_sample_fact as f
+semi join audit_touched as t on t.unit = f.unit and t.period_start = f.period_start
+where f.patient_key is not null;
+
+create table if not exists audit_unit_period_counts as select * from audit_counts_fresh with no data;
+create table if not exists audit_unit_period_flags as select * from audit_flags_fresh with no data;
+create table if not exists audit_unit_period_patients as select * from audit_patients_fresh with no data;
+
+delete from audit_unit_period_counts as c
+where exists (select 1 from audit_touched as t where t.unit = c.unit and t.period_start = c.period_start);
+insert into audit_unit_period_counts select * from audit_counts_fresh;
+delete from audit_unit_period_flags as c
+where exists (select 1 from audit_touched as t where t.unit = c.unit and t.period_start = c.period_start);
+insert into audit_unit_period_flags select * from audit_flags_fresh;
+delete from audit_unit_period_patients as c
+where exists (select 1 from audit_touched as t where t.unit = c.unit and t.period_start = c.period_start);
+insert into audit_unit_period_patients select * from audit_patients_fresh;
+
+drop view audit_counts_fresh;
+drop view audit_flags_fresh;
+drop view audit_patients_fresh;
+drop table audit_fact_now;
+drop table audit_flag_now;
+drop table audit_touched;
+drop table audit_layer_scope;
+
+-- Which runs' analyses the layer holds, and the settings it was built with.
+create table if not exists audit_layer_runs (run_id varchar);
+insert into audit_layer_runs
+select run_id from runs
+where analysed_at is not null and run_id not in (select run_id from audit_layer_runs);
+create table if not exists audit_layer_state (settings_sha256 varchar);
+delete from audit_layer_state;
+insert into audit_layer_state values ($layer_sha256);
