@@ -135,9 +135,7 @@ def _layer_current(con: duckdb.DuckDBPyConnection, sha256: str) -> bool:
     tables = _existing_tables(con)
     if any(t not in tables for t in LAYER_TABLES):
         return False
-    temporary = {
-        r[0] for r in con.execute("select table_name from duckdb_tables() where temporary").fetchall()
-    }
+    temporary = {r[0] for r in con.execute("select table_name from duckdb_tables() where temporary").fetchall()}
     if not {"scope_samples", "scope_runs"} <= temporary:
         return False
     state = con.execute("select settings_sha256 from audit_layer_state").fetchall()

@@ -9,7 +9,6 @@ quotes the publication; statsmodels is the independent oracle for Wilson interva
 from __future__ import annotations
 
 import dataclasses
-
 from datetime import datetime, timedelta
 from pathlib import Path
 from typing import Any
