@@ -49,6 +49,39 @@ def _resolve(base: Path, value: object, what: str) -> Path:
     return path if path.is_absolute() else (base / path)
 
 
+# Every key a site configuration may hold; anything else is a typo and an error, because a
+# silently ignored key can do harm (a misspelt keep_patient_id keeps identifiers).
+KNOWN_KEYS: dict[str, set[str]] = {
+    "site": {"name", "altitude_m", "barometric_pressure_mmhg"},
+    "store": {"path", "keep_patient_id"},
+    "output": {"folder"},
+    "privacy": {"key_file", "small_cell_threshold"},
+    "inputs": {"path", "profile", "pattern"},
+    "thresholds": set(),  # checked against the rule catalogue by pipeline.rules.load_catalogue
+    "audit": set(),  # checked by pipeline.audit_settings.parse_audit_settings
+}
+
+
+def _check_keys(path: Path, raw: dict[str, Any]) -> None:
+    unknown_sections = sorted(set(raw) - set(KNOWN_KEYS))
+    if unknown_sections:
+        raise ConfigError(
+            f"{path}: unknown section(s) {', '.join(unknown_sections)}; known: {', '.join(sorted(KNOWN_KEYS))}"
+        )
+    for section, known in KNOWN_KEYS.items():
+        if not known or section not in raw:
+            continue
+        tables = raw[section] if isinstance(raw[section], list) else [raw[section]]
+        for table in tables:
+            if not isinstance(table, dict):
+                raise ConfigError(f"{path}: [{section}] must be a table")
+            unknown = sorted(set(table) - known)
+            if unknown:
+                raise ConfigError(
+                    f"{path}: unknown key(s) in [{section}]: {', '.join(unknown)}; known: {', '.join(sorted(known))}"
+                )
+
+
 def load_config(path: Path | str, *, store: Path | None = None, output: Path | None = None) -> SiteConfig:
     """Read the site configuration; ``store``/``output`` override it (command-line options)."""
     path = Path(path)
@@ -60,6 +93,7 @@ def load_config(path: Path | str, *, store: Path | None = None, output: Path | N
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as err:
         raise ConfigError(f"{path}: not valid TOML ({err})") from None
     base = path.resolve().parent
+    _check_keys(path, raw)
     site = raw.get("site", {})
     store_section = raw.get("store", {})
     privacy = raw.get("privacy", {})

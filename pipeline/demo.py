@@ -6,6 +6,8 @@ patient is in it.
 
 from __future__ import annotations
 
+import os
+import shutil
 from pathlib import Path
 
 from pipeline.log import Log
@@ -26,7 +28,7 @@ keep_patient_id = true
 folder = "output"
 
 [privacy]
-key_file = "store/pseudonym.key"
+key_file = "secrets/pseudonym.key"   # outside the store folder, as for a real site
 small_cell_threshold = 11
 
 [audit]
@@ -59,6 +61,11 @@ def prepare_demo(workdir: Path, *, rows: int, seed: int, log: Log) -> Path:
     exports = workdir / "exports"
     marker = exports / f".generated-{rows}-{seed}"
     if not marker.exists():
+        # Other demo data: start over, or the old store would read the new exports as corrections.
+        for stale in (exports, workdir / "store", workdir / "output"):
+            if stale.exists():
+                log.info(f"removing the previous demo's {stale.name} folder")
+                shutil.rmtree(stale)
         log.info(f"generating {rows} invented samples (seed {seed}) into {exports}")
         canonical, truth = generate(rows, seed)
         write_exports(canonical, truth, exports, provenance={"rows": rows, "seed": seed})
@@ -67,6 +74,10 @@ def prepare_demo(workdir: Path, *, rows: int, seed: int, log: Log) -> Path:
         log.info(f"demo exports for {rows} samples (seed {seed}) already in {exports}")
     config = workdir / "site.toml"
     config.write_text(
-        SITE_TEMPLATE.format(altitude_m=SITE_ALTITUDE_M, profiles=PROFILES_DIR.as_posix()), encoding="utf-8"
+        SITE_TEMPLATE.format(
+            altitude_m=SITE_ALTITUDE_M,
+            profiles=Path(os.path.relpath(PROFILES_DIR, workdir.resolve())).as_posix(),
+        ),
+        encoding="utf-8",
     )
     return config

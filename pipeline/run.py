@@ -299,7 +299,10 @@ def _plan_inputs(config: SiteConfig, result: RunResult, log: Log) -> list[tuple[
             result.missing_inputs.append(str(source.path))
             log.error(f"input not found: {source.path}", reason="NO_INPUT")
             continue
-        plan.append((source, source.files()))
+        files = source.files()
+        if not files:
+            log.warning(f"no file in {source.path} matches {source.pattern!r}", reason="NO_MATCHING_FILE")
+        plan.append((source, files))
     return plan
 
 
@@ -352,8 +355,9 @@ def run_pipeline(
                     _run_stages(con, config, catalogue, key, result, log, plan, stats, known, rebuild=rebuild)
                     if any(f.outcome == "rejected" for f in result.files):
                         result.exit_code = EXIT_DATA_ERROR
-                    if result.missing_inputs and not result.files:
-                        result.exit_code = EXIT_NO_INPUT  # recorded as such, then raised below
+                    if result.missing_inputs:
+                        # An export drop that vanished must alert even when the other inputs loaded.
+                        result.exit_code = EXIT_NO_INPUT
                     result.duration_s = time.monotonic() - started
                     _record_run_end(con, result, result.duration_s)
                 except PipelineError as err:
@@ -390,6 +394,7 @@ def _run_stages(
 ) -> None:
     """Load each new file (one transaction each), then analyse, audit and publish."""
     for source, files in plan:
+        log.info(f"input {source.path} ({source.profile.name}): {len(files)} file(s)")
         for number, path in enumerate(files, start=1):
             log.progress(f"[{number}/{len(files)}] {path.name}")
             before = stats.get(path)
@@ -412,6 +417,9 @@ def _run_stages(
             result.files.append(outcome)
             _record_file_event(con, result.run_id, outcome)
             _log_file(log, outcome, number, len(files))
+        skipped = sum(1 for f in result.files[-len(files) :] if f.outcome == "already_loaded") if files else 0
+        if skipped:
+            log.info(f"  {skipped} file(s) already loaded (same content), skipped")
     analyse(con, config, catalogue, result, log, rebuild=rebuild)
     if not rebuild and _outputs_current(con, config, result):
         log.info("nothing new since the last completed run: audit tables and outputs are current, left as they are")
@@ -463,7 +471,7 @@ def _log_file(log: Log, f: FileOutcome, number: int, count: int) -> None:
     if f.outcome == "rejected":
         log.error(f"{where}: rejected - {f.message}", reason=f.reason_code, file=f.path.name)
     elif f.outcome == "already_loaded":
-        log.info(f"{where}: already loaded (same content), skipped", file=f.path.name)
+        return  # counted once per input instead of one line per file
     else:
         log.info(
             f"{where}: {f.rows_in} rows in = {f.rows_loaded} loaded + {f.rows_quarantined} quarantined + "

@@ -447,6 +447,18 @@ def test_missing_input_folder_exits_66_and_is_recorded(tmp_path):
     assert one(store, "select outcome || ' ' || exit_code from runs") == "no_input 66"
 
 
+def test_one_missing_input_among_present_ones_still_exits_66(tmp_path):
+    # A vanished export drop must alert even when the other inputs load (operations guide).
+    config_path = make_site(tmp_path / "site", rejected_file=False)
+    text = config_path.read_text(encoding="utf-8")
+    extra = text[text.index("[[inputs]]") :].replace('path = "exports"', 'path = "exports_gone"')
+    config_path.write_text(text + "\n" + extra, encoding="utf-8")
+    outcome = CliRunner().invoke(main, ["run", "--config", str(config_path)], env=env())
+    assert outcome.exit_code == 66
+    store = config_of(config_path).store_path
+    assert one(store, "select outcome || ' ' || exit_code || ' ' || files_loaded from runs") == "no_input 66 3"
+
+
 # --------------------------------------------------------------------------------------
 # Logs
 # --------------------------------------------------------------------------------------
