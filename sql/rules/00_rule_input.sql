@@ -1,6 +1,8 @@
 -- Input of every record-level rule: the records in scope with their derived metrics.
--- Grain: one row per sample in scope_samples.
-create or replace temp view rule_input as
+-- Grain: one row per sample in scope_samples. A table, not a view: some twenty rules read
+-- it, and a view would join the whole records and derived tables again for each of them,
+-- so a nightly run would cost in proportion to the store instead of to the new samples.
+create or replace temp table rule_input as
 select
     r.*,
     d.* exclude (sample_id),
