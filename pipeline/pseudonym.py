@@ -55,15 +55,23 @@ def key_id(key: bytes) -> str:
 
 
 def pseudonym(key: bytes, identifier: str) -> str:
-    return hmac.new(key, identifier.strip().encode("utf-8"), hashlib.sha256).hexdigest()[:PSEUDONYM_CHARS]
+    return _pseudonym(hmac.new(key, digestmod=hashlib.sha256), identifier)
+
+
+def _pseudonym(keyed: hmac.HMAC, identifier: str) -> str:
+    """The pseudonym from an HMAC already keyed (copied, so the key is processed once)."""
+    digest = keyed.copy()
+    digest.update(identifier.strip().encode("utf-8"))
+    return digest.hexdigest()[:PSEUDONYM_CHARS]
 
 
 def add_patient_key(frame: pl.DataFrame, key: bytes, column: str = "patient_id") -> pl.DataFrame:
     """Add ``patient_key``; each distinct identifier is hashed once."""
     if column not in frame.columns:
         return frame.with_columns(pl.lit(None, dtype=pl.String).alias("patient_key"))
-    distinct = frame.select(pl.col(column).drop_nulls().unique()).to_series().to_list()
-    mapping = {ident: pseudonym(key, ident) for ident in distinct}
+    distinct = frame.get_column(column).drop_nulls().unique()
+    keyed = hmac.new(key, digestmod=hashlib.sha256)
+    keys = pl.Series([_pseudonym(keyed, ident) for ident in distinct.to_list()], dtype=pl.String)
     return frame.with_columns(
-        pl.col(column).replace_strict(mapping, default=None, return_dtype=pl.String).alias("patient_key")
+        pl.col(column).replace_strict(distinct, keys, default=None, return_dtype=pl.String).alias("patient_key")
     )

@@ -14,6 +14,10 @@ from pipeline.schema import FIELDS
 from pipeline.sql_files import SQL_DIR, install_macros
 
 _LOCK_PATTERN = re.compile(r"Could not set lock on file .*?\(PID (\d+)\)", re.DOTALL)
+# DuckDB's own budget; beyond it, staging and big intermediate results spill to the
+# store's temp folder. The rest of a run (Python, polars batches) stays within ~1 GiB,
+# so a run over millions of records peaks near 2 GiB (benchmarks/README.md).
+MEMORY_LIMIT = "1GB"
 
 
 def open_store(path: Path, *, read_only: bool = False) -> duckdb.DuckDBPyConnection:
@@ -42,6 +46,14 @@ def open_store(path: Path, *, read_only: bool = False) -> duckdb.DuckDBPyConnect
     con.execute("set TimeZone = 'UTC'")
     con.execute("set autoinstall_known_extensions = false")
     con.execute("set autoload_known_extensions = false")
+    con.execute(f"set memory_limit = '{MEMORY_LIMIT}'")
+    if not read_only:
+        # Spill files hold identifiers too: DuckDB creates them long after the umask above
+        # is restored, so their folder is made owner-only here.
+        spill = path.with_name(path.name + ".tmp")
+        spill.mkdir(mode=0o700, exist_ok=True)
+        spill.chmod(0o700)
+        con.execute("set temp_directory = ?", [str(spill)])
     install_macros(con)
     if not read_only:
         for ddl in sorted((SQL_DIR / "schema").glob("*.sql")):

@@ -9,11 +9,15 @@ from __future__ import annotations
 
 import hashlib
 import json
+import queue
+import threading
+from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import duckdb
 import polars as pl
+import pyarrow as pa
 
 from pipeline.contract import ContractOutcome, keep_results, validate_stage
 from pipeline.errors import FileRejected
@@ -27,7 +31,7 @@ from pipeline.ingest.parse import (
     parse_batch,
     plan_columns,
 )
-from pipeline.ingest.read import ROW, ExportReader, ParquetExport, open_export
+from pipeline.ingest.read import ROW, ExportReader, ParquetExport, RawExport, open_export
 from pipeline.profile import Profile
 from pipeline.pseudonym import add_patient_key
 from pipeline.schema import FIELDS, UNIT_CHOICES, Kind
@@ -177,6 +181,75 @@ class StagedFile:
     originals: pl.DataFrame  # source_row, original_text (cells as JSON) of every row with a reason
 
 
+@dataclass
+class _Prepared:
+    """One batch ready for DuckDB: its cells, its parse and the stage frame as Arrow."""
+
+    batch: RawExport
+    notes: pl.DataFrame
+    stage: pa.Table
+
+
+@dataclass
+class _Failed:
+    error: BaseException
+
+
+def _prepare(
+    reader: ExportReader | ParquetExport,
+    plan: ColumnPlan,
+    profile: Profile,
+    key: bytes,
+    keep_patient_id: bool,
+    tally: FailureTally,
+) -> Iterator[_Prepared]:
+    for batch in reader.batches():
+        if batch.restart:
+            tally.reset()
+        parsed = parse_batch(batch, profile, plan, tally)
+        stage = _stage_frame(parsed.values, key, keep_patient_id)
+        yield _Prepared(batch, parsed.notes, stage.to_arrow(compat_level=pl.CompatLevel.newest()))
+
+
+def _ahead(items: Iterator[_Prepared]) -> Iterator[_Prepared]:
+    """Produce the next item in a thread while the caller works on this one.
+
+    Reading and parsing (polars, Python) overlap with staging (DuckDB); both release the
+    interpreter lock for their heavy work. At most one item waits, so memory stays bounded.
+    """
+    waiting: queue.Queue[_Prepared | _Failed | None] = queue.Queue(maxsize=1)
+    stop = threading.Event()
+
+    def put(item: _Prepared | _Failed | None) -> bool:
+        while not stop.is_set():
+            try:
+                waiting.put(item, timeout=0.1)
+                return True
+            except queue.Full:
+                continue
+        return False
+
+    def produce() -> None:
+        try:
+            for item in items:
+                if not put(item):
+                    return
+            put(None)
+        except BaseException as err:  # handed to the caller, raised there
+            put(_Failed(err))
+
+    worker = threading.Thread(target=produce, name="ingest-prepare", daemon=True)
+    worker.start()
+    try:
+        while (item := waiting.get()) is not None:
+            if isinstance(item, _Failed):
+                raise item.error
+            yield item
+    finally:
+        stop.set()
+        worker.join()
+
+
 def _stage_file(
     con: duckdb.DuckDBPyConnection,
     reader: ExportReader | ParquetExport,
@@ -201,15 +274,14 @@ def _stage_file(
     notes: list[pl.DataFrame] = []
     originals: list[pl.DataFrame] = []
     first = True
-    for batch in reader.batches():
+    for prepared in _ahead(_prepare(reader, plan, profile, key, keep_patient_id, tally)):
+        batch = prepared.batch
         if batch.restart:  # the file is read again record by record: forget the batches so far
-            tally, rows_in, malformed, notes, originals, first = FailureTally(plan), 0, [], [], [], True
-        parsed = parse_batch(batch, profile, plan, tally)
+            rows_in, malformed, notes, originals, first = 0, [], [], [], True
         rows_in += batch.cells.height + len(batch.malformed)
         malformed += batch.malformed
-        notes.append(parsed.notes)
-        stage = _stage_frame(parsed.values, key, keep_patient_id)
-        con.register("stage_input", stage.to_arrow(compat_level=pl.CompatLevel.newest()))
+        notes.append(prepared.notes)
+        con.register("stage_input", prepared.stage)
         target = "create or replace temp table stage_converted as" if first else "insert into stage_converted"
         con.execute(f"{target}\n{convert}", params)
         first = False
@@ -274,8 +346,10 @@ def ingest_file(
     unit_params = {f"unit_{name}": profile.unit_of(name) for name in UNIT_FIELDS}
     names = {"run_id": run_id, "source_file": str(path), "file_sha256": result.sha256}
     contract: ContractOutcome | None = None
-    con.execute("begin transaction")
+    in_transaction = False
     try:
+        # Staging writes temp tables only, outside the file's transaction: committed temp
+        # data can spill to disk under the memory limit, a transaction's own appends cannot.
         staged = _stage_file(con, reader, plan, profile, key, keep_patient_id, unit_params)
         result.notes = list(reader.notes)
         if plan.missing_optional:
@@ -284,6 +358,8 @@ def ingest_file(
             result.notes.append(f"columns not mapped (ignored): {len(plan.extra_columns)}")
         result.rows_in = staged.rows_in
         _check_units(con, path, profile, reader, plan)
+        con.execute("begin transaction")
+        in_transaction = True
         contract = validate_stage(con, path, run_id, result.sha256)
         keep_results(con, contract)
         contract.raise_if_rejected()
@@ -318,14 +394,17 @@ def ingest_file(
         )
         pause_point("load")  # test-only: crash tests kill the run here, inside the file's transaction
         con.execute("commit")
+        in_transaction = False
     except FileRejected as err:
-        con.execute("rollback")
+        if in_transaction:
+            con.execute("rollback")
         if contract is not None:  # the rollback took the file's contract results; keep them
             keep_results(con, contract, own_transaction=True)
         result.outcome, result.reason_code, result.message = "rejected", err.reason_code, str(err)
         result.rows_loaded = result.rows_quarantined = result.rows_duplicate = result.rows_superseded_in_file = 0
     except BaseException:
-        con.execute("rollback")
+        if in_transaction:
+            con.execute("rollback")
         raise
     finally:
         for view in ("stage_input", "stage_notes"):

@@ -270,6 +270,10 @@ class FailureTally:
 
     def __init__(self, plan: ColumnPlan) -> None:
         self.plan = plan
+        self.reset()
+
+    def reset(self) -> None:
+        """Forget every batch counted so far (the file is being read again)."""
         self.order: list[str] = []
         self.failures: Counter[str] = Counter()
         self.non_empty: Counter[str] = Counter()
@@ -350,18 +354,25 @@ def _cell_exprs(canonical: str, source: pl.Expr, dtype: pl.DataType, profile: Pr
     return _text(canonical, source, profile)
 
 
-def _distinct_codes(column: pl.Series) -> tuple[pl.Series, pl.Series]:
-    """The distinct texts of a column and, per cell, the position of its text among them
-    (a missing cell points one past the end). One hashing pass over the column."""
-    categorical = column.cast(pl.Categorical(pl.Categories.random()))
-    present = categorical.drop_nulls().unique()
-    ids = present.to_physical()
-    # Categories made afresh number their texts 0, 1, 2, ... as they first appear.
-    if not ids.sort().equals(pl.int_range(0, ids.len(), dtype=ids.dtype, eager=True), check_names=False):
-        texts = column.drop_nulls().unique()
-        return texts, column.cast(pl.Enum(texts)).to_physical().fill_null(texts.len())
-    texts = present.cast(pl.String).gather(ids.arg_sort())
-    return texts, categorical.to_physical().fill_null(texts.len())
+def _distinct_codes(cells: pl.DataFrame, sources: list[str]) -> dict[str, tuple[pl.Series, pl.Series]]:
+    """Per column: its distinct texts and, per cell, the position of its text among them
+    (a missing cell points one past the end). One hashing pass over each column."""
+    fresh = {source: pl.Categories.random() for source in sources}
+    categorical = cells.select(pl.col(s).cast(pl.Categorical(fresh[s])) for s in sources)
+    found: dict[str, tuple[pl.Series, pl.Series]] = {}
+    for source in sources:
+        column = categorical.get_column(source)
+        present = column.drop_nulls().unique()
+        ids = present.to_physical()
+        # Categories made afresh number their texts 0, 1, 2, ... as they first appear.
+        if ids.sort().equals(pl.int_range(0, ids.len(), dtype=ids.dtype, eager=True), check_names=False):
+            texts = present.cast(pl.String).gather(ids.arg_sort())
+            found[source] = texts, column.to_physical().fill_null(texts.len())
+        else:  # not expected; an enumeration of the texts gives the same answer, slower
+            text = cells.get_column(source)
+            texts = text.drop_nulls().unique()
+            found[source] = texts, text.cast(pl.Enum(texts)).to_physical().fill_null(texts.len())
+    return found
 
 
 def _typed_cells(
@@ -392,16 +403,14 @@ def _typed_cells(
         columns.append((source, partial(_unit_column, canonical, profile=profile), schema[source] == pl.String))
 
     by_value = list(dict.fromkeys(source for source, _, distinct in columns if distinct))
-    distinct: dict[str, pl.Series] = {}
-    codes: dict[str, pl.Series] = {}
-    for source in by_value:
-        distinct[source], codes[source] = _distinct_codes(cells.get_column(source))
+    distinct = _distinct_codes(cells, by_value) if by_value else {}
 
     non_empty: dict[str, int] = {}
     for source in by_value:
         if source in fallible:
-            filled = pl.concat([distinct[source].str.strip_chars() != "", pl.Series([False])])
-            non_empty[source] = int(filled.gather(codes[source]).sum())
+            texts, codes = distinct[source]
+            filled = pl.concat([texts.str.strip_chars() != "", pl.Series([False])])
+            non_empty[source] = int(filled.gather(codes).sum())
     typed_sources = [s for s, _, by_text in columns if not by_text and s in fallible]
     if typed_sources:
         counted = cells.select(
@@ -419,14 +428,15 @@ def _typed_cells(
             exprs += cell_exprs
             names += [e.meta.output_name() for e in cell_exprs]
             continue
-        texts = pl.concat([distinct[source], pl.Series([None], dtype=pl.String)])
-        parsed = pl.DataFrame({_VALUE: texts}).select(build(pl.col(_VALUE)))
+        texts, codes = distinct[source]
+        # each distinct text once, then one missing cell: where a missing cell points
+        parsed = texts.extend_constant(None, 1).alias(_VALUE).to_frame().select(build(pl.col(_VALUE)))
         for result in parsed.iter_columns():
             names.append(result.name)
             if result.null_count() == result.len():
                 exprs.append(pl.lit(None, dtype=result.dtype).alias(result.name))
             else:
-                gathered.append(result.gather(codes[source]))
+                gathered.append(result.gather(codes))
     typed = cells.select(exprs)
     if gathered:
         typed = typed.with_columns(gathered)

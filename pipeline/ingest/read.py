@@ -29,7 +29,7 @@ BOM = b"\xef\xbb\xbf"
 # Cap the size of a single export so a runaway or wrong file cannot exhaust memory.
 MAX_FILE_BYTES = 8 * 1024**3
 # Records parsed and staged at a time: bounds memory whatever the size of the file.
-BATCH_ROWS = 250_000
+BATCH_ROWS = 100_000
 _BLOCK_BYTES = 1 << 24
 _HEAD_BYTES = 1 << 20
 

@@ -7,10 +7,19 @@
 -- Grain: stage_repeats one row per sample_id delivered more than once (rows that parsed);
 -- stage_set_aside one row per data record that is not kept, with its outcome.
 create or replace temp table stage_repeats as
-with repeated as (
+with candidates as (
+    -- hashes seen more than once: every repeated sample_id, and the odd collision
+    select hash(sample_id) as sample_hash
+    from stage_converted
+    where reason_code is null
+    group by sample_hash
+    having count(*) > 1
+),
+repeated as (
     select sample_id
     from stage_converted
     where reason_code is null
+      and hash(sample_id) in (select sample_hash from candidates)
     group by sample_id
     having count(*) > 1
 )
