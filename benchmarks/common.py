@@ -1,8 +1,10 @@
 """Shared pieces of the benchmark scripts.
 
-* Demo exports of any size: the demo generator writes a base export once; larger files
-  repeat its records with a copy number appended to the accession and the patient
-  identifier, so every copy holds new samples of new patients with the same value mix.
+* Demo exports of any size: the demo generator writes a base export once (about 289 k
+  US-style rows over two months); larger files put earlier copies of it before it, each
+  with a copy number appended to the accession and the patient identifier and its times
+  moved back by the base's span, so every copy holds new samples of new patients, with
+  the same value mix, earlier in time (5 M rows cover about three years).
 * One measurement per fresh subprocess (``tasks.py``), so each peak RSS belongs to one
   measurement only; the subprocess times the operation itself, not interpreter start-up.
 * Tables that print every figure beside its baseline from the same run.
@@ -29,9 +31,9 @@ REPO = HERE.parent
 US_PROFILE = REPO / "profiles" / "demo_us_style.toml"
 DEFAULT_WORKDIR = Path(tempfile.gettempdir()) / "abg_audit_bench"
 BENCH_KEY = "benchmark-pseudonym-key-not-secret-0123456789abcdef"
-# Every export, whatever its size, is cut from the US-style file of one demo run of this
+# Every export, whatever its size, is made from the US-style file of one demo run of this
 # many samples (about 289 k rows; under a minute and 1.3 GiB to generate), so exports of
-# different sizes share their first rows, patients included.
+# different sizes end with the same latest days, patients included.
 BASE_SAMPLES = 1_000_000
 US_DATETIME = "%m/%d/%Y %H:%M"
 
@@ -99,8 +101,8 @@ def _base_us_export(workdir: Path, samples: int, seed: int) -> Path:
 
 def _copy(base: Any, copy: int, span_days: int) -> Any:
     """Copy ``copy`` of the base export: new accession numbers and patients (a suffix), and
-    collection and result times moved on by ``copy`` spans, so the copies follow each other
-    in time like the years of a network's history."""
+    collection and result times moved back by ``copy`` spans, so the copies precede each
+    other in time like the years of a network's history."""
     import polars as pl
 
     if copy == 0:
@@ -111,8 +113,8 @@ def _copy(base: Any, copy: int, span_days: int) -> Any:
 
     def moved(column: str) -> pl.Expr:
         parsed = pl.col(column).str.strptime(pl.Datetime, US_DATETIME, strict=False)
-        later = (parsed + pl.duration(days=copy * span_days)).dt.strftime(US_DATETIME)
-        return pl.coalesce(later, pl.col(column)).alias(column)
+        earlier = (parsed - pl.duration(days=copy * span_days)).dt.strftime(US_DATETIME)
+        return pl.coalesce(earlier, pl.col(column)).alias(column)
 
     return base.with_columns(renamed("Accession"), renamed("MRN"), moved("Collected"), moved("Resulted"))
 
@@ -125,8 +127,10 @@ def _collection_days(frame: Any) -> tuple[date, date]:
 
 
 def us_export(workdir: Path, rows: int, seed: int = 7) -> Path:
-    """A US-style demo export of exactly ``rows`` data rows (cached under ``workdir``):
-    the base export, then as many later copies of it as needed (see ``_copy``)."""
+    """A US-style demo export of exactly ``rows`` data rows (cached under ``workdir``): as
+    many earlier copies of the base export as needed (see ``_copy``), oldest first, and the
+    base export itself last, so the file runs forward in time and always ends with the same
+    latest days."""
     import polars as pl
 
     target = workdir / "exports" / f"us_style_{rows}_seed{seed}.csv"
@@ -138,13 +142,11 @@ def us_export(workdir: Path, rows: int, seed: int = 7) -> Path:
     target.parent.mkdir(parents=True, exist_ok=True)
     partial = target.with_suffix(".partial")
     print(f"writing a {rows:,}-row US-style export from {base.height:,} base rows ...", flush=True)
+    copies = -(-rows // base.height)
     with partial.open("wb") as handle:
-        written, copy = 0, 0
-        while written < rows:
-            part = _copy(base.head(rows - written), copy, span_days)
-            part.write_csv(handle, include_header=copy == 0, null_value="")
-            written += part.height
-            copy += 1
+        for copy in reversed(range(copies)):
+            part = base.tail(rows - (copies - 1) * base.height) if copy == copies - 1 else base
+            _copy(part, copy, span_days).write_csv(handle, include_header=copy == copies - 1, null_value="")
     partial.rename(target)
     return target
 

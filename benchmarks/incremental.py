@@ -1,7 +1,7 @@
 """Nightly-run benchmark: adding a small file to a small store and to a big one.
 
 Builds two stores once (cached under --workdir, reused by later runs), each by a full
-run: one of --big records (default 5 M: the demo export and later copies of it, about
+run: one of --big records (default 5 M: the demo export and earlier copies of it, about
 three years of a network's results) and one of --small records (default 50 k: the last
 days of the same export). Then, for each store, --repeat times: copy the store, and run
 the nightly job on an input folder that holds the export already loaded plus a nightly
@@ -43,7 +43,7 @@ def build_parser() -> argparse.ArgumentParser:
         prog="python benchmarks/incremental.py",
         description=__doc__,
         formatter_class=argparse.RawDescriptionHelpFormatter,
-        epilog="Examples:\n  .venv/bin/python benchmarks/incremental.py --workdir /var/tmp/abg-bench\n"
+        epilog="Examples:\n  .venv/bin/python benchmarks/incremental.py --workdir bench-cache\n"
         "  .venv/bin/python benchmarks/incremental.py --big 1000000 --repeat 5 --breakdown",
     )
     parser.add_argument("--small", type=int, default=50_000, help="records in the small store (default 50000)")
