@@ -14,6 +14,8 @@ from __future__ import annotations
 from dataclasses import dataclass
 from enum import StrEnum
 
+import polars as pl
+
 
 class Kind(StrEnum):
     TEXT = "text"
@@ -108,6 +110,15 @@ FIELDS: tuple[Field, ...] = (
 )
 
 FIELDS_BY_NAME: dict[str, Field] = {f.name: f for f in FIELDS}
+# The polars type that holds each kind of field once parsed (ingest stages, test fixtures).
+POLARS_TYPES: dict[Kind, pl.DataType] = {
+    Kind.TEXT: pl.String(),
+    Kind.CODE: pl.String(),
+    Kind.NUMBER: pl.Float64(),
+    Kind.TIMESTAMP: pl.Datetime("us"),
+    Kind.DATE: pl.Date(),
+    Kind.BOOLEAN: pl.Boolean(),
+}
 REQUIRED_FIELDS: tuple[str, ...] = tuple(f.name for f in FIELDS if f.required)
 NUMBER_FIELDS: tuple[str, ...] = tuple(f.name for f in FIELDS if f.kind is Kind.NUMBER)
 

@@ -15,9 +15,8 @@ import polars as pl
 
 from pipeline.config import SiteConfig
 from pipeline.derive import derive
-from pipeline.ingest.load import _POLARS_TYPES
 from pipeline.rules import Catalogue, evaluate_rules, load_catalogue
-from pipeline.schema import FIELDS
+from pipeline.schema import FIELDS, POLARS_TYPES
 from pipeline.sql_files import run_sql
 from pipeline.store import open_store
 
@@ -67,7 +66,7 @@ def site_config(tmp: Path, pb_mmhg: float | None = 760.0) -> SiteConfig:
 
 
 def insert_records(con: duckdb.DuckDBPyConnection, rows: list[dict[str, Any]], run_id: str = "t1") -> None:
-    schema = {f.name: _POLARS_TYPES[f.kind] for f in FIELDS}
+    schema = {f.name: POLARS_TYPES[f.kind] for f in FIELDS}
     frame = pl.DataFrame(rows, schema_overrides={k: v for k, v in schema.items() if any(k in r for r in rows)})
     frame = frame.with_columns(
         [pl.lit(None, dtype=t).alias(n) for n, t in schema.items() if n not in frame.columns]

@@ -34,18 +34,10 @@ from pipeline.ingest.parse import (
 from pipeline.ingest.read import ROW, ExportReader, ParquetExport, RawExport, open_export
 from pipeline.profile import Profile
 from pipeline.pseudonym import add_patient_key
-from pipeline.schema import FIELDS, UNIT_CHOICES, Kind
+from pipeline.schema import FIELDS, FIELDS_BY_NAME, POLARS_TYPES, UNIT_CHOICES
 from pipeline.sql_files import read_sql, run_sql
 from pipeline.testhooks import pause_point
 
-_POLARS_TYPES = {
-    Kind.TEXT: pl.String,
-    Kind.CODE: pl.String,
-    Kind.NUMBER: pl.Float64,
-    Kind.TIMESTAMP: pl.Datetime("us"),
-    Kind.DATE: pl.Date,
-    Kind.BOOLEAN: pl.Boolean,
-}
 UNIT_FIELDS = tuple(f.name for f in FIELDS if f.unit_family is not None)
 _STAGE_TABLES = ("stage_converted", "stage_repeats", "stage_set_aside", "stage_held")
 
@@ -106,7 +98,7 @@ def _stage_frame(values: pl.DataFrame, key: bytes, keep_patient_id: bool) -> pl.
     frame = add_patient_key(values, key)
     if not keep_patient_id and "patient_id" in frame.columns:
         frame = frame.with_columns(pl.lit(None, dtype=pl.String).alias("patient_id"))
-    missing = [pl.lit(None, dtype=_POLARS_TYPES[f.kind]).alias(f.name) for f in FIELDS if f.name not in frame.columns]
+    missing = [pl.lit(None, dtype=POLARS_TYPES[f.kind]).alias(f.name) for f in FIELDS if f.name not in frame.columns]
     units = [
         pl.lit(None, dtype=pl.String).alias(f"{n}{UNIT_SUFFIX}")
         for n in UNIT_FIELDS
@@ -131,7 +123,7 @@ def _check_units(
         source = profile.columns.get(field_name, field_name)
         raw_median = _raw_median(con, reader, plan, profile, field_name)
         hint = ""
-        family = next(f.unit_family for f in FIELDS if f.name == field_name)
+        family = FIELDS_BY_NAME[field_name].unit_family
         for alternative in UNIT_CHOICES[family or ""]:
             if alternative == declared or raw_median is None or raw_median[0] is None:
                 continue
