@@ -16,15 +16,21 @@ join records as r using (sample_id)
 where k.reason_code is null
   and k.source_row not in (select source_row from stage_set_aside);
 
+-- The record's own values: every column of records except the provenance set below, named
+-- once here so the inserts cannot drift from the table (pipeline/schema.py is its catalogue).
+set variable record_value_columns = (
+    select list(column_name)
+    from information_schema.columns
+    where table_name = 'records'
+      and table_schema = 'main'
+      and column_name not in ('source_file', 'source_row', 'file_sha256', 'run_id', 'version')
+);
+
 -- Earlier versions superseded inside this file keep their provenance too.
 insert into superseded_records by name
 select
-    sample_id, patient_id, patient_key, unit, analyser_id, age_years, birth_date, collected_at, resulted_at,
-    sample_type, o2_device, o2_flow_l_min, fio2, barometric_pressure_mmhg, temperature_c, ph, paco2_mmhg,
-    pao2_mmhg, hco3_mmol_l, base_excess_mmol_l, sao2_pct, sao2_is_calculated, spo2_pct, hb_g_dl, na_mmol_l,
-    k_mmol_l, cl_mmol_l, lactate_mmol_l, mean_airway_pressure_cmh2o, peep_cmh2o, hypercapnic_risk,
-    result_status, content_hash, $source_file as source_file, source_row, $file_sha256 as file_sha256,
-    $run_id as run_id, 0 as version,
+    columns(lambda c: list_contains(getvariable('record_value_columns'), c)),
+    $source_file as source_file, source_row, $file_sha256 as file_sha256, $run_id as run_id, 0 as version,
     $source_file as superseded_by_file,
     kept_row as superseded_by_row,
     $run_id as superseded_in_run
@@ -41,24 +47,19 @@ where not h.same_values;
 -- kept row whose sample is held is in stage_held), so they take the plain, bulk insert.
 insert or replace into records by name
 select
-    c.sample_id, patient_id, patient_key, unit, analyser_id, age_years, birth_date, collected_at, resulted_at,
-    sample_type, o2_device, o2_flow_l_min, fio2, barometric_pressure_mmhg, temperature_c, ph, paco2_mmhg,
-    pao2_mmhg, hco3_mmol_l, base_excess_mmol_l, sao2_pct, sao2_is_calculated, spo2_pct, hb_g_dl, na_mmol_l,
-    k_mmol_l, cl_mmol_l, lactate_mmol_l, mean_airway_pressure_cmh2o, peep_cmh2o, hypercapnic_risk,
-    result_status, content_hash, $source_file as source_file, c.source_row, $file_sha256 as file_sha256,
-    $run_id as run_id, h.held_version + 1 as version
-from stage_converted as c
-join stage_held as h on h.source_row = c.source_row
-where not h.same_values;
+    columns(lambda c: list_contains(getvariable('record_value_columns'), c)),
+    $source_file as source_file, source_row, $file_sha256 as file_sha256, $run_id as run_id, held_version + 1 as version
+from (
+    select c.*, h.held_version
+    from stage_converted as c
+    join stage_held as h on h.source_row = c.source_row
+    where not h.same_values
+);
 
 insert into records by name
 select
-    sample_id, patient_id, patient_key, unit, analyser_id, age_years, birth_date, collected_at, resulted_at,
-    sample_type, o2_device, o2_flow_l_min, fio2, barometric_pressure_mmhg, temperature_c, ph, paco2_mmhg,
-    pao2_mmhg, hco3_mmol_l, base_excess_mmol_l, sao2_pct, sao2_is_calculated, spo2_pct, hb_g_dl, na_mmol_l,
-    k_mmol_l, cl_mmol_l, lactate_mmol_l, mean_airway_pressure_cmh2o, peep_cmh2o, hypercapnic_risk,
-    result_status, content_hash, $source_file as source_file, source_row, $file_sha256 as file_sha256,
-    $run_id as run_id, 1 as version
+    columns(lambda c: list_contains(getvariable('record_value_columns'), c)),
+    $source_file as source_file, source_row, $file_sha256 as file_sha256, $run_id as run_id, 1 as version
 from stage_converted
 where reason_code is null
   and source_row not in (select source_row from stage_set_aside)
