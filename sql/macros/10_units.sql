@@ -121,3 +121,15 @@ CREATE OR REPLACE TEMP MACRO lactate_to_mmol_l(x, unit) AS
         WHEN 'mmol/L' THEN CAST(x AS DOUBLE)
         WHEN 'mg/dL' THEN CAST(x AS DOUBLE) * 10.0 / 90.08
     END;
+
+-- glucose_to_mmol_l(x, unit)
+--   Formula: 'mmol/L' -> x; 'mg/dL' -> x * 10 / 180.156   (1 mmol/L = 18.016 mg/dL)
+--   Units:   x in the named unit -> mmol/L; any other unit -> NULL
+--   Valid:   any value
+--   Source:  molar mass of glucose, C6H12O6, 180.156 g/mol (IUPAC standard atomic weights)
+--   Status:  common practice
+CREATE OR REPLACE TEMP MACRO glucose_to_mmol_l(x, unit) AS
+    CASE unit
+        WHEN 'mmol/L' THEN CAST(x AS DOUBLE)
+        WHEN 'mg/dL' THEN CAST(x AS DOUBLE) * 10.0 / 180.156
+    END;

@@ -32,6 +32,9 @@ create table if not exists records (
     k_mmol_l double,
     cl_mmol_l double,
     lactate_mmol_l double,
+    glucose_mmol_l double,
+    cohb_pct double,
+    methb_pct double,
     mean_airway_pressure_cmh2o double,
     peep_cmh2o double,
     hypercapnic_risk boolean,
@@ -49,6 +52,14 @@ create table if not exists superseded_records as
     select *, null::varchar as superseded_by_file, null::bigint as superseded_by_row,
            null::varchar as superseded_in_run
     from records with no data;
+
+-- Fields added after a store was first created (every statement is idempotent).
+alter table records add column if not exists glucose_mmol_l double;
+alter table records add column if not exists cohb_pct double;
+alter table records add column if not exists methb_pct double;
+alter table superseded_records add column if not exists glucose_mmol_l double;
+alter table superseded_records add column if not exists cohb_pct double;
+alter table superseded_records add column if not exists methb_pct double;
 
 -- Every input row that could not become a record.
 create table if not exists quarantine (
