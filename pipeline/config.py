@@ -26,6 +26,20 @@ class InputSource:
 
 
 @dataclass(frozen=True)
+class OxygenTarget:
+    """A site's saturation target for one unit type; ``assessed=False``: no target (not assessed)."""
+
+    low_pct: float | None = None
+    high_pct: float | None = None
+    assessed: bool = True
+
+
+# Unit types whose patients have no adult target unless the site sets one (common practice:
+# paediatric and neonatal targets are local policy and differ by age and condition).
+UNTARGETED_UNIT_TYPES = ("paediatric", "neonatal")
+
+
+@dataclass(frozen=True)
 class SiteConfig:
     path: Path | None
     site_name: str
@@ -39,7 +53,19 @@ class SiteConfig:
     small_cell_threshold: int = 11
     thresholds: dict[str, Any] = field(default_factory=dict)
     audit: AuditSettings = field(default_factory=AuditSettings)
+    unit_types: dict[str, str] = field(default_factory=dict)
+    oxygen_targets: dict[str, OxygenTarget] = field(default_factory=dict)
     sha256: str = ""
+
+    def unit_target_rows(self) -> list[tuple[str, str, float | None, float | None, bool]]:
+        """(unit, unit type, target low, target high, assessed) for every unit the site typed."""
+        rows = []
+        for unit, unit_type in sorted(self.unit_types.items()):
+            target = self.oxygen_targets.get(
+                unit_type, OxygenTarget(assessed=unit_type not in UNTARGETED_UNIT_TYPES)
+            )
+            rows.append((unit, unit_type, target.low_pct, target.high_pct, target.assessed))
+        return rows
 
 
 def _resolve(base: Path, value: object, what: str) -> Path:
@@ -59,7 +85,37 @@ KNOWN_KEYS: dict[str, set[str]] = {
     "inputs": {"path", "profile", "pattern"},
     "thresholds": set(),  # checked against the rule catalogue by pipeline.rules.load_catalogue
     "audit": set(),  # checked by pipeline.audit_settings.parse_audit_settings
+    "unit_types": set(),  # unit name = unit type; any unit name
+    "oxygen_targets": set(),  # [oxygen_targets.<unit type>]; checked by _parse_oxygen_targets
 }
+
+
+def _parse_unit_types(path: Path, raw: Any) -> dict[str, str]:
+    if not isinstance(raw, dict) or not all(isinstance(v, str) and v for v in raw.values()):
+        raise ConfigError(f'{path}: [unit_types] maps unit names to unit types, e.g. "Heron ICU" = "critical_care"')
+    return {str(k): v for k, v in raw.items()}
+
+
+def _parse_oxygen_targets(path: Path, raw: Any, unit_types: dict[str, str]) -> dict[str, OxygenTarget]:
+    if not isinstance(raw, dict):
+        raise ConfigError(f"{path}: [oxygen_targets.<unit type>] sections need low_pct and high_pct, or assess = false")
+    targets = {}
+    for unit_type, table in raw.items():
+        where = f"{path}: [oxygen_targets.{unit_type}]"
+        if unit_type not in set(unit_types.values()):
+            raise ConfigError(f"{where}: no unit has this type in [unit_types]")
+        if not isinstance(table, dict) or set(table) - {"low_pct", "high_pct", "assess"}:
+            raise ConfigError(f"{where}: known keys are low_pct, high_pct and assess")
+        if table.get("assess", True) is False:
+            targets[unit_type] = OxygenTarget(assessed=False)
+            continue
+        low, high = table.get("low_pct"), table.get("high_pct")
+        if not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in (low, high)) or not (
+            50 <= low < high <= 100  # type: ignore[operator]
+        ):
+            raise ConfigError(f"{where}: low_pct and high_pct must be numbers with 50 <= low_pct < high_pct <= 100")
+        targets[unit_type] = OxygenTarget(float(low), float(high))  # type: ignore[arg-type]
+    return targets
 
 
 def _check_keys(path: Path, raw: dict[str, Any]) -> None:
@@ -126,6 +182,8 @@ def load_config(path: Path | str, *, store: Path | None = None, output: Path | N
     if not isinstance(threshold, int) or threshold < 1:
         raise ConfigError(f"{path}: [privacy] small_cell_threshold must be a positive integer")
     key_file = privacy.get("key_file")
+    unit_types = _parse_unit_types(path, raw.get("unit_types", {}))
+    oxygen_targets = _parse_oxygen_targets(path, raw.get("oxygen_targets", {}), unit_types)
     return SiteConfig(
         path=path,
         site_name=str(site.get("name", "unnamed site")),
@@ -139,5 +197,7 @@ def load_config(path: Path | str, *, store: Path | None = None, output: Path | N
         small_cell_threshold=threshold,
         thresholds=dict(raw.get("thresholds", {})),
         audit=parse_audit_settings(raw.get("audit", {}), path),
+        unit_types=unit_types,
+        oxygen_targets=oxygen_targets,
         sha256=hashlib.sha256(data).hexdigest(),
     )

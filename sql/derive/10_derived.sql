@@ -11,6 +11,12 @@
 --   $target_low, $target_high          usual saturation target (percent)
 --   $hypercapnic_target_low, $hypercapnic_target_high, $hypercapnic_paco2_mmhg
 --   $hypoxaemia_pao2_mmhg, $hypoxaemia_sat_pct, $hyperoxaemia_pao2_mmhg
+--   $adult_age_years, $neonate_days            age groups (targets, A-a limit and curve are adult)
+--   $gas_temperature_min_c, $gas_temperature_max_c   band in which 37 C gases are corrected to the
+--                                      patient's temperature for the alveolar comparison
+--   $alveolar_tolerance_mmhg, $alveolar_tolerance_fraction   tolerance above the R = 1 alveolar bound
+-- Temp table unit_oxygen_targets (unit, unit_type, target_low_pct, target_high_pct, assessed): a
+-- site's target range per unit type (pipeline/derive.py fills it from the site configuration).
 create or replace temp table derived_batch as
 with base as (
     select
@@ -34,7 +40,27 @@ with base as (
         r.cl_mmol_l,
         r.k_mmol_l,
         r.hypercapnic_risk,
+        r.cohb_pct,
+        r.methb_pct,
+        r.o2_flow_l_min,
         coalesce(r.sample_type, 'unknown') in ('arterial', 'unknown') as is_arterial_or_unknown,
+        -- Age: the exported age, else from the birth date at collection (365.25-day years).
+        coalesce(r.age_years, date_diff('day', r.birth_date, cast(r.collected_at as date)) / 365.25)
+            as age_years_used,
+        case when r.age_years is not null then 'exported'
+             when r.birth_date is not null and r.collected_at is not null then 'birth_date' end as age_source,
+        u.unit_type,
+        u.target_low_pct as unit_target_low_pct,
+        u.target_high_pct as unit_target_high_pct,
+        coalesce(u.assessed, true) as unit_assessed,
+        -- Gases are reported at 37 C; within the band they are compared at the patient's temperature.
+        case when coalesce(r.temperature_c, 37.0) between $gas_temperature_min_c and $gas_temperature_max_c
+             then coalesce(r.temperature_c, 37.0) end as gas_temperature_c,
+        -- The highest FiO2 the documented device can deliver (low-flow devices), else the documented FiO2.
+        case when r.o2_device in ('nasal_cannula', 'simple_mask', 'reservoir_mask')
+             then greatest(coalesce(r.fio2, 0.0), device_fio2_max(r.o2_device, r.o2_flow_l_min))
+             when r.fio2 is not null then r.fio2
+             when r.o2_device = 'room_air' then 0.21 end as fio2_upper_bound,
         effective_barometric_pressure_mmhg(r.barometric_pressure_mmhg, $site_pb_mmhg, $site_altitude_m)
             as pb_mmhg,
         -- Room air documented by device but no FiO2 typed: room air is 0.21 by definition.
@@ -49,6 +75,31 @@ with base as (
         epoch(r.resulted_at - r.collected_at) / 60.0 as turnaround_min
     from records as r
     join scope_samples as s using (sample_id)
+    left join unit_oxygen_targets as u on u.unit = r.unit
+),
+aged as (
+    select
+        *,
+        case when age_years_used is null then 'unknown'
+             when age_years_used < $neonate_days / 365.25 then 'neonate'
+             when age_years_used < $adult_age_years then 'child'
+             else 'adult' end as age_group,
+        -- PaO2 and PaCO2 at the patient's temperature, and the R = 1 alveolar bound there
+        po2_at_temperature_mmhg(pao2_mmhg, gas_temperature_c) as pao2_patient_temp_mmhg,
+        pco2_at_temperature_mmhg(paco2_mmhg, gas_temperature_c) as paco2_patient_temp_mmhg,
+        water_vapour_pressure_mmhg(gas_temperature_c) as ph2o_patient_temp_mmhg
+    from base
+),
+bounded as (
+    select
+        *,
+        alveolar_po2_max_mmhg(fio2_upper_bound, paco2_patient_temp_mmhg, pb_mmhg := pb_mmhg,
+                              ph2o_mmhg := ph2o_patient_temp_mmhg) as pao2_limit_patient_temp_mmhg,
+        alveolar_po2_max_mmhg(0.21, paco2_patient_temp_mmhg, pb_mmhg := pb_mmhg,
+                              ph2o_mmhg := ph2o_patient_temp_mmhg) as pao2_room_air_limit_patient_temp_mmhg,
+        -- no FiO2 and no device (other than unknown) documented
+        fio2 is null and (o2_device is null or o2_device = 'unknown') as oxygen_undocumented
+    from aged
 ),
 gas as (
     select
@@ -61,14 +112,22 @@ gas as (
         -- PaO2 and pH are the analyser's 37 C values, and a sealed sample keeps its saturation when
         -- warmed to 37 C, so the curve is read at 37 C whatever the patient's temperature.
         predicted_sao2_pct(pao2_mmhg, ph := coalesce(ph, 7.40), temp_c := 37.0,
-                           base_excess := coalesce(base_excess_mmol_l, 0.0)) as predicted_sao2_pct
-    from base
+                           base_excess := coalesce(base_excess_mmol_l, 0.0)) as predicted_sao2_pct,
+        -- PaO2 above the R = 1 bound (plus tolerance) at the patient's temperature
+        pao2_patient_temp_mmhg - pao2_limit_patient_temp_mmhg
+            - greatest($alveolar_tolerance_mmhg, $alveolar_tolerance_fraction * pao2_limit_patient_temp_mmhg)
+            as pao2_excess_over_limit_mmhg,
+        pao2_patient_temp_mmhg > pao2_room_air_limit_patient_temp_mmhg
+            + greatest($alveolar_tolerance_mmhg, $alveolar_tolerance_fraction * pao2_room_air_limit_patient_temp_mmhg)
+            as pao2_beyond_room_air
+    from bounded
 ),
 metrics as (
     select
         *,
         aa_gradient_mmhg(pao2_alveolar_mmhg, pao2_mmhg) as aa_gradient_mmhg,
-        case when on_room_air then aa_gradient_expected_mmhg(age_years, method := $aa_method) end
+        -- the age-expected limit is an adult room-air formula
+        case when on_room_air and age_group = 'adult' then aa_gradient_expected_mmhg(age_years_used, method := $aa_method) end
             as aa_gradient_expected_mmhg,
         arterial_alveolar_ratio(pao2_mmhg, pao2_alveolar_mmhg) as a_over_a_ratio,
         pf_ratio(pao2_mmhg, fio2_used) as pf_ratio,
@@ -81,7 +140,10 @@ metrics as (
         case when spo2_pct <= 97 then sf_ratio(spo2_pct, fio2_used) end as sf_ratio,
         oxygenation_index(fio2_used, mean_airway_pressure_cmh2o, pao2_mmhg) as oxygenation_index,
         case when sao2_pct is not null and not coalesce(sao2_is_calculated, false)
-             then sao2_pct - predicted_sao2_pct end as sao2_residual_pct,
+             then functional_saturation_pct(sao2_pct, cohb_pct, methb_pct) - predicted_sao2_pct end
+            as sao2_residual_pct,
+        case when sao2_pct is not null and not coalesce(sao2_is_calculated, false)
+             then functional_saturation_pct(sao2_pct, cohb_pct, methb_pct) end as sao2_functional_pct,
         henderson_hasselbalch_ph(paco2_mmhg, hco3_mmol_l) as ph_predicted,
         acid_base_residual(ph, paco2_mmhg, hco3_mmol_l) as acid_base_residual,
         winters_expected_paco2_mmhg(hco3_mmol_l) as winters_expected_paco2_mmhg,
@@ -89,23 +151,56 @@ metrics as (
         fio2_used > $room_air_fio2_max
             or (fio2_used is null and o2_device is not null and o2_device not in ('room_air', 'unknown'))
             as on_supplemental_oxygen,
-        coalesce(hypercapnic_risk, false) or paco2_mmhg > $hypercapnic_paco2_mmhg as hypercapnic_target_applies,
-        -- The saturation of this arterial sample: measured by co-oximetry, else read off the curve.
-        case when sao2_pct is not null and not coalesce(sao2_is_calculated, false) then sao2_pct
-             else predicted_sao2_pct end as arterial_saturation_pct
+        -- The saturation of this arterial sample: measured by co-oximetry (functional), else read off
+        -- the adult curve (neonatal blood with fetal haemoglobin sits on another curve: no reading).
+        case when sao2_pct is not null and not coalesce(sao2_is_calculated, false)
+                 then functional_saturation_pct(sao2_pct, cohb_pct, methb_pct)
+             when age_group <> 'neonate' then predicted_sao2_pct end as arterial_saturation_pct,
+        -- The target range, chosen before any status: documented hypercapnic risk, else a PaCO2 above
+        -- normal (both BTS 88-92 %), else the unit type's setting, else the standard 94-98 %. Children
+        -- and neonates have no adult target; a unit type may have none.
+        case
+            when age_group in ('neonate', 'child') and unit_target_low_pct is null then null
+            when not unit_assessed then null
+            when coalesce(hypercapnic_risk, false) then 'hypercapnic_risk'
+            when paco2_mmhg > $hypercapnic_paco2_mmhg then 'paco2_above_normal'
+            when unit_target_low_pct is not null then 'unit_type'
+            else 'standard'
+        end as target_source
     from gas
 ),
 status as (
     select
         *,
-        case when hypercapnic_target_applies then $hypercapnic_target_low else $target_low end as target_low_pct,
-        case when hypercapnic_target_applies then $hypercapnic_target_high else $target_high end as target_high_pct
+        case target_source
+            when 'hypercapnic_risk' then $hypercapnic_target_low
+            when 'paco2_above_normal' then $hypercapnic_target_low
+            when 'unit_type' then unit_target_low_pct
+            when 'standard' then $target_low
+        end as target_low_pct,
+        case target_source
+            when 'hypercapnic_risk' then $hypercapnic_target_high
+            when 'paco2_above_normal' then $hypercapnic_target_high
+            when 'unit_type' then unit_target_high_pct
+            when 'standard' then $target_high
+        end as target_high_pct
     from metrics
 )
 select
     sample_id,
+    age_years_used,
+    age_source,
+    age_group,
+    unit_type,
     pb_mmhg,
     fio2_used,
+    fio2_upper_bound,
+    not oxygen_undocumented as oxygen_documented,
+    gas_temperature_c,
+    case when is_arterial_or_unknown then pao2_patient_temp_mmhg end as pao2_patient_temp_mmhg,
+    case when is_arterial_or_unknown then paco2_patient_temp_mmhg end as paco2_patient_temp_mmhg,
+    case when is_arterial_or_unknown then pao2_limit_patient_temp_mmhg end as pao2_limit_patient_temp_mmhg,
+    case when is_arterial_or_unknown then pao2_excess_over_limit_mmhg end as pao2_excess_over_limit_mmhg,
     fio2_source,
     on_supplemental_oxygen,
     turnaround_min,
@@ -125,19 +220,28 @@ select
     case when is_arterial_or_unknown then oxygenation_index end as oxygenation_index,
     case when is_arterial_or_unknown then predicted_sao2_pct end as predicted_sao2_pct,
     case when is_arterial_or_unknown then sao2_residual_pct end as sao2_residual_pct,
+    case when is_arterial_or_unknown then sao2_functional_pct end as sao2_functional_pct,
     ph_predicted,
     acid_base_residual,
     winters_expected_paco2_mmhg,
     anion_gap_mmol_l,
+    target_source,
     target_low_pct,
     target_high_pct,
     case when is_arterial_or_unknown then arterial_saturation_pct end as arterial_saturation_pct,
+    -- The status follows the target chosen above; hypoxaemia is below that target and below the
+    -- respiratory-failure limits, so a patient inside the 88-92 % target is in target.
     case
         when not is_arterial_or_unknown then null
         when pao2_mmhg is null then null
-        when pao2_mmhg < $hypoxaemia_pao2_mmhg or arterial_saturation_pct < $hypoxaemia_sat_pct then 'hypoxaemic'
-        when on_supplemental_oxygen and pao2_mmhg > $hyperoxaemia_pao2_mmhg then 'hyperoxaemic'
+        when target_source is null then 'not_assessed'
+        when coalesce(arterial_saturation_pct < target_low_pct, pao2_mmhg < $hypoxaemia_pao2_mmhg)
+             and (pao2_mmhg < $hypoxaemia_pao2_mmhg or arterial_saturation_pct < $hypoxaemia_sat_pct) then 'hypoxaemic'
         when arterial_saturation_pct < target_low_pct then 'below_target'
+        -- no oxygen documented (or room air documented) yet more oxygen than room air can give
+        when (oxygen_undocumented or on_room_air) and pao2_beyond_room_air then 'undocumented_oxygen'
+        when oxygen_undocumented then 'oxygen_unknown'
+        when on_supplemental_oxygen and pao2_mmhg > $hyperoxaemia_pao2_mmhg then 'hyperoxaemic'
         when arterial_saturation_pct > target_high_pct and on_supplemental_oxygen then 'above_target_on_oxygen'
         else 'in_target'
     end as oxygen_status,

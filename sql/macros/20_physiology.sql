@@ -310,6 +310,35 @@ CREATE OR REPLACE TEMP MACRO virtual_po2_mmhg(po2, ph := 7.40, temp_c := 37.0, b
 CREATE OR REPLACE TEMP MACRO predicted_sao2_pct(po2, ph := 7.40, temp_c := 37.0, base_excess := 0.0) AS
     severinghaus_saturation_pct(virtual_po2_mmhg(po2, ph, temp_c, base_excess));
 
+-- functional_saturation_pct(sao2_pct, cohb_pct, methb_pct)
+--   Formula: functional SO2 = FO2Hb / (1 - (FCOHb + FMetHb)); a missing dyshaemoglobin counts as 0
+--   Units:   percent of total haemoglobin -> percent of haemoglobin able to carry oxygen
+--   Valid:   COHb + MetHb < 100 % (NULL otherwise). The co-oximeter's oxyhaemoglobin fraction falls with
+--            carboxy- and methaemoglobin; the dissociation curve and a pulse oximeter speak of functional
+--            saturation.
+--   Source:  fractional = functional x (1 - FCOHb - FMetHb) (CLSI C25-A, from memory; common practice)
+--   Status:  common practice
+CREATE OR REPLACE TEMP MACRO functional_saturation_pct(sao2_pct, cohb_pct, methb_pct) AS
+    CASE WHEN COALESCE(CAST(cohb_pct AS DOUBLE), 0.0) + COALESCE(CAST(methb_pct AS DOUBLE), 0.0) < 100.0 THEN
+        CAST(sao2_pct AS DOUBLE)
+        / (1.0 - (COALESCE(CAST(cohb_pct AS DOUBLE), 0.0) + COALESCE(CAST(methb_pct AS DOUBLE), 0.0)) / 100.0)
+    END;
+
+-- saturation_with_p50_shift_pct(po2, p50_shift_mmhg, ph := 7.40, base_excess := 0.0)
+--   Formula: predicted_sao2_pct(po2 * 26.8 / (26.8 + d), ph, 37, BE): the standard curve moved so that its
+--            P50 is 26.8 + d mmHg (a curve shifted along the log PO2 axis keeps its shape, so scaling PO2 by
+--            the ratio of the P50s reads the shifted curve)
+--   Units:   PO2 and shift in mmHg -> saturation in percent; d > 0 is a right shift (lower saturation)
+--   Valid:   PO2 >= 0 and 26.8 + d > 0 (NULL otherwise)
+--   Source:  standard P50 26.8 mmHg and the curve: Severinghaus JW 1979, J Appl Physiol 46:599; the
+--            parallel shift on the log PO2 axis: common practice (the basis of virtual_po2_mmhg's factors)
+--   Status:  common practice
+CREATE OR REPLACE TEMP MACRO saturation_with_p50_shift_pct(po2, p50_shift_mmhg, ph := 7.40, base_excess := 0.0) AS
+    CASE WHEN 26.8 + CAST(p50_shift_mmhg AS DOUBLE) > 0.0 THEN
+        predicted_sao2_pct(CAST(po2 AS DOUBLE) * 26.8 / (26.8 + CAST(p50_shift_mmhg AS DOUBLE)),
+                           ph := ph, temp_c := 37.0, base_excess := base_excess)
+    END;
+
 ---------------------------------------------------------------------------------------------------
 -- Acid-base
 -- CO2 solubility alpha = 0.0307 mmol/L per mmHg; pK' 6.1 by default (analysers following CLSI use 6.095).
@@ -438,3 +467,18 @@ CREATE OR REPLACE TEMP MACRO po2_at_temperature_mmhg(po2_37, temp_c) AS
 CREATE OR REPLACE TEMP MACRO reference_change_value_pct(cv_analytical_pct, cv_within_subject_pct, z := 1.96) AS
     sqrt(2.0) * CAST(z AS DOUBLE)
     * sqrt(power(CAST(cv_analytical_pct AS DOUBLE), 2) + power(CAST(cv_within_subject_pct AS DOUBLE), 2));
+
+-- delta_check_limit(level, cv_analytical_pct, cv_within_subject_pct, rate_per_hour, hours)
+--   Formula: |level| * RCV% / 100 + rate * hours, RCV% = reference_change_value_pct(CVa, CVi) (two-sided 95 %)
+--            (the change that analytical and biological variation explain in a stable patient, plus the
+--            change a treated patient's value can make in the hours between the two samples)
+--   Units:   level in the analyte's unit, CVs in percent, rate in the analyte's unit per hour, hours -> the
+--            analyte's unit
+--   Valid:   hours >= 0 (NULL otherwise)
+--   Source:  RCV: Harris EK, Yasaka T 1983, Clin Chem 29:25 (from memory); the time allowance: common practice
+--   Status:  common practice
+CREATE OR REPLACE TEMP MACRO delta_check_limit(level, cv_analytical_pct, cv_within_subject_pct, rate_per_hour, hours) AS
+    CASE WHEN CAST(hours AS DOUBLE) >= 0.0 THEN
+        abs(CAST(level AS DOUBLE)) * reference_change_value_pct(cv_analytical_pct, cv_within_subject_pct) / 100.0
+        + CAST(rate_per_hour AS DOUBLE) * CAST(hours AS DOUBLE)
+    END;
