@@ -7,6 +7,14 @@
 --                               status: its unit, period ($period of the collection time in
 --                               UTC) and one boolean per count family (the families of
 --                               10_audit_cell.sql; denominators as stated there).
+--                               Oxygenation families count adults only (derived.age_group
+--                               'adult', or 'unknown': no age and no birth date, to whom the
+--                               derive stage applies adult targets); neonates and children
+--                               are counted apart by age group, since the adult targets, the
+--                               adult A-a formula and the saturation curve check do not apply
+--                               to them. An oxygen status of 'not_assessed' (no target) or
+--                               'oxygen_unknown' (nothing documented) never enters an
+--                               in-target or above-target count.
 --   audit_sample_flag           one row per (record of audit_sample_fact, data-quality or
 --                               documentation rule that flagged it).
 --   audit_unit_period_counts    per (unit, period): every family's count, distinct patients
@@ -28,6 +36,8 @@ with placed as (
         cast(date_trunc($period, r.collected_at) as date) as period_start,
         a.audit_status,
         coalesce(r.sample_type, 'unknown') in ('arterial', 'unknown') as arterial,
+        -- no derived row, or no age and no birth date: 'unknown' (adult targets apply)
+        coalesce(d.age_group, 'unknown') as age_group,
         d.fio2_used,
         r.o2_device,
         d.oxygen_status,
@@ -52,7 +62,14 @@ with placed as (
 status as (
     select
         *,
-        audit_status in ('usable', 'caution') and oxygen_status is not null as oxygen_assessed,
+        -- included adult samples with an oxygen status and a target range that applies: the
+        -- denominator of hypoxaemia and of the oxygen-status-unknown share
+        audit_status in ('usable', 'caution') and age_group in ('adult', 'unknown')
+            and oxygen_status is not null and oxygen_status <> 'not_assessed' as oxygen_assessed,
+        -- included adult samples with an oxygen status whose documented FiO2 is not contradicted
+        -- by their PaO2 ('undocumented_oxygen'): A-a gradient and P/F ratio use that FiO2
+        audit_status in ('usable', 'caution') and age_group in ('adult', 'unknown')
+            and oxygen_status is not null and oxygen_status <> 'undocumented_oxygen' as gas_exchange_assessed,
         -- FiO2 typed, or implied (0.21) by a documented room-air device; device known
         arterial and fio2_used is not null and o2_device is not null and o2_device <> 'unknown'
             as fio2_device_documented
@@ -72,20 +89,31 @@ select
     s.audit_status = 'excluded' and s.arterial as excluded_data_quality,
     s.fio2_device_documented,
     s.fio2_device_documented and s.device_flagged as fio2_device_mismatch,
+    s.age_group = 'adult' as age_adult,
+    s.age_group = 'unknown' as age_unknown,
+    s.age_group = 'child' as age_child,
+    s.age_group = 'neonate' as age_neonate,
     s.oxygen_assessed,
     s.oxygen_assessed and s.oxygen_status = 'hypoxaemic' as hypoxaemic,
+    s.oxygen_assessed and s.oxygen_status = 'oxygen_unknown' as oxygen_unknown,
+    -- oxygen_assessed splits into on_oxygen (supplemental oxygen documented) and
+    -- no_oxygen_documented (nothing documented, or room air): a partition (06_audit_partition.sql)
     s.oxygen_assessed and s.on_supplemental_oxygen as on_oxygen,
+    s.oxygen_assessed and not s.on_supplemental_oxygen as no_oxygen_documented,
+    -- PaO2 above what room air allows with no supplemental oxygen documented
+    s.oxygen_assessed and not s.on_supplemental_oxygen and s.oxygen_status = 'undocumented_oxygen'
+        as undocumented_oxygen,
     -- saturation above the applicable target range, whether or not PaO2 also counts as hyperoxaemic
     s.oxygen_assessed and s.on_supplemental_oxygen and s.arterial_saturation_pct > s.target_high_pct
         as above_target_on_oxygen,
     s.oxygen_assessed and s.on_supplemental_oxygen and s.oxygen_status = 'hyperoxaemic' as hyperoxaemic_on_oxygen,
-    s.oxygen_assessed and s.aa_gradient_excess_mmhg is not null as aa_assessed,
-    s.oxygen_assessed and s.aa_gradient_excess_mmhg > 0 as aa_above_limit,
-    s.oxygen_assessed and s.pf_band is not null as pf_assessed,
-    s.oxygen_assessed and s.pf_band = 'severe' as pf_severe,
-    s.oxygen_assessed and s.pf_band = 'moderate' as pf_moderate,
-    s.oxygen_assessed and s.pf_band = 'mild' as pf_mild,
-    s.oxygen_assessed and s.pf_band = 'none' as pf_above_300
+    s.gas_exchange_assessed and s.aa_gradient_excess_mmhg is not null as aa_assessed,
+    s.gas_exchange_assessed and s.aa_gradient_excess_mmhg > 0 as aa_above_limit,
+    s.gas_exchange_assessed and s.pf_band is not null as pf_assessed,
+    s.gas_exchange_assessed and s.pf_band = 'severe' as pf_severe,
+    s.gas_exchange_assessed and s.pf_band = 'moderate' as pf_moderate,
+    s.gas_exchange_assessed and s.pf_band = 'mild' as pf_mild,
+    s.gas_exchange_assessed and s.pf_band = 'none' as pf_above_300
 from status as s;
 
 create or replace temp table audit_flag_now as
@@ -138,9 +166,16 @@ select
     count(*) filter (where f.arterial) as arterial,
     count(*) filter (where f.fio2_device_documented) as fio2_device_documented,
     count(*) filter (where f.fio2_device_mismatch) as fio2_device_mismatch,
+    count(*) filter (where f.age_adult) as age_adult,
+    count(*) filter (where f.age_unknown) as age_unknown,
+    count(*) filter (where f.age_child) as age_child,
+    count(*) filter (where f.age_neonate) as age_neonate,
     count(*) filter (where f.oxygen_assessed) as oxygen_assessed,
     count(*) filter (where f.hypoxaemic) as hypoxaemic,
+    count(*) filter (where f.oxygen_unknown) as oxygen_unknown,
     count(*) filter (where f.on_oxygen) as on_oxygen,
+    count(*) filter (where f.no_oxygen_documented) as no_oxygen_documented,
+    count(*) filter (where f.undocumented_oxygen) as undocumented_oxygen,
     count(*) filter (where f.above_target_on_oxygen) as above_target_on_oxygen,
     count(*) filter (where f.hyperoxaemic_on_oxygen) as hyperoxaemic_on_oxygen,
     count(*) filter (where f.aa_assessed) as aa_assessed,

@@ -1,5 +1,11 @@
 -- The published rates: each is a numerator family over a denominator family of
--- audit_sample (the families are its boolean columns; 'samples' is every row).
+-- audit_sample_fact (the families are its boolean columns; 'samples' is every row).
+-- Oxygenation measures, and the two oxygen-documentation measures computed from the oxygen
+-- status, count adults only: age group 'adult', or 'unknown' (no age and no birth date; the
+-- derive stage applies adult targets to them). Neonates and children are counted apart
+-- (audit_age_groups): the adult targets, the adult A-a formula and the saturation curve check
+-- do not apply to them. An oxygen status of 'oxygen_unknown' or 'not_assessed' is never in an
+-- in-target or above-target numerator or denominator.
 -- Grain: one row per measure.
 -- $hypoxaemia_pao2_mmhg, $hypoxaemia_sat_pct, $hyperoxaemia_pao2_mmhg: the derive stage's
 -- definitions (pipeline/catalogue.toml [derive]), quoted in the definitions.
@@ -14,21 +20,34 @@ from (
         (2, 'fio2_device_mismatch', 'FiO2 the documented device cannot deliver', 'documentation',
          'fio2_device_mismatch', 'fio2_device_documented',
          'flagged by rule fio2_outside_device_range, among samples with FiO2 and device documented'),
-        (3, 'hypoxaemia', 'Hypoxaemia', 'oxygenation',
+        (3, 'oxygen_status_unknown', 'Oxygen status unknown', 'documentation',
+         'oxygen_unknown', 'oxygen_assessed',
+         'neither FiO2 nor an oxygen device documented and PaO2 within what room air allows, so whether the '
+         || 'patient was on oxygen cannot be told (never counted as in or above target), among included adult '
+         || 'arterial samples with a PaO2 and a target range that applies'),
+        (4, 'undocumented_oxygen', 'Oxygen given but not documented', 'documentation',
+         'undocumented_oxygen', 'no_oxygen_documented',
+         'PaO2 above what the alveolar PO2 of room air allows, so the patient was breathing supplemental oxygen '
+         || 'that nobody charted, among included adult arterial samples with a PaO2 and a target range that '
+         || 'applies and no supplemental oxygen documented (neither FiO2 nor device, or room air)'),
+        (5, 'hypoxaemia', 'Hypoxaemia', 'oxygenation',
          'hypoxaemic', 'oxygen_assessed',
-         'PaO2 < ' || cast(cast($hypoxaemia_pao2_mmhg as decimal(6, 1)) as varchar)
+         'arterial saturation below the lower end of the target range that applies and PaO2 < '
+         || cast(cast($hypoxaemia_pao2_mmhg as decimal(6, 1)) as varchar)
          || ' mmHg or arterial saturation < ' || cast(cast($hypoxaemia_sat_pct as decimal(6, 1)) as varchar)
-         || ' %, among included samples with an oxygen status'),
-        (4, 'above_target_on_oxygen', 'Saturation above target on supplemental oxygen', 'oxygenation',
+         || ' % (so a patient at risk of hypercapnic failure inside 88-92 % is in target), among included adult '
+         || 'arterial samples with a PaO2 and a target range that applies'),
+        (6, 'above_target_on_oxygen', 'Saturation above target on supplemental oxygen', 'oxygenation',
          'above_target_on_oxygen', 'on_oxygen',
-         'arterial saturation above the upper end of the target range that applies, among included '
-         || 'samples on supplemental oxygen'),
-        (5, 'hyperoxaemia_on_oxygen', 'Hyperoxaemia on supplemental oxygen', 'oxygenation',
+         'arterial saturation above the upper end of the target range that applies, among included adult '
+         || 'arterial samples with a PaO2, a target range that applies and supplemental oxygen documented'),
+        (7, 'hyperoxaemia_on_oxygen', 'Hyperoxaemia on supplemental oxygen', 'oxygenation',
          'hyperoxaemic_on_oxygen', 'on_oxygen',
          'PaO2 > ' || cast(cast($hyperoxaemia_pao2_mmhg as decimal(6, 1)) as varchar)
-         || ' mmHg, among included samples on supplemental oxygen'),
-        (6, 'aa_above_age_limit', 'A-a gradient above the age-expected limit', 'oxygenation',
+         || ' mmHg, among included adult arterial samples with a PaO2, a target range that applies and '
+         || 'supplemental oxygen documented'),
+        (8, 'aa_above_age_limit', 'A-a gradient above the age-expected limit', 'oxygenation',
          'aa_above_limit', 'aa_assessed',
-         'A-a gradient above the age-expected upper limit, among included room-air samples with age, PaO2 '
-         || 'and PaCO2 recorded')
+         'A-a gradient above the age-expected upper limit, among included adult room-air samples with age, PaO2 '
+         || 'and PaCO2 recorded and a PaO2 that room air allows')
 ) as m(sort_order, measure, title, basis, numerator_family, denominator_family, definition);

@@ -21,5 +21,14 @@ from (
         ('pf_band', 'pf_severe', 'part'),
         ('pf_band', 'pf_moderate', 'part'),
         ('pf_band', 'pf_mild', 'part'),
-        ('pf_band', 'pf_above_300', 'part')
+        ('pf_band', 'pf_above_300', 'part'),
+        ('age_group', 'samples', 'total'),
+        ('age_group', 'age_adult', 'part'),
+        ('age_group', 'age_unknown', 'part'),
+        ('age_group', 'age_child', 'part'),
+        ('age_group', 'age_neonate', 'part'),
+        -- included adult samples with a target: supplemental oxygen documented, or not
+        ('oxygen_documentation', 'oxygen_assessed', 'total'),
+        ('oxygen_documentation', 'on_oxygen', 'part'),
+        ('oxygen_documentation', 'no_oxygen_documented', 'part')
 ) as p(partition_id, family, role);

@@ -5,10 +5,13 @@
 -- out until it ends: its small, growing counts would otherwise be suppressed and force
 -- complementary suppression into the complete periods.
 -- Denominators (stated in the report):
---   documentation measures use every sample labelled arterial or of unknown type, whatever
---     its data-quality flags (a flag such as fio2_outside_device_range is what they count);
---   oxygenation measures use only samples whose audit status is usable or caution
---     (audit_status.audit_status), and report the excluded ones separately.
+--   the FiO2/device documentation measures use every sample labelled arterial or of unknown
+--     type, whatever its data-quality flags (a flag such as fio2_outside_device_range is what
+--     they count);
+--   oxygenation measures, and the oxygen-status documentation measures (oxygen status
+--     unknown, oxygen given but not documented), use only adult samples whose audit status is
+--     usable or caution (audit_status.audit_status), and report the excluded ones and the
+--     neonates and children separately.
 -- Grain: one row per period in the window.
 create or replace temp table audit_window as
 with periods as (

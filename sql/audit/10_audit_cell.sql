@@ -27,8 +27,15 @@ sums as (
         sum(c.arterial) as arterial,
         sum(c.fio2_device_documented) as fio2_device_documented,
         sum(c.fio2_device_mismatch) as fio2_device_mismatch,
+        sum(c.age_adult) as age_adult,
+        sum(c.age_unknown) as age_unknown,
+        sum(c.age_child) as age_child,
+        sum(c.age_neonate) as age_neonate,
         sum(c.oxygen_assessed) as oxygen_assessed,
         sum(c.hypoxaemic) as hypoxaemic,
+        sum(c.oxygen_unknown) as oxygen_unknown,
+        sum(c.no_oxygen_documented) as no_oxygen_documented,
+        sum(c.undocumented_oxygen) as undocumented_oxygen,
         sum(c.on_oxygen) as on_oxygen,
         sum(c.above_target_on_oxygen) as above_target_on_oxygen,
         sum(c.hyperoxaemic_on_oxygen) as hyperoxaemic_on_oxygen,
@@ -75,8 +82,15 @@ sample_cells as (
             when 'arterial' then g.arterial
             when 'fio2_device_documented' then g.fio2_device_documented
             when 'fio2_device_mismatch' then g.fio2_device_mismatch
+            when 'age_adult' then g.age_adult
+            when 'age_unknown' then g.age_unknown
+            when 'age_child' then g.age_child
+            when 'age_neonate' then g.age_neonate
             when 'oxygen_assessed' then g.oxygen_assessed
             when 'hypoxaemic' then g.hypoxaemic
+            when 'oxygen_unknown' then g.oxygen_unknown
+            when 'no_oxygen_documented' then g.no_oxygen_documented
+            when 'undocumented_oxygen' then g.undocumented_oxygen
             when 'on_oxygen' then g.on_oxygen
             when 'above_target_on_oxygen' then g.above_target_on_oxygen
             when 'hyperoxaemic_on_oxygen' then g.hyperoxaemic_on_oxygen
@@ -101,8 +115,15 @@ sample_cells as (
         ('arterial'),
         ('fio2_device_documented'),
         ('fio2_device_mismatch'),
+        ('age_adult'),
+        ('age_unknown'),
+        ('age_child'),
+        ('age_neonate'),
         ('oxygen_assessed'),
         ('hypoxaemic'),
+        ('oxygen_unknown'),
+        ('no_oxygen_documented'),
+        ('undocumented_oxygen'),
         ('on_oxygen'),
         ('above_target_on_oxygen'),
         ('hyperoxaemic_on_oxygen'),
