@@ -144,6 +144,8 @@ def evaluate_rules(con: duckdb.DuckDBPyConnection, catalogue: Catalogue, run_id:
     """Replace flags and audit status of the samples in ``scope_samples``; return flag counts per rule."""
     store_catalogue(con, catalogue)
     run_sql(con, "rules/00_rule_input.sql")
+    # The delta checks of three rules share one pass over each patient's results.
+    run_sql(con, "rules/05_delta_neighbours.sql", **catalogue.rule("wrong_blood_in_tube").parameters)
     con.execute(read_sql("rules/10_flags_table.sql"))
     con.execute("delete from flags where sample_id in (select sample_id from scope_samples)")
     counts: dict[str, int] = {}

@@ -97,6 +97,8 @@ bounded as (
                               ph2o_mmhg := ph2o_patient_temp_mmhg) as pao2_limit_patient_temp_mmhg,
         alveolar_po2_max_mmhg(0.21, paco2_patient_temp_mmhg, pb_mmhg := pb_mmhg,
                               ph2o_mmhg := ph2o_patient_temp_mmhg) as pao2_room_air_limit_patient_temp_mmhg,
+        alveolar_po2_full_mmhg(fio2_used, paco2_patient_temp_mmhg, pb_mmhg := pb_mmhg,
+                               ph2o_mmhg := ph2o_patient_temp_mmhg, rq := $rq) as pao2_alveolar_full_patient_temp_mmhg,
         -- no FiO2 and no device (other than unknown) documented
         fio2 is null and (o2_device is null or o2_device = 'unknown') as oxygen_undocumented
     from aged
@@ -200,7 +202,13 @@ select
     case when is_arterial_or_unknown then pao2_patient_temp_mmhg end as pao2_patient_temp_mmhg,
     case when is_arterial_or_unknown then paco2_patient_temp_mmhg end as paco2_patient_temp_mmhg,
     case when is_arterial_or_unknown then pao2_limit_patient_temp_mmhg end as pao2_limit_patient_temp_mmhg,
+    case when is_arterial_or_unknown then pao2_alveolar_full_patient_temp_mmhg end
+        as pao2_alveolar_full_patient_temp_mmhg,
     case when is_arterial_or_unknown then pao2_excess_over_limit_mmhg end as pao2_excess_over_limit_mmhg,
+    case when is_arterial_or_unknown and gas_temperature_c is null
+         then printf('patient temperature %.1f C is outside %.0f-%.0f C: the 37 C gases are not compared with the '
+                     || 'alveolar PO2', temperature_c, $gas_temperature_min_c, $gas_temperature_max_c)
+    end as alveolar_check_note,
     fio2_source,
     on_supplemental_oxygen,
     turnaround_min,

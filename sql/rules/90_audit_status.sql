@@ -1,6 +1,8 @@
 -- Audit status of each record in scope, from its data-quality flags and sample type:
---   excluded  - not an arterial sample, or a data-quality flag whose rule excludes the
---               record from oxygenation statistics (rule_catalogue.excludes_from_oxygenation);
+--   excluded  - not an arterial sample, or a high-severity data-quality flag of a rule whose
+--               catalogue entry excludes (rule_catalogue.excludes_from_oxygenation: only findings
+--               that make the record's numbers wrong for this patient; see the catalogue's
+--               exclusion policy);
 --   caution   - a data-quality flag of medium or high severity that does not exclude it;
 --   usable    - otherwise.
 -- Grain: one row per sample in scope_samples.
@@ -17,9 +19,9 @@ insert into audit_status
 with dq as (
     select
         f.sample_id,
-        bool_or(c.excludes_from_oxygenation) as excludes,
+        bool_or(c.excludes_from_oxygenation and f.severity = 'high') as excludes,
         bool_or(f.severity in ('high', 'medium')) as serious,
-        string_agg(f.rule_id, ', ' order by f.rule_id) filter (where c.excludes_from_oxygenation) as excluding_rules,
+        string_agg(f.rule_id, ', ' order by f.rule_id) filter (where c.excludes_from_oxygenation and f.severity = 'high') as excluding_rules,
         string_agg(f.rule_id, ', ' order by f.rule_id) filter (where f.severity in ('high', 'medium')) as serious_rules
     from flags as f
     join rule_catalogue as c using (rule_id)

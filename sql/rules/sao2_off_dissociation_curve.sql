@@ -1,14 +1,37 @@
--- Measured SaO2 against the saturation predicted from PaO2 (Severinghaus, standardised for
--- pH, temperature and base excess), on the steep part of the curve only.
+-- Measured SaO2 against the PaO2 of the same sample on the oxygen dissociation curve, allowing
+-- for the spread of real curves: the standard curve (standardised for pH and base excess) is
+-- shifted by +/- $p50_shift_mmhg of P50 (2,3-DPG, disease, transfusion move a patient's P50 by a
+-- few mmHg) and a tolerance for the equation and the co-oximeter is added. Adults (and records
+-- of unknown age) only: fetal haemoglobin moves a newborn's curve; not applied when
+-- carboxy- or methaemoglobin is raised (they shift the curve), nor on the flat part.
+-- The saturation compared is the functional one (derived.sao2_functional_pct).
+with banded as (
+    select
+        *,
+        saturation_with_p50_shift_pct(pao2_mmhg, $p50_shift_mmhg, ph := coalesce(ph, 7.40),
+                                      base_excess := coalesce(base_excess_mmol_l, 0.0)) - $tolerance_pct as band_low,
+        saturation_with_p50_shift_pct(pao2_mmhg, -$p50_shift_mmhg, ph := coalesce(ph, 7.40),
+                                      base_excess := coalesce(base_excess_mmol_l, 0.0)) + $tolerance_pct as band_high,
+        saturation_with_p50_shift_pct(pao2_mmhg, 2 * $p50_shift_mmhg, ph := coalesce(ph, 7.40),
+                                      base_excess := coalesce(base_excess_mmol_l, 0.0)) - $tolerance_pct as wide_low,
+        saturation_with_p50_shift_pct(pao2_mmhg, -2 * $p50_shift_mmhg, ph := coalesce(ph, 7.40),
+                                      base_excess := coalesce(base_excess_mmol_l, 0.0)) + $tolerance_pct as wide_high
+    from rule_input
+    where sao2_functional_pct is not null
+      and age_group in ('adult', 'unknown')
+      and coalesce(cohb_pct, 0) + coalesce(methb_pct, 0) <= $dyshaemoglobin_max_pct
+      and pao2_mmhg <= $pao2_max_mmhg
+      and predicted_sao2_pct between $predicted_min_pct and $predicted_max_pct
+)
 select
     sample_id,
-    case when abs(sao2_residual_pct) > $strong_tolerance_pct then 'high' end as severity,
-    printf('measured SaO2 %.1f %% differs by %.1f points from the %.1f %% predicted for PaO2 %.0f mmHg',
-           sao2_pct, abs(sao2_residual_pct), predicted_sao2_pct, pao2_mmhg) as message,
-    json_object('sao2_pct', sao2_pct, 'predicted_sao2_pct', round(predicted_sao2_pct, 1), 'pao2_mmhg', pao2_mmhg,
-                'ph', ph, 'temperature_c', temperature_c) as evidence
-from rule_input
-where sao2_residual_pct is not null
-  and pao2_mmhg <= $pao2_max_mmhg
-  and predicted_sao2_pct between $predicted_min_pct and $predicted_max_pct
-  and abs(sao2_residual_pct) > $tolerance_pct;
+    case when sao2_functional_pct not between wide_low and wide_high then 'high' end as severity,
+    printf('possible SaO2 and PaO2 from different samples or a mistyped value: measured SaO2 %.1f %% is outside '
+           || 'the %.0f-%.0f %% that PaO2 %.0f mmHg gives on any curve with P50 within %.0f mmHg of normal; check '
+           || 'both values against the analyser printout; do not withdraw a result on this flag alone',
+           sao2_functional_pct, band_low, band_high, pao2_mmhg, $p50_shift_mmhg) as message,
+    json_object('sao2_functional_pct', round(sao2_functional_pct, 1), 'band_low_pct', round(band_low, 1),
+                'band_high_pct', round(band_high, 1), 'predicted_sao2_pct', round(predicted_sao2_pct, 1),
+                'pao2_mmhg', pao2_mmhg, 'ph', ph, 'cohb_pct', cohb_pct, 'methb_pct', methb_pct) as evidence
+from banded
+where sao2_functional_pct not between band_low and band_high;

@@ -1,0 +1,191 @@
+-- Delta checks, shared by rules wrong_blood_in_tube, diluted_sample and
+-- delta_change_clinical_course: each analyte of a sample in scope against the same
+-- patient's previous and next results of that analyte within $window_hours (by collection
+-- time), and the results one further out on each side.
+-- The limit for a difference is delta_check_limit: the reference change value of the analyte
+-- (analytical and within-subject CVs) at the neighbour's level, plus the change a treated
+-- patient's value can make per hour times the hours between the samples. Parameters are the
+-- wrong_blood_in_tube rule's (pipeline/catalogue.toml, with their sources).
+-- Analyte groups: haemoglobin; sodium and chloride (one group: they move together); potassium;
+-- glucose. Haemoglobin and sodium/chloride are stable; potassium and glucose are labile (a
+-- labile change alone never suggests another patient's blood).
+-- Grain of delta_values: one row per (sample in scope, analyte with a value).
+create or replace temp table delta_values as
+with patients as (
+    select distinct r.patient_key
+    from records as r
+    semi join scope_samples as s on s.sample_id = r.sample_id
+    where r.patient_key is not null
+),
+analytes as (
+    select * from (
+        values
+            ('hb', 'Hb', 'g/dL', 'haemoglobin', true, $hb_cva_pct, $hb_cvi_pct, $hb_rate_per_hour),
+            ('na', 'Na', 'mmol/L', 'sodium_chloride', true, $na_cva_pct, $na_cvi_pct, $na_rate_per_hour),
+            ('cl', 'Cl', 'mmol/L', 'sodium_chloride', true, $cl_cva_pct, $cl_cvi_pct, $cl_rate_per_hour),
+            ('k', 'K', 'mmol/L', 'potassium', false, $k_cva_pct, $k_cvi_pct, $k_rate_per_hour),
+            ('glucose', 'glucose', 'mmol/L', 'glucose', false, $glucose_cva_pct, $glucose_cvi_pct,
+             $glucose_rate_per_hour)
+    ) as a(analyte, label, unit, analyte_group, stable, cva, cvi, rate)
+),
+long as (
+    select
+        r.sample_id,
+        r.patient_key,
+        r.collected_at,
+        a.*,
+        case a.analyte
+            when 'hb' then r.hb_g_dl
+            when 'na' then r.na_mmol_l
+            when 'cl' then r.cl_mmol_l
+            when 'k' then r.k_mmol_l
+            when 'glucose' then r.glucose_mmol_l
+        end as value
+    from records as r
+    semi join patients as p on p.patient_key = r.patient_key
+    cross join analytes as a
+    where r.collected_at is not null
+),
+ordered as (
+    select
+        *,
+        lag(value) over w as prev_value,
+        lag(value, 2) over w as prev2_value,
+        lead(value) over w as next_value,
+        lead(value, 2) over w as next2_value,
+        epoch(collected_at - lag(collected_at) over w) / 3600.0 as hours_since_prev,
+        epoch(lag(collected_at) over w - lag(collected_at, 2) over w) / 3600.0 as hours_prev_to_prev2,
+        epoch(lead(collected_at) over w - collected_at) / 3600.0 as hours_to_next,
+        epoch(lead(collected_at, 2) over w - lead(collected_at) over w) / 3600.0 as hours_next_to_next2
+    from long
+    where value is not null
+    window w as (partition by patient_key, analyte order by collected_at, sample_id)
+),
+windowed as (
+    select
+        sample_id, analyte, label, unit, analyte_group, stable, cva, cvi, rate, value,
+        case when hours_since_prev <= $window_hours then prev_value end as prev_value,
+        case when hours_since_prev <= $window_hours then hours_since_prev end as hours_since_prev,
+        case when hours_to_next <= $window_hours then next_value end as next_value,
+        case when hours_to_next <= $window_hours then hours_to_next end as hours_to_next,
+        case when hours_since_prev + hours_prev_to_prev2 <= $window_hours then prev2_value end as prev2_value,
+        case when hours_since_prev + hours_prev_to_prev2 <= $window_hours then hours_prev_to_prev2 end
+            as hours_prev_to_prev2,
+        case when hours_to_next + hours_next_to_next2 <= $window_hours then next2_value end as next2_value,
+        case when hours_to_next + hours_next_to_next2 <= $window_hours then hours_next_to_next2 end
+            as hours_next_to_next2
+    from ordered
+    semi join scope_samples using (sample_id)
+)
+select
+    *,
+    prev_value is not null as has_prev,
+    next_value is not null as has_next,
+    value - prev_value as change_from_prev,
+    value - next_value as change_from_next,
+    delta_check_limit(prev_value, cva, cvi, rate, hours_since_prev) as limit_prev,
+    delta_check_limit(next_value, cva, cvi, rate, hours_to_next) as limit_next,
+    -- the two neighbours agree: the patient's level before and after is the same
+    abs(next_value - prev_value)
+        <= delta_check_limit(prev_value, cva, cvi, rate, hours_since_prev + hours_to_next) as neighbours_agree,
+    -- the only neighbour is itself in line with the one beyond it (so the sample after a wrong
+    -- one, back at the patient's level, is not blamed)
+    coalesce(abs(prev_value - prev2_value) <= delta_check_limit(prev2_value, cva, cvi, rate, hours_prev_to_prev2), true)
+        as prev_in_line,
+    coalesce(abs(next_value - next2_value) <= delta_check_limit(next2_value, cva, cvi, rate, hours_next_to_next2), true)
+        as next_in_line,
+    -- the evidence in words, naming only the neighbours that exist
+    label || ' ' || printf(case when unit = 'g/dL' then '%.1f' else '%.0f' end, value) || ' ' || unit
+        || coalesce(printf(case when unit = 'g/dL' then ' against %.1f %.0f h earlier' else ' against %.0f %.0f h earlier' end,
+                           case when hours_since_prev <= $window_hours then prev_value end,
+                           case when hours_since_prev <= $window_hours then hours_since_prev end), '')
+        || coalesce(printf(case when unit = 'g/dL' then ' %s %.1f %.0f h later' else ' %s %.0f %.0f h later' end,
+                           case when hours_since_prev <= $window_hours then 'and' else 'against' end,
+                           case when hours_to_next <= $window_hours then next_value end,
+                           case when hours_to_next <= $window_hours then hours_to_next end), '')
+        as words
+from windowed;
+
+-- Grain of delta_summary and delta_judged: one row per sample in scope with at least one
+-- compared analyte; delta_judged adds
+-- the patterns the three rules report:
+--   dilution_pattern     Hb down against the neighbours with chloride up and sodium not down
+--                        (0.9 % saline: Na and Cl 154 mmol/L) or glucose up with sodium or chloride
+--                        down (5 % glucose): a sample diluted by a line flush.
+--   wrong_blood_severity 'high' when both stable groups (Hb, Na/Cl) are out of line with the
+--                        neighbours on both sides, or one stable group jumps away and comes back
+--                        to where it was (the neighbours agree); 'medium' when both stable groups
+--                        differ from the only neighbour; NULL otherwise, and for a dilution. One
+--                        stable analyte changing alone fits a clinical course (transfusion,
+--                        bleeding, bypass, sodium correction): never wrong blood on its own.
+create or replace temp table delta_summary as
+with per_analyte as (
+    select
+        *,
+        -- two-sided: away from both neighbours in the same direction
+        coalesce(has_prev and has_next and abs(change_from_prev) > limit_prev and abs(change_from_next) > limit_next
+                 and sign(change_from_prev) = sign(change_from_next), false) as out_of_line,
+        -- one-sided: away from the only neighbour, which is in line with its own neighbour
+        coalesce(case when has_prev and not has_next then abs(change_from_prev) > limit_prev and prev_in_line
+                      when has_next and not has_prev then abs(change_from_next) > limit_next and next_in_line
+                 end, false) as moved_one_sided,
+        -- direction against the neighbours that exist (-1 down, +1 up, 0 within limits)
+        case
+            when has_prev and has_next then
+                case when change_from_prev < -limit_prev and change_from_next < -limit_next then -1
+                     when change_from_prev > limit_prev and change_from_next > limit_next then 1 else 0 end
+            when has_prev then
+                case when change_from_prev < -limit_prev then -1 when change_from_prev > limit_prev then 1 else 0 end
+            when has_next then
+                case when change_from_next < -limit_next then -1 when change_from_next > limit_next then 1 else 0 end
+            else 0
+        end as direction,
+        -- beyond the reference change value alone (no time allowance) from the previous result
+        coalesce(abs(change_from_prev) > delta_check_limit(prev_value, cva, cvi, 0.0, 0.0), false) as changed_from_prev
+    from delta_values
+)
+select
+    sample_id,
+    count(distinct analyte_group) filter (where out_of_line) as groups_out_of_line,
+    count(distinct analyte_group) filter (where out_of_line and stable) as stable_groups_out_of_line,
+    count(distinct analyte_group) filter (where out_of_line and stable and neighbours_agree) as stable_groups_away_and_back,
+    count(distinct analyte_group) filter (where moved_one_sided) as groups_moved_one_sided,
+    count(distinct analyte_group) filter (where moved_one_sided and stable) as stable_groups_moved_one_sided,
+    coalesce(max(direction) filter (where analyte = 'hb'), 0) as hb_direction,
+    coalesce(max(direction) filter (where analyte = 'na'), 0) as na_direction,
+    coalesce(max(direction) filter (where analyte = 'cl'), 0) as cl_direction,
+    coalesce(max(direction) filter (where analyte = 'glucose'), 0) as glucose_direction,
+    bool_or(has_prev and has_next) as two_sided,
+    -- a single stable analyte beyond its reference change value since the previous sample
+    max(change_from_prev) filter (where analyte = 'hb' and changed_from_prev) as hb_change,
+    max(hours_since_prev) filter (where analyte = 'hb' and changed_from_prev) as hb_hours,
+    max(change_from_prev) filter (where analyte = 'na' and changed_from_prev) as na_change,
+    max(hours_since_prev) filter (where analyte = 'na' and changed_from_prev) as na_hours,
+    string_agg(words, '; ' order by analyte) filter (where out_of_line or moved_one_sided or direction <> 0)
+        as words_changed,
+    string_agg(words, '; ' order by analyte) as words_all,
+    json_group_object(analyte, json_object('value', value, 'previous', prev_value, 'next', next_value,
+                                           'hours_since_previous', round(hours_since_prev, 1),
+                                           'hours_to_next', round(hours_to_next, 1),
+                                           'limit_previous', round(limit_prev, 2),
+                                           'limit_next', round(limit_next, 2))) as evidence
+from per_analyte
+group by sample_id;
+
+create or replace temp table delta_judged as
+with patterns as (
+    select
+        *,
+        hb_direction = -1
+            and ((cl_direction = 1 and na_direction >= 0) or (glucose_direction = 1 and least(na_direction, cl_direction) = -1))
+            as dilution_pattern
+    from delta_summary
+)
+select
+    *,
+    case
+        when dilution_pattern then null
+        when stable_groups_out_of_line >= 2 or stable_groups_away_and_back >= 1 then 'high'
+        when stable_groups_moved_one_sided >= 2 then 'medium'
+    end as wrong_blood_severity
+from patterns;
