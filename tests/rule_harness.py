@@ -100,6 +100,11 @@ def evaluate(
     return con
 
 
+def status_of(con: duckdb.DuckDBPyConnection) -> dict[str, str]:
+    """sample_id -> audit status (usable, caution, excluded)."""
+    return dict(con.execute("select sample_id, audit_status from audit_status").fetchall())
+
+
 def flagged(con: duckdb.DuckDBPyConnection, rule_id: str) -> dict[str, str]:
     """sample_id -> severity for one rule."""
     rows = con.execute("select sample_id, severity from flags where rule_id = ?", [rule_id]).fetchall()

@@ -95,14 +95,13 @@ select
     coalesce(abs(next_value - next2_value) <= delta_check_limit(next2_value, cva, cvi, rate, hours_next_to_next2), true)
         as next_in_line,
     -- the evidence in words, naming only the neighbours that exist
-    label || ' ' || printf(case when unit = 'g/dL' then '%.1f' else '%.0f' end, value) || ' ' || unit
-        || coalesce(printf(case when unit = 'g/dL' then ' against %.1f %.0f h earlier' else ' against %.0f %.0f h earlier' end,
-                           case when hours_since_prev <= $window_hours then prev_value end,
-                           case when hours_since_prev <= $window_hours then hours_since_prev end), '')
-        || coalesce(printf(case when unit = 'g/dL' then ' %s %.1f %.0f h later' else ' %s %.0f %.0f h later' end,
-                           case when hours_since_prev <= $window_hours then 'and' else 'against' end,
-                           case when hours_to_next <= $window_hours then next_value end,
-                           case when hours_to_next <= $window_hours then hours_to_next end), '')
+    label || ' ' || printf(case when unit = 'g/dL' then '%.1f %s' else '%.0f %s' end, value, unit)
+        || coalesce(printf(case when unit = 'g/dL' then ' against %.1f %s %.0f h earlier'
+                                else ' against %.0f %s %.0f h earlier' end,
+                           prev_value, unit, hours_since_prev), '')
+        || coalesce(printf(case when unit = 'g/dL' then ' %s %.1f %s %.0f h later' else ' %s %.0f %s %.0f h later' end,
+                           case when prev_value is not null then 'and' else 'against' end,
+                           next_value, unit, hours_to_next), '')
         as words
 from windowed;
 

@@ -26,7 +26,7 @@ judged as (
         pao2_mmhg >= $pao2_min_mmhg and paco2_mmhg < $paco2_very_low_mmhg and ph > $ph_high
             and pao2_patient_temp_mmhg >= alveolar_full_mmhg - $aa_gradient_max_mmhg as bubble_signature,
         paco2_mmhg < 15 and ph > 7.6 as diluted_extreme,
-        pao2_mmhg >= $pao2_min_mmhg and arterial_saturation_pct - spo2_pct >= $discordance_pct as above_oximeter
+        arterial_saturation_pct - spo2_pct >= $discordance_pct as above_oximeter
     from candidates
 )
 select
