@@ -199,6 +199,9 @@ VALID_ARGUMENTS: dict[str, dict[str, str]] = {
     "pco2_at_temperature_mmhg": {"pco2_37": "40", "temp_c": "39"},
     "po2_at_temperature_mmhg": {"po2_37": "80", "temp_c": "39"},
     "reference_change_value_pct": {"cv_analytical_pct": "1.5", "cv_within_subject_pct": "2.7"},
+    "delta_check_limit": {"level": "14", "cv_analytical_pct": "1.5", "cv_within_subject_pct": "2.7",
+                          "rate_per_hour": "0.15", "hours": "2"},
+    "saturation_with_p50_shift_pct": {"po2": "60", "p50_shift_mmhg": "4"},
 }
 
 
@@ -212,7 +215,11 @@ def test_null_in_any_required_argument_gives_null(con: duckdb.DuckDBPyConnection
 
 def test_every_physiology_macro_has_a_valid_call() -> None:
     in_file = {name for name, (path, _, _) in MACROS.items() if path.name == "20_physiology.sql"}
-    assert in_file - set(VALID_ARGUMENTS) == {"effective_barometric_pressure_mmhg"}  # COALESCE by design
+    # COALESCE by design: a missing recorded pressure falls back to the site's; a dyshaemoglobin that is not
+    # reported counts as 0 (and a missing saturation still gives NULL, checked here)
+    assert in_file - set(VALID_ARGUMENTS) == {"effective_barometric_pressure_mmhg", "functional_saturation_pct"}
+    con = connect()
+    assert one(con, "functional_saturation_pct(NULL, 20.0, 1.0)") is None
 
 
 # ---- water vapour pressure --------------------------------------------------------------------
@@ -733,3 +740,34 @@ def test_reference_change_value(con: duckdb.DuckDBPyConnection) -> None:
     assert one(con, "reference_change_value_pct(1.5, 2.7)") == pytest.approx(8.56, abs=0.01)
     assert one(con, "reference_change_value_pct(0.7, 0.5)") == pytest.approx(2.38, abs=0.01)
     assert one(con, "reference_change_value_pct(0.7, 0.5, z := 1.645)") == pytest.approx(2.00, abs=0.01)
+
+
+def test_delta_check_limit(con: duckdb.DuckDBPyConnection) -> None:
+    # RCV 8.56 % of 14 g/dL = 1.199 g/dL (domain-methods.md section 8 check value); plus 0.15 g/dL per hour for
+    # 2 h (the catalogue's time allowance) = 1.499; NULL for a negative interval.
+    assert one(con, "delta_check_limit(14.0, 1.5, 2.7, 0.0, 0.0)") == pytest.approx(14.0 * 0.0856141, rel=1e-5)
+    assert one(con, "delta_check_limit(14.0, 1.5, 2.7, 0.15, 2.0)") == pytest.approx(1.1986 + 0.30, abs=1e-3)
+    assert one(con, "delta_check_limit(-14.0, 1.5, 2.7, 0.0, 0.0)") == pytest.approx(1.1986, abs=1e-3)
+    assert one(con, "delta_check_limit(14.0, 1.5, 2.7, 0.15, -1.0)") is None
+
+
+# ---- co-oximetry and curve shifts ---------------------------------------------------------------
+
+
+def test_functional_saturation(con: duckdb.DuckDBPyConnection) -> None:
+    # fractional = functional x (1 - FCOHb - FMetHb) (domain-methods.md section 5): FO2Hb 72 % with COHb 20 % is
+    # functional 90 %; with COHb 15 % and MetHb 5 % also 90 %; no dyshaemoglobin reported: unchanged.
+    assert one(con, "functional_saturation_pct(72.0, 20.0, NULL)") == pytest.approx(90.0)
+    assert one(con, "functional_saturation_pct(72.0, 15.0, 5.0)") == pytest.approx(90.0)
+    assert one(con, "functional_saturation_pct(95.0, NULL, NULL)") == pytest.approx(95.0)
+    assert one(con, "functional_saturation_pct(50.0, 60.0, 40.0)") is None
+
+
+def test_saturation_with_p50_shift(con: duckdb.DuckDBPyConnection) -> None:
+    # Severinghaus 1979 check values (domain-methods.md section 5): 26.8 mmHg -> 49.86 %, 60 -> 90.58 %.
+    # A curve with P50 30.8 (shift +4) reads 30.8 mmHg as the standard curve reads 26.8; one with P50 22.8
+    # (shift -4) reads 22.8 mmHg so.
+    assert one(con, "saturation_with_p50_shift_pct(60.0, 0.0)") == pytest.approx(90.58, abs=0.01)
+    assert one(con, "saturation_with_p50_shift_pct(30.8, 4.0)") == pytest.approx(49.86, abs=0.01)
+    assert one(con, "saturation_with_p50_shift_pct(22.8, -4.0)") == pytest.approx(49.86, abs=0.01)
+    assert one(con, "saturation_with_p50_shift_pct(60.0, -30.0)") is None

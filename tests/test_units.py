@@ -190,6 +190,24 @@ def test_lactate_factor_matches_common_practice(con: duckdb.DuckDBPyConnection) 
     assert one(con, "lactate_to_mmol_l(1, 'mg/dL')") == pytest.approx(0.1110, abs=5e-5)
 
 
+GLUCOSE_G_PER_MOL = 180.156  # C6H12O6 (common practice; domain-methods.md section 11 gives mg/dL / 18.016)
+
+
+def test_glucose_to_mmol_l_by_unit(con: duckdb.DuckDBPyConnection) -> None:
+    got = evaluate(
+        "glucose_to_mmol_l(x, u)",
+        connection=con,
+        x=[5.5, 99.0, 99.0, None],
+        u=["mmol/L", "mg/dL", "g/L", "mg/dL"],
+    )
+    assert got[0] == 5.5
+    # oracle: pint, mass concentration / molar mass -> amount concentration
+    via_pint = (UREG.Quantity(99.0, "mg/dL") / UREG.Quantity(GLUCOSE_G_PER_MOL, "g/mol")).to("mmol/L").magnitude
+    assert got[1] == pytest.approx(via_pint, rel=1e-9)
+    assert got[1] == pytest.approx(99.0 / 18.016, rel=1e-4)  # domain-methods.md section 11
+    assert got[2:] == [None, None]
+
+
 def test_unit_macros_return_double_for_integer_input(con: duckdb.DuckDBPyConnection) -> None:
     # integer literals must not switch the arithmetic to integer or DECIMAL
     value = one(con, "fio2_to_fraction(21, 'percent')")
