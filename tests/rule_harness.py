@@ -53,8 +53,9 @@ def record(sample_id: str, **changes: Any) -> dict[str, Any]:
     return {"sample_id": sample_id, **CLEAN, **changes}
 
 
-def site_config(tmp: Path, pb_mmhg: float | None = 760.0) -> SiteConfig:
+def site_config(tmp: Path, pb_mmhg: float | None = 760.0, **settings: Any) -> SiteConfig:
     return SiteConfig(
+        **settings,
         path=None,
         site_name="test site",
         store_path=tmp / "store.duckdb",
@@ -88,14 +89,20 @@ def insert_records(con: duckdb.DuckDBPyConnection, rows: list[dict[str, Any]], r
 
 
 def evaluate(
-    tmp: Path, rows: list[dict[str, Any]], overrides: dict[str, Any] | None = None, pb_mmhg: float | None = 760.0
+    tmp: Path,
+    rows: list[dict[str, Any]],
+    overrides: dict[str, Any] | None = None,
+    pb_mmhg: float | None = 760.0,
+    **settings: Any,
 ) -> duckdb.DuckDBPyConnection:
-    """Store the rows, derive and evaluate every rule over all of them; return the open store."""
+    """Store the rows, derive and evaluate every rule over all of them; return the open store.
+
+    ``settings`` are further SiteConfig fields (unit_types, oxygen_targets)."""
     con = open_store(tmp / "store.duckdb")
     insert_records(con, rows)
     catalogue: Catalogue = load_catalogue(overrides)
     run_sql(con, "derive/00_scope.sql", run_id="t1", rebuild=True)
-    derive(con, catalogue, site_config(tmp, pb_mmhg))
+    derive(con, catalogue, site_config(tmp, pb_mmhg, **settings))
     evaluate_rules(con, catalogue, "t1")
     return con
 
