@@ -23,10 +23,17 @@ from pipeline.audit_settings import AuditSettings, parse_audit_settings
 from pipeline.errors import ConfigError
 from pipeline.sql_files import install_macros
 from synthetic_data import generate
-from tests.audit_store import RUN_ID, audit, audit_config, build_store, frame
+from tests.audit_store import (
+    JAN,
+    RUN_ID,
+    audit,
+    audit_config,
+    build_store,
+    frame,
+    oxygen_store,
+)
 from tests.rule_harness import record
 
-JAN = datetime(2026, 1, 12, 9, 0)
 FEB = datetime(2026, 2, 9, 9, 0)
 
 
@@ -175,10 +182,12 @@ def hand_rows() -> list[dict[str, Any]]:
         pao2_mmhg=80.0,
         **quiet,
     )
-    # Nasal cannula 2 L/min cannot deliver FiO2 0.80 (fio2_outside_device_range, excludes from oxygenation rates).
+    # Nasal cannula 2 L/min cannot deliver FiO2 0.80 (fio2_outside_device_range, medium severity: included with
+    # caution, since only high-severity findings exclude); SaO2 96.9 % in target, P/F 90 / 0.80 = 112.5 moderate.
     add("A-MISMATCH", 1, JAN + timedelta(days=4), "Ward A", o2_device="nasal_cannula", o2_flow_l_min=2.0, fio2=0.80)
     add("A-VENOUS", 1, JAN + timedelta(days=5), "Ward A", sample_type="venous")  # excluded: sample type
-    add("A-NODOC", 1, JAN + timedelta(days=6), "Ward A", fio2=None, o2_device=None)  # FiO2 and device not documented
+    # FiO2 and device not documented, PaO2 90 within room air: oxygen status unknown
+    add("A-NODOC", 1, JAN + timedelta(days=6), "Ward A", fio2=None, o2_device=None)
     add("B-CLEAN", 5, FEB, "Ward B")
     add("B-HYPO", 5, FEB + timedelta(days=1), "Ward B", pao2_mmhg=55.0, **quiet)
     return rows
@@ -247,11 +256,12 @@ def test_volume_counts_by_hand(hand_store):
     a = v[("Ward A", "2026-01")]
     # 10 + 3 + 4 + 2 + 1 + 1 + 1 = 22 samples; patients 5 (pairs) + 12 singles = 17.
     assert (a["samples"], a["patients"]) == (22, 17)
-    assert (a["samples_usable"], a["samples_caution"], a["samples_excluded"]) == (20, 0, 2)
-    assert (a["excluded_sample_type"], a["excluded_data_quality"]) == (1, 1)
+    # the mismatch is included with caution (medium severity); only the venous sample is excluded
+    assert (a["samples_usable"], a["samples_caution"], a["samples_excluded"]) == (20, 1, 1)
+    assert (a["excluded_sample_type"], a["excluded_data_quality"]) == (1, 0)
     assert v[("Ward B", "2026-02")]["samples"] == 10
     total = v[("All units", "all periods")]
-    assert (total["samples"], total["patients"], total["samples_excluded"]) == (32, 27, 2)
+    assert (total["samples"], total["patients"], total["samples_excluded"]) == (32, 27, 1)
     assert ("Ward B", "2026-01") not in v  # no sample, no row
     assert all(r["suppressed_columns"] is None for r in v.values())
 
@@ -260,14 +270,19 @@ RATES_BY_HAND = {
     # (measure, unit, period): (numerator, denominator)
     ("fio2_device_documented", "Ward A", "2026-01"): (20, 21),  # 21 arterial, one without FiO2 and device
     ("fio2_device_mismatch", "Ward A", "2026-01"): (1, 20),
-    ("hypoxaemia", "Ward A", "2026-01"): (3, 20),  # 20 included with an oxygen status
-    ("above_target_on_oxygen", "Ward A", "2026-01"): (4, 6),  # 4 cannula + 2 mask on oxygen
-    ("hyperoxaemia_on_oxygen", "Ward A", "2026-01"): (4, 6),
+    # 21 included adult arterial samples with a PaO2 and a target (every arterial one, the mismatch with caution
+    # and the undocumented one, whose status is 'oxygen_unknown', included)
+    ("hypoxaemia", "Ward A", "2026-01"): (3, 21),
+    ("oxygen_status_unknown", "Ward A", "2026-01"): (1, 21),  # A-NODOC
+    # 4 cannula + 2 mask + the mismatch (cannula, FiO2 0.80) on documented oxygen; the other 14 not
+    ("above_target_on_oxygen", "Ward A", "2026-01"): (4, 7),
+    ("hyperoxaemia_on_oxygen", "Ward A", "2026-01"): (4, 7),
+    ("undocumented_oxygen", "Ward A", "2026-01"): (0, 14),  # 10 clean + 3 hypoxaemic + A-NODOC; none above room air
     ("aa_above_age_limit", "Ward A", "2026-01"): (3, 13),  # room air with FiO2: 10 clean + 3 hypoxaemic
     ("hypoxaemia", "Ward B", "2026-02"): (5, 10),
     ("above_target_on_oxygen", "Ward B", "2026-02"): (0, 0),
-    ("hypoxaemia", "All units", "all periods"): (8, 30),
-    ("hypoxaemia", "Ward A", "all periods"): (3, 20),
+    ("hypoxaemia", "All units", "all periods"): (8, 31),
+    ("hypoxaemia", "Ward A", "all periods"): (3, 21),
     ("hypoxaemia", "All units", "2026-02"): (5, 10),
 }
 
@@ -290,8 +305,9 @@ def test_pf_bands_and_flag_rates_by_hand(hand_store):
         r["band"]: r["samples_in_band"]
         for r in frame(hand_store, "audit_pf_bands", "unit = 'Ward A' and period = '2026-01'").to_dicts()
     }
-    # 19 samples with FiO2: room air 90/0.21 and cannula 120/0.28 above 300 (14), 55/0.21 mild (3), mask moderate (2).
-    assert bands == {"severe": 0, "moderate": 2, "mild": 3, "above_300": 14}
+    # 20 included samples with FiO2: room air 90/0.21 and cannula 120/0.28 above 300 (14), 55/0.21 mild (3),
+    # mask 80/0.40 and the mismatch 90/0.80 moderate (3).
+    assert bands == {"severe": 0, "moderate": 3, "mild": 3, "above_300": 14}
     flag = frame(
         hand_store,
         "audit_flag_rates",
@@ -313,18 +329,12 @@ def test_worklist_ranks_by_severity_then_recency_with_evidence(hand_store):
 
 
 def test_worklist_order_and_window(tmp_path):
-    # Two high and one medium flag: high first, latest collection first within a severity.
+    # Two high and one medium flag: high first, latest collection first within a severity. High: resulted an
+    # hour before it was collected (resulted_before_collected); medium: FiO2 0.33 is no Venturi setting.
     config = audit_config(tmp_path, k=1, complete_periods_only=False, worklist_days=0)
     rows = [
-        record("OLD_HIGH", pao2_mmhg=130.0, sao2_pct=None, collected_at=JAN, resulted_at=JAN + timedelta(minutes=5)),
-        record(
-            "NEW_HIGH",
-            patient_id="P2",
-            pao2_mmhg=130.0,
-            sao2_pct=None,
-            collected_at=FEB,
-            resulted_at=FEB + timedelta(minutes=5),
-        ),
+        record("OLD_HIGH", collected_at=JAN, resulted_at=JAN - timedelta(minutes=60)),
+        record("NEW_HIGH", patient_id="P2", collected_at=FEB, resulted_at=FEB - timedelta(minutes=60)),
         record(
             "NEWEST_MEDIUM",
             patient_id="P3",
@@ -349,6 +359,138 @@ def test_worklist_order_and_window(tmp_path):
     latest_day = dataclasses.replace(config, audit=dataclasses.replace(config.audit, worklist_days=1))
     audit(con, latest_day)
     assert {r[0] for r in con.execute("select sample_id from review_worklist").fetchall()} == {"NEWEST_MEDIUM"}
+    con.close()
+
+
+# --------------------------------------------------------------------------------------
+# Age groups and oxygen statuses: a hand-counted store with derived rows set by hand
+# --------------------------------------------------------------------------------------
+
+@pytest.fixture(scope="module")
+def o2_store(tmp_path_factory) -> duckdb.DuckDBPyConnection:
+    con, _ = oxygen_store(tmp_path_factory.mktemp("oxygen"))
+    yield con
+    con.close()
+
+
+def test_samples_by_age_group_by_hand(o2_store):
+    # Groups G1-G9 and X1-X2 are adults (4+3+2+2+3+2+1+1+2+1+1 = 22), U1-U2 age unknown (3), C1-C2 children (5),
+    # N1 neonates (2): 32 samples, and the groups add up to them.
+    row = frame(o2_store, "audit_age_groups", "unit = 'Ward O' and period = '2026-01'").to_dicts()[0]
+    assert (row["samples"], row["adults"], row["age_unknown"], row["children"], row["neonates"]) == (32, 22, 3, 5, 2)
+    assert row["suppressed_columns"] is None
+    total = frame(o2_store, "audit_age_groups", "all_units and all_periods").to_dicts()[0]
+    assert (total["samples"], total["children"], total["neonates"]) == (32, 5, 2)
+    volume = frame(o2_store, "audit_volume", "all_units and all_periods").to_dicts()[0]
+    assert volume["samples"] == 32
+
+
+# (measure): (numerator, denominator), counted by hand from OXYGEN_GROUPS. The denominators in words:
+OXYGEN_RATES_BY_HAND = {
+    # included adult (or age unknown) arterial samples with a PaO2 and a target that applies: G1-G8 (18) + U1-U2 (3)
+    # = 21 (not G9: no target; not C, N: not adults; not X: excluded). Hypoxaemic: G2 (3) + U2 (1); G7 at 90 % on
+    # an 88-92 % target is in target; C2 and X1 are hypoxaemic but a child and an excluded sample.
+    "hypoxaemia": (4, 21),
+    # the same 21; oxygen status unknown: G3 (2)
+    "oxygen_status_unknown": (2, 21),
+    # of the 21, those with no supplemental oxygen documented (nothing, or room air): G1 4 + G2 3 + G3 2 + G4 2 + U1 2
+    # = 13; oxygen given but not documented: G4 (2)
+    "undocumented_oxygen": (2, 13),
+    # of the 21, those with supplemental oxygen documented: G5 3 + G6 2 + G7 1 + G8 1 + U2 1 = 8 (never G3 or G9);
+    # saturation above the target's upper end: G5 (99.2 > 98) and G6 (99.6 > 98)
+    "above_target_on_oxygen": (5, 8),
+    "hyperoxaemia_on_oxygen": (2, 8),  # G6
+    # included adults with an A-a excess whose PaO2 does not show undocumented oxygen: G1 4 + G2 3 = 7 (not G4,
+    # not the child C1 nor the excluded X1, both +30); above the limit: G2 (3)
+    "aa_above_age_limit": (3, 7),
+}
+
+
+def test_oxygen_rates_by_hand_with_wilson_intervals(o2_store):
+    rows = frame(o2_store, "audit_rates", "unit = 'Ward O' and period = '2026-01'").to_dicts()
+    rates = {r["measure"]: r for r in rows}
+    for measure, (x, n) in OXYGEN_RATES_BY_HAND.items():
+        row = rates[measure]
+        assert (row["numerator"], row["denominator"]) == (x, n), measure
+        low, high = proportion_confint(x, n, alpha=0.05, method="wilson")  # oracle: statsmodels
+        assert row["rate"] == pytest.approx(x / n), measure
+        assert (row["ci_low"], row["ci_high"]) == pytest.approx((low, high), abs=1e-12), measure
+    # the two documentation denominators split the oxygenation denominator: 13 + 8 = 21
+    assert rates["undocumented_oxygen"]["denominator"] + rates["above_target_on_oxygen"]["denominator"] == 21
+
+
+def test_measure_definitions_state_their_denominators_in_words(o2_store):
+    definitions = dict(o2_store.execute("select measure, definition from audit_rates group by all").fetchall())
+    assert "no supplemental oxygen documented" in definitions["undocumented_oxygen"]
+    assert "included adult arterial samples" in definitions["undocumented_oxygen"]
+    assert "neither FiO2 nor an oxygen device documented" in definitions["oxygen_status_unknown"]
+    hypoxaemia = definitions["hypoxaemia"]
+    assert hypoxaemia.startswith(
+        "arterial saturation below the lower end of the target range that applies and PaO2 < 60.0 mmHg"
+    )
+    assert "arterial saturation < 90.0 %" in hypoxaemia and "adult" in hypoxaemia
+    for measure in ("above_target_on_oxygen", "hyperoxaemia_on_oxygen", "aa_above_age_limit"):
+        assert "adult" in definitions[measure], measure
+
+
+def test_unknown_and_unassessed_oxygen_status_never_count_in_or_above_target(o2_store):
+    # Every sample whose oxygen status is 'oxygen_unknown' or 'not_assessed' (G3, G9, C1, N1: 9 samples) is in no
+    # target numerator or denominator, although G3, G9 and C1 have saturations above 98 %.
+    rows = o2_store.execute(
+        "select f.sample_id, f.on_oxygen, f.above_target_on_oxygen, f.hyperoxaemic_on_oxygen "
+        "from audit_sample_fact as f join derived as d using (sample_id) "
+        "where d.oxygen_status in ('oxygen_unknown', 'not_assessed')"
+    ).fetchall()
+    assert len(rows) == 2 + 2 + 3 + 2
+    assert all(not any(r[1:]) for r in rows), rows
+
+
+def test_children_and_neonates_are_out_of_every_adult_rate(o2_store):
+    # Children and neonates are in no oxygenation family (every count family of the layer except volume, status,
+    # sample type, FiO2/device documentation and age group), so in no adult rate and no P/F band.
+    counted = o2_store.sql(
+        "select f.* from audit_sample_fact as f join derived as d using (sample_id) "
+        "where d.age_group in ('child', 'neonate')"
+    ).pl()
+    assert counted.height == 5 + 2
+    general = {"arterial", "fio2_device_documented", "fio2_device_mismatch"}
+    oxygenation = [
+        c
+        for c, t in counted.schema.items()
+        if t == pl.Boolean and c not in general and not c.startswith(("samples_", "excluded_", "age_"))
+    ]
+    assert {"oxygen_assessed", "on_oxygen", "no_oxygen_documented", "aa_assessed", "pf_assessed"} <= set(oxygenation)
+    for family in oxygenation:
+        assert not counted[family].any(), family
+    # P/F bands among included adults: G1 4, G2 3, G5 3, G6 2, G7 1, G8 1, G9 2, U1 2, U2 1 = 19 with a band
+    # (G3 has none; G4's FiO2 is contradicted by its PaO2; C1, C2, N1 are not adults; X1 is excluded).
+    bands = {
+        r["band"]: (r["samples_in_band"], r["samples_with_pf"])
+        for r in frame(o2_store, "audit_pf_bands", "unit = 'Ward O' and period = '2026-01'").to_dicts()
+    }
+    assert bands == {"severe": (1, 19), "moderate": (2, 19), "mild": (3, 19), "above_300": (13, 19)}
+
+
+def test_age_group_and_oxygen_splits_hold_with_suppression(tmp_path):
+    # k 11 over three units and two months of the hand groups in different numbers: small age-group and oxygen
+    # cells appear; none is shown, none is recoverable from its total, and the splits stay consistent.
+    copies = {("Ward P", JAN): 1, ("Ward P", FEB): 4, ("Ward Q", JAN): 3, ("Ward Q", FEB): 1}
+    copies |= {("Ward R", JAN): 5, ("Ward R", FEB): 2}
+    con, _ = oxygen_store(tmp_path, [(unit, when, n) for (unit, when), n in copies.items()], k=11)
+    assert check_suppression(con, 11) > 0
+    assert determined_hidden_cells(con) == []
+    ages = {(r["unit"], r["period"]): r for r in frame(con, "audit_age_groups").to_dicts()}
+    # Ward P in January: 32 samples of which 2 neonates (small, hidden); the all-units total 32 x 16 = 512 is shown.
+    assert ages[("Ward P", "2026-01")]["neonates"] is None
+    assert "neonates" in ages[("Ward P", "2026-01")]["suppressed_columns"]
+    total = ages[("All units", "all periods")]
+    assert (total["samples"], total["adults"], total["age_unknown"], total["children"], total["neonates"]) == (
+        32 * 16,
+        22 * 16,
+        3 * 16,
+        5 * 16,
+        2 * 16,
+    )
     con.close()
 
 
@@ -493,6 +635,7 @@ COUNT_COLUMNS = {
     "audit_rates": ["numerator", "denominator"],
     "audit_pf_bands": ["samples_in_band", "samples_with_pf"],
     "audit_flag_rates": ["flagged_samples", "samples"],
+    "audit_age_groups": ["samples", "adults", "age_unknown", "children", "neonates"],
     "audit_control_chart": ["denominator"],
     "audit_funnel": ["numerator", "denominator"],
 }
@@ -508,7 +651,13 @@ DERIVED = {
     "audit_flag_rates": ["rate", "ci_low", "ci_high"],
     "audit_funnel": ["rate", "position"],
 }
-GROUP = {"audit_volume": [], "audit_rates": ["measure"], "audit_pf_bands": ["band"], "audit_flag_rates": ["rule_id"]}
+GROUP = {
+    "audit_volume": [],
+    "audit_rates": ["measure"],
+    "audit_pf_bands": ["band"],
+    "audit_flag_rates": ["rule_id"],
+    "audit_age_groups": [],
+}
 
 
 def hidden(row: dict[str, Any], column: str) -> bool:
@@ -542,6 +691,17 @@ def published_lines(con: duckdb.DuckDBPyConnection) -> list[tuple[str, list[tupl
             ["samples_excluded", "excluded_sample_type", "excluded_data_quality"],
         ):
             lines.append((f"volume split {r['unit']} {r['period']} {parts[0]}", [(id(r), c, r) for c in parts]))
+    for r in frame(con, "audit_age_groups").to_dicts():
+        parts = ["samples", "adults", "age_unknown", "children", "neonates"]
+        lines.append((f"age groups {r['unit']} {r['period']}", [(id(r), c, r) for c in parts]))
+    # The oxygenation denominator (hypoxaemia) = no supplemental oxygen documented (undocumented oxygen)
+    # + supplemental oxygen documented (above target on oxygen).
+    by_measure: dict[tuple, dict[str, dict]] = {}
+    for r in frame(con, "audit_rates").to_dicts():
+        by_measure.setdefault((r["unit"], r["period"]), {})[r["measure"]] = r
+    for key, measures in by_measure.items():
+        split = [measures[m] for m in ("hypoxaemia", "undocumented_oxygen", "above_target_on_oxygen")]
+        lines.append((f"oxygen documentation split {key}", [(id(r), "denominator", r) for r in split]))
     bands = frame(con, "audit_pf_bands").to_dicts()
     by_cell: dict[tuple, list] = {}
     for r in bands:

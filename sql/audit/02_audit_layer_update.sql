@@ -70,6 +70,9 @@ status as (
         -- by their PaO2 ('undocumented_oxygen'): A-a gradient and P/F ratio use that FiO2
         audit_status in ('usable', 'caution') and age_group in ('adult', 'unknown')
             and oxygen_status is not null and oxygen_status <> 'undocumented_oxygen' as gas_exchange_assessed,
+        -- supplemental oxygen documented (FiO2 above room air, or a device other than room air
+        -- or unknown); never for an 'oxygen_unknown' status, whatever the inputs say
+        on_supplemental_oxygen and oxygen_status is distinct from 'oxygen_unknown' as oxygen_documented_on,
         -- FiO2 typed, or implied (0.21) by a documented room-air device; device known
         arterial and fio2_used is not null and o2_device is not null and o2_device <> 'unknown'
             as fio2_device_documented
@@ -98,15 +101,15 @@ select
     s.oxygen_assessed and s.oxygen_status = 'oxygen_unknown' as oxygen_unknown,
     -- oxygen_assessed splits into on_oxygen (supplemental oxygen documented) and
     -- no_oxygen_documented (nothing documented, or room air): a partition (06_audit_partition.sql)
-    s.oxygen_assessed and s.on_supplemental_oxygen as on_oxygen,
-    s.oxygen_assessed and not s.on_supplemental_oxygen as no_oxygen_documented,
+    s.oxygen_assessed and s.oxygen_documented_on as on_oxygen,
+    s.oxygen_assessed and not s.oxygen_documented_on as no_oxygen_documented,
     -- PaO2 above what room air allows with no supplemental oxygen documented
-    s.oxygen_assessed and not s.on_supplemental_oxygen and s.oxygen_status = 'undocumented_oxygen'
+    s.oxygen_assessed and not s.oxygen_documented_on and s.oxygen_status = 'undocumented_oxygen'
         as undocumented_oxygen,
     -- saturation above the applicable target range, whether or not PaO2 also counts as hyperoxaemic
-    s.oxygen_assessed and s.on_supplemental_oxygen and s.arterial_saturation_pct > s.target_high_pct
+    s.oxygen_assessed and s.oxygen_documented_on and s.arterial_saturation_pct > s.target_high_pct
         as above_target_on_oxygen,
-    s.oxygen_assessed and s.on_supplemental_oxygen and s.oxygen_status = 'hyperoxaemic' as hyperoxaemic_on_oxygen,
+    s.oxygen_assessed and s.oxygen_documented_on and s.oxygen_status = 'hyperoxaemic' as hyperoxaemic_on_oxygen,
     s.gas_exchange_assessed and s.aa_gradient_excess_mmhg is not null as aa_assessed,
     s.gas_exchange_assessed and s.aa_gradient_excess_mmhg > 0 as aa_above_limit,
     s.gas_exchange_assessed and s.pf_band is not null as pf_assessed,

@@ -1,5 +1,6 @@
 -- Published: every rate of audit_measure per unit and period, with numerator, denominator and
--- the Wilson 95 % interval (wilson_lower / wilson_upper). A rate, and its interval, is shown
+-- the Wilson 95 % interval (wilson_lower / wilson_upper), and the measure's definition (numerator
+-- and denominator in words). A rate, and its interval, is shown
 -- only when both of its counts are; rate NULL with nothing suppressed means no denominator.
 -- Grain: one row per measure, unit (or all units) and period (or all periods).
 create or replace table audit_rates as
@@ -8,6 +9,7 @@ select
     m.measure,
     m.title,
     m.basis,
+    m.definition,
     coalesce(x.unit, 'All units') as unit,
     x.unit is null as all_units,
     p.period,
