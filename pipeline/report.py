@@ -40,7 +40,38 @@ from pipeline.testhooks import pause_point
 
 CAUTION = (
     "This report is an audit aid, not a diagnostic device; thresholds follow local policy and licensed "
-    "clinical judgement. No result should be acted on for an individual patient without clinical review."
+    "clinical judgement. Data-quality flags are possibilities to investigate, not verdicts: do not withdraw a "
+    "result on a flag alone, and act on no result for an individual patient without clinical review."
+)
+# What the audit cannot know: shown with the caution at the top and the foot of the report, in the
+# workbooks' about sheet, and in the README's caution block.
+LIMITS = (
+    (
+        "Targets are inferred",
+        "No oxygen prescription is exported, so the target range is inferred: 88-92 % when a hypercapnic-risk "
+        "flag is documented or PaCO2 is above normal, else the range the site sets for the unit type, else "
+        "94-98 %. A patient's prescribed target may differ.",
+    ),
+    (
+        "Rates are per sample",
+        "Every blood gas counts once, so a patient sampled often (usually the sickest) weighs more than one "
+        "sampled once.",
+    ),
+    (
+        "No case-mix adjustment",
+        "Units are compared as they are: a unit whose patients are sicker can differ from the others for that "
+        "reason alone.",
+    ),
+    (
+        "Not a real-time check",
+        "This nightly job sees results after they were reported and acted on; it is no substitute for the "
+        "laboratory's real-time delta checks.",
+    ),
+    (
+        "Adults only",
+        "Oxygenation rates count adults and samples without an age; neonates and children are counted apart, "
+        "outside the adult targets, the adult A-a formula and the saturation curve check.",
+    ),
 )
 SUPPRESSED = "suppressed"
 REPORT_NAME = "audit_report.html"
@@ -356,7 +387,8 @@ def _pivot_rates(rates: pl.DataFrame, periods: list[str]) -> list[dict[str, Any]
         for unit, _ in units.iter_rows():
             cells = {r["period"]: r for r in group.filter(pl.col("unit") == unit).to_dicts()}
             table.append({"unit": unit, "cells": [cells.get(p) for p in periods], "total": cells.get("all periods")})
-        blocks.append({"measure": measure, "title": group["title"][0], "rows": table})
+        definition = group["definition"][0] if "definition" in group.columns else None
+        blocks.append({"measure": measure, "title": group["title"][0], "definition": definition, "rows": table})
     return blocks
 
 
@@ -406,42 +438,93 @@ def _reconciliation(frame: pl.DataFrame) -> dict[str, Any]:
     return {"files": _rows(frame), "totals": totals}
 
 
+def _unit_targets(config: SiteConfig) -> str:
+    """The site's target ranges per unit type, in words (unit types are the site's own labels)."""
+    seen: dict[str, str] = {}
+    for _, unit_type, low, high, assessed in config.unit_target_rows():
+        if not assessed:
+            seen[unit_type] = "no target (not assessed)"
+        elif low is not None and high is not None:
+            seen[unit_type] = f"{low:g}-{high:g} %"
+    if not seen:
+        return "This site sets no target by unit type."
+    return "This site's unit types: " + "; ".join(f"{t} {v}" for t, v in sorted(seen.items())) + "."
+
+
 def _definitions(config: SiteConfig, derive: dict[str, Any]) -> list[tuple[str, str]]:
     s = config.audit
+    hypoxaemia_limits = (
+        f"PaO2 < {derive['hypoxaemia_pao2_mmhg']:g} mmHg (8 kPa, respiratory failure) or arterial saturation < "
+        f"{derive['hypoxaemia_sat_pct']:g} %"
+    )
     return [
         (
             "Oxygen target range",
-            f"{derive['target_low']:g}-{derive['target_high']:g} %, or {derive['hypercapnic_target_low']:g}-"
-            f"{derive['hypercapnic_target_high']:g} % when hypercapnic risk is recorded or PaCO2 > "
-            f"{derive['hypercapnic_paco2_mmhg']:g} mmHg (BTS emergency oxygen guideline 2017, O'Driscoll BR et al., "
-            "Thorax 72 Suppl 1).",
+            "No prescription is exported, so the target is inferred, in this order: "
+            f"{derive['hypercapnic_target_low']:g}-{derive['hypercapnic_target_high']:g} % when a hypercapnic-risk "
+            f"flag is documented or PaCO2 > {derive['hypercapnic_paco2_mmhg']:g} mmHg; else the range the site "
+            f"sets for the unit type (or none); else {derive['target_low']:g}-{derive['target_high']:g} % (BTS "
+            "emergency oxygen guideline 2017, O'Driscoll BR et al., Thorax 72 Suppl 1). Children and neonates have "
+            f"no adult target. {_unit_targets(config)}",
+        ),
+        (
+            "Age groups",
+            f"Age as exported, else from the birth date at collection. Neonate: under {derive['neonate_days']:g} "
+            f"days; child: from then up to {derive['adult_age_years']:g} years (a site setting); adult: older. "
+            "Samples with neither age nor birth date are 'age unknown': adult targets are applied and they are "
+            "counted in the adult rates. Neonates and children are counted by unit and period in the age-group "
+            "table and are outside every oxygenation rate and the P/F bands: the adult targets, the adult A-a "
+            "formula and the saturation curve check (neonatal blood with fetal haemoglobin sits on another curve) "
+            "do not apply to them.",
         ),
         (
             "Hypoxaemia",
-            f"PaO2 < {derive['hypoxaemia_pao2_mmhg']:g} mmHg (8 kPa, respiratory failure) or arterial saturation < "
-            f"{derive['hypoxaemia_sat_pct']:g} % (common practice).",
+            "Arterial saturation below the lower end of the target range that applies and "
+            f"{hypoxaemia_limits} (common practice): a patient at risk of hypercapnic failure inside 88-92 % is in "
+            "target, not hypoxaemic. Among included adult arterial samples with a PaO2 and a target range that "
+            "applies.",
         ),
         (
             "Hyperoxaemia on supplemental oxygen",
             f"PaO2 > {derive['hyperoxaemia_pao2_mmhg']:g} mmHg (13.3 kPa, supraphysiological) while FiO2 > "
             f"{derive['room_air_fio2_max']:g} or an oxygen device is documented (UK ICU cohort, Am J Respir Crit Care "
-            "Med 2019; from memory).",
+            "Med 2019; from memory). Among included adult arterial samples with a target range that applies and "
+            "supplemental oxygen documented.",
         ),
         (
             "Above target on supplemental oxygen",
             "Arterial saturation (co-oximetry, else predicted from PaO2 by the Severinghaus 1979 equation) above the "
-            "upper end of the target range that applies, while on supplemental oxygen; includes hyperoxaemic samples.",
+            "upper end of the target range that applies, while on supplemental oxygen; includes hyperoxaemic samples. "
+            "Samples whose oxygen status is unknown, or that have no target, are never counted in or above target.",
+        ),
+        (
+            "Oxygen given but not documented",
+            "PaO2 above what the alveolar PO2 of room air allows (alveolar gas equation with R 1, at the patient's "
+            "temperature, plus a tolerance) while no supplemental oxygen is documented: the patient was breathing "
+            "oxygen that nobody charted. Numerator: those samples. Denominator: included adult arterial samples with "
+            "a PaO2 and a target range that applies and no supplemental oxygen documented (neither FiO2 nor device, "
+            "or room air documented).",
+        ),
+        (
+            "Oxygen status unknown",
+            "Neither FiO2 nor an oxygen device documented and PaO2 within what room air allows, so whether the "
+            "patient was on oxygen cannot be told. Among included adult arterial samples with a PaO2 and a target "
+            "range that applies (the hypoxaemia denominator). These samples count towards hypoxaemia (a low "
+            "saturation is low on any FiO2) but never as in or above target.",
         ),
         (
             "A-a gradient above the age-expected limit",
-            "Room-air samples only (age formulas do not apply on oxygen); alveolar PO2 from the alveolar gas "
-            f"equation with R {derive['rq']:g}; limit method {derive['aa_method']} (see the formula notes).",
+            "Adult room-air samples only (the age formula is an adult room-air formula); samples whose PaO2 shows "
+            "undocumented oxygen are left out. Alveolar PO2 from the alveolar gas equation with R "
+            f"{derive['rq']:g}; limit method {derive['aa_method']} (see the formula notes).",
         ),
         (
             "Denominators",
-            "Documentation measures: every sample labelled arterial or of unknown type. Oxygenation measures: only "
-            "samples whose audit status is usable or caution (a data-quality flag that makes the record unreliable "
-            "excludes it; exclusions are counted separately in the volume table).",
+            "FiO2 and device documentation: every sample labelled arterial or of unknown type. Oxygenation measures, "
+            "oxygen status unknown and oxygen given but not documented: only adult samples (or age unknown) whose "
+            "audit status is usable or caution (a data-quality flag that makes the record unreliable excludes it; "
+            "exclusions are counted separately in the volume table, neonates and children in the age-group table). "
+            "Every rate is per sample, not per patient, and unadjusted for case mix.",
         ),
         (
             "Confidence intervals",
@@ -495,6 +578,7 @@ def render_report(con: duckdb.DuckDBPyConnection, config: SiteConfig, run_id: st
     curve = _table(con, "audit_funnel_curve")
     flag_rates = _table(con, "audit_flag_rates")
     bands = _table(con, "audit_pf_bands")
+    ages = _table(con, "audit_age_groups")
     qc = _table(con, "audit_analyser_qc")
     reconciliation = _table(con, "audit_run_reconciliation")
     rules = _table(con, "rule_catalogue")
@@ -510,6 +594,7 @@ def render_report(con: duckdb.DuckDBPyConnection, config: SiteConfig, run_id: st
     recent = periods[-12:]
     measures = rates.select("sort_order", "measure", "title", "basis").unique().sort("sort_order").to_dicts()
     total = volume.filter(pl.col("all_units") & pl.col("all_periods")).to_dicts()
+    age_total = ages.filter(pl.col("all_units") & pl.col("all_periods")).to_dicts()
     hospital = rates.filter(pl.col("all_units")).sort("sort_order")
     latest = periods[-1] if periods else None
 
@@ -559,6 +644,7 @@ def render_report(con: duckdb.DuckDBPyConnection, config: SiteConfig, run_id: st
     template = env.get_template("audit_report.html.j2")
     return template.render(
         caution=CAUTION,
+        limits=LIMITS,
         site_name=config.site_name,
         run_id=run_id,
         run=run[0] if run else None,
@@ -584,6 +670,8 @@ def render_report(con: duckdb.DuckDBPyConnection, config: SiteConfig, run_id: st
         units=units,
         flag_matrix=flag_matrix,
         band_matrix=band_matrix,
+        ages=_rows(ages.filter(pl.col("all_periods") | pl.col("period").is_in(recent))),
+        age_total=age_total[0] if age_total else None,
         worklist_count=None if worklist_rows[1] else worklist_rows[0],
         worklist_path=f"{RESTRICTED_DIR}/review_worklist.csv",
         qc=_rows(qc),
@@ -600,12 +688,20 @@ def render_report(con: duckdb.DuckDBPyConnection, config: SiteConfig, run_id: st
 # --------------------------------------------------------------------------------------
 
 
-def _about(config: SiteConfig, run_id: str) -> list[tuple[str, str]]:
+def _header(config: SiteConfig, run_id: str) -> list[tuple[str, str]]:
+    """The first rows of every workbook's about sheet: the caution, what the audit cannot know, the run."""
     return [
         ("Caution", CAUTION),
+        *((f"Cannot know: {title.lower()}", text) for title, text in LIMITS),
         ("Site", config.site_name),
         ("Run", run_id),
         ("Generated", datetime.now(UTC).strftime("%Y-%m-%d %H:%M UTC")),
+    ]
+
+
+def _about(config: SiteConfig, run_id: str) -> list[tuple[str, str]]:
+    return [
+        *_header(config, run_id),
         ("Period", f"{config.audit.period}; latest {config.audit.history_periods} periods with data"),
         (
             "Suppressed cells",
@@ -638,7 +734,7 @@ def write_outputs(con: duckdb.DuckDBPyConnection, config: SiteConfig, run_id: st
             frame = _table(con, name)
             written.append(_write_parquet(frame, restricted / f"{name}.parquet", 0o600))
             written.append(_write_csv(frame, restricted / f"{name}.csv", 0o600))
-            about = [*_about(config, run_id)[:4], ("Restricted", "Row level, pseudonymised; laboratory use only.")]
+            about = [*_header(config, run_id), ("Restricted", "Row level, pseudonymised; laboratory use only.")]
             written.append(_write_workbook(restricted / f"{name}.xlsx", about, {name: frame}, 0o600))
         html = render_report(con, config, run_id)
         written.append(atomic_write(out / REPORT_NAME, lambda tmp: tmp.write_text(html, encoding="utf-8"), 0o640))

@@ -12,6 +12,7 @@ import shutil
 import stat
 import subprocess
 import zipfile
+from html import unescape
 from pathlib import Path
 from typing import Any
 
@@ -24,6 +25,7 @@ from pipeline.audit import PUBLISHED_TABLES, RESTRICTED_TABLES
 from pipeline.log import Log
 from pipeline.report import (
     CAUTION,
+    LIMITS,
     REPORT_NAME,
     RESTRICTED_DIR,
     SUPPRESSED,
@@ -35,9 +37,10 @@ from pipeline.report import (
     write_outputs,
 )
 from synthetic_data import generate
-from tests.audit_store import RUN_ID, audit, audit_config, build_store
+from tests.audit_store import RUN_ID, audit, audit_config, build_store, oxygen_store
 
 CHROMIUM = shutil.which("chromium") or "/usr/bin/chromium"
+ROOT = Path(__file__).resolve().parent.parent
 INJECTED_UNIT = '=HYPERLINK("http://example.invalid","ward")'
 CAUTION_WORDS = "an audit aid, not a diagnostic device; thresholds follow local policy and licensed clinical judgement"
 
@@ -184,7 +187,7 @@ def test_report_is_self_contained(site):
     assert not re.search(r"""(?:src|href)\s*=\s*["']?\s*(?:https?:)?//""", html, re.I)
     assert not re.search(r"url\(\s*['\"]?\s*(?:https?:)?//", html, re.I)
     assert not re.search(r"<script|<link|<iframe|<img|@import|@font-face", html, re.I)
-    assert html.count("<svg") >= 12  # 6 trend charts and 6 funnel plots
+    assert html.count("<svg") >= 16  # 8 trend charts and 8 funnel plots
     assert html.count(CAUTION) == 2
     assert "Contract checks: not run" in html  # the store holds no contract result
     for section in (
@@ -196,6 +199,7 @@ def test_report_is_self_contained(site):
         "contract",
         "reconciliation",
         "analyser-qc",
+        "age-groups",
         "methods",
     ):
         assert f'id="{section}"' in html
@@ -231,6 +235,111 @@ def test_contract_results_are_rendered_when_present(site, monkeypatch):
     assert "expect_column_values_to_be_between" in html and "3 of 120 values outside 6.5-8" in html
     assert "2026-03-01.csv" in html and "/data/exports" not in html  # file name only, never its folder
     assert "no incoming batch was checked in this run (1 result(s) of earlier runs" in earlier
+
+
+# --------------------------------------------------------------------------------------
+# The caution, what the audit cannot know, and the age groups
+# --------------------------------------------------------------------------------------
+
+# The sentences the product brief asks the report and the README to carry (brief, "Safety", and the issue).
+CAUTION_SENTENCES = (
+    "an audit aid, not a diagnostic device",
+    "thresholds follow local policy and licensed clinical judgement",
+    "Data-quality flags are possibilities to investigate, not verdicts: do not withdraw a result on a flag alone",
+)
+CANNOT_KNOW = (
+    "the target range is inferred: 88-92 % when a hypercapnic-risk flag is documented or PaCO2 is above normal",
+    "weighs more than one sampled once",  # rates per sample: repeat sampling of the sickest
+    "Units are compared as they are",  # no case-mix adjustment
+    "no substitute for the laboratory's real-time delta checks",
+)
+
+
+@pytest.fixture(scope="module")
+def oxygen_site(tmp_path_factory) -> dict[str, Any]:
+    """The audit tests' hand-counted age-group and oxygen-status store (derived rows set by hand), its outputs."""
+    tmp = tmp_path_factory.mktemp("oxygen-report")
+    con, config = oxygen_store(tmp)
+    write_outputs(con, config, RUN_ID, Log(quiet=True))
+    html = (config.output_folder / REPORT_NAME).read_text(encoding="utf-8")
+    yield {"con": con, "config": config, "html": html}
+    con.close()
+
+
+def block(html: str, element_id: str) -> str:
+    """The text of the element with this id (up to its closing tag), tags removed, whitespace collapsed."""
+    start = html.index(f'id="{element_id}"')
+    tag = html.rfind("<", 0, start)
+    name = re.match(r"<(\w+)", html[tag:]).group(1)
+    depth, position = 0, tag
+    for match in re.finditer(rf"<(/?){name}\b[^>]*>", html[tag:]):
+        depth += -1 if match.group(1) else 1
+        if depth == 0:
+            position = tag + match.end()
+            break
+    text = re.sub(r"<[^>]+>", " ", html[tag:position])
+    return " ".join(unescape(text).split())
+
+
+def test_caution_and_what_the_audit_cannot_know_at_the_top_and_foot(oxygen_site):
+    html = oxygen_site["html"]
+    top, bottom = block(html, "caution-top"), block(html, "caution-bottom")
+    assert html.index('id="caution-top"') < html.index('id="summary"')  # before any figure
+    for text in (top, bottom):
+        for sentence in (*CAUTION_SENTENCES, *CANNOT_KNOW):
+            assert sentence in text, sentence
+        for title, limit in LIMITS:
+            assert f"{title}. {limit}" in text
+    assert CAUTION in top
+    # the data-quality section repeats it where the flags are
+    assert "do not withdraw a result on a flag alone" in block(html, "data-quality")
+
+
+def test_workbooks_carry_the_caution_and_what_the_audit_cannot_know(oxygen_site):
+    out = oxygen_site["config"].output_folder
+    for book in (out / WORKBOOK_NAME, out / RESTRICTED_DIR / "review_worklist.xlsx"):
+        with zipfile.ZipFile(book) as archive:
+            strings = unescape(archive.read("xl/sharedStrings.xml").decode())
+        for sentence in (*CAUTION_SENTENCES, *CANNOT_KNOW):
+            assert sentence in strings, (book.name, sentence)
+
+
+def test_report_counts_children_and_neonates_apart(oxygen_site):
+    html = oxygen_site["html"]
+    ages = block(html, "age-groups")
+    assert "outside the adult targets, the adult A-a formula and the saturation curve check" in ages
+    # Ward O, 2026-01: 32 samples, 22 adults, 3 age unknown, 5 children, 2 neonates (hand count in test_audit.py)
+    assert "Ward O 2026-01 32 22 3 5 2" in ages
+    summary = block(html, "summary")
+    assert "5 children: outside the adult rates" in summary and "2 neonates: outside the adult rates" in summary
+    assert "Oxygenation rates count adults only" in summary
+    methods = block(html, "methods")
+    assert "Oxygen given but not documented" in methods and "Oxygen status unknown" in methods
+    assert "Denominator: included adult arterial samples with a PaO2 and a target range that applies and no " \
+        "supplemental oxygen documented" in methods
+    assert "below the lower end of the target range that applies and PaO2 < 60 mmHg" in methods
+    rates = block(html, "rates")
+    # the rate blocks state each measure's numerator and denominator in words
+    assert "Oxygen given but not documented PaO2 above what the alveolar PO2 of room air allows" in rates
+    assert "Ward O 15.4 % (2/13)" in rates  # undocumented oxygen, G4 of OXYGEN_GROUPS, by hand: 2 of 13
+
+
+def readme_caution() -> str:
+    """The README's caution block: the quoted lines near the top."""
+    lines = (ROOT / "README.md").read_text(encoding="utf-8").splitlines()
+    start = next(i for i, line in enumerate(lines) if line.startswith("> **Caution."))
+    quoted = []
+    for line in lines[start:]:
+        if not line.startswith(">"):
+            break
+        quoted.append(line.lstrip("> ").strip())
+    return " ".join(" ".join(quoted).replace("**", "").split())
+
+
+def test_readme_caution_block_says_what_the_audit_cannot_know():
+    text = readme_caution()
+    for sentence in (*CAUTION_SENTENCES, *CANNOT_KNOW):
+        assert sentence in text, sentence
 
 
 # --------------------------------------------------------------------------------------
@@ -293,7 +402,7 @@ def test_report_renders_offline_in_chromium(site, tmp_path):
     report = site["out"] / REPORT_NAME
     dom, urls = chromium(report, tmp_path, "--dump-dom", "--virtual-time-budget=3000")
     assert network_urls(urls) == []
-    assert dom.count("<svg") >= 12
+    assert dom.count("<svg") >= 16
     assert CAUTION_WORDS in dom
     assert "Blood gas record audit" in dom
     assert not tokens(dom) & set(site["ids"])
