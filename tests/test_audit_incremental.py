@@ -109,6 +109,17 @@ def test_nightly_steps_publish_what_a_rebuild_publishes(tmp_path: Path, tracked:
     con.close()
     assert moved == [("W1", "2026-03-09")]
     assert duplicates >= 5
+    # The comparison covers the adult-only families: the test exports have no age (age unknown: adult targets)
+    # and every 7th row a PaO2 of 150 mmHg on documented room air (oxygen given but not documented).
+    con = duckdb.connect(str(store), read_only=True)
+    families = con.execute(
+        "select sum(age_unknown), sum(age_adult + age_child + age_neonate), sum(undocumented_oxygen), "
+        "sum(no_oxygen_documented), sum(oxygen_assessed) from audit_unit_period_counts"
+    ).fetchall()[0]
+    con.close()
+    unknown_age, other_ages, undocumented, no_oxygen, assessed = families
+    assert unknown_age > 0 and other_ages == 0
+    assert 0 < undocumented < no_oxygen == assessed  # every test row documents room air
     assert tracked == [False, True, True]  # the first run builds the layer, the others update it
     assert_same_as_rebuild(config)
     assert tracked[-1] is False
