@@ -220,7 +220,7 @@ def test_value_outside_physiological_range(tmp_path):
     message = con.execute(
         "select message from flags where sample_id = 'HB_LOW' and rule_id = 'value_outside_physiological_range'"
     ).fetchall()[0][0]
-    assert message == "Hb 1.37 g/dL outside 3-25"
+    assert message.startswith("possible transcription, unit or decimal error: Hb 1.37 g/dL outside 3-25; check")
 
 
 def series(patient: str, points: list[tuple[str, float, dict]]) -> list[dict]:

@@ -21,6 +21,7 @@ with candidates as (
 select
     sample_id,
     null as severity,
+    'possible decimal slip: ' || (
     case
         when paco2_mmhg > 100 and paco2_fits_divided
             then printf('PaCO2 %.0f mmHg fits pH and HCO3 only as %.1f mmHg (decimal point shifted)', paco2_mmhg, paco2_mmhg / 10)
@@ -30,7 +31,8 @@ select
             then printf('PaO2 %.1f mmHg is only plausible as %.0f mmHg (decimal point shifted)', pao2_mmhg, pao2_mmhg * 10)
         else printf('PaO2 %.0f mmHg exceeds the alveolar limit of %.0f mmHg; %.1f mmHg would fit (decimal point shifted)',
                     pao2_mmhg, pao2_alveolar_max_mmhg, pao2_mmhg / 10)
-    end as message,
+    end
+    ) || '; check the value against the analyser printout; do not withdraw a result on this flag alone' as message,
     json_object('paco2_mmhg', paco2_mmhg, 'pao2_mmhg', pao2_mmhg, 'pao2_alveolar_max_mmhg',
                 round(pao2_alveolar_max_mmhg, 1), 'sao2_pct', sao2_pct, 'ph', ph, 'hco3_mmol_l', hco3_mmol_l) as evidence
 from candidates

@@ -16,6 +16,7 @@ with candidates as (
 select
     sample_id,
     null as severity,
+    'possible unit error: ' || (
     case
         when paco2_mmhg < 15 and paco2_fits_as_kpa
             then printf('PaCO2 %.1f looks like kPa: as %.0f mmHg it fits pH %.2f and HCO3 %.0f', paco2_mmhg,
@@ -28,7 +29,8 @@ select
                         kpa_to_mmhg(pao2_mmhg), sao2_pct)
         else printf('PaO2 %.0f mmHg looks like a mmHg value read as kPa: %.0f mmHg fits the measured SaO2 %.0f %%',
                     pao2_mmhg, mmhg_to_kpa(pao2_mmhg), sao2_pct)
-    end as message,
+    end
+    ) || '; check the value against the analyser printout; do not withdraw a result on this flag alone' as message,
     json_object('paco2_mmhg', paco2_mmhg, 'pao2_mmhg', pao2_mmhg, 'ph', ph, 'hco3_mmol_l', hco3_mmol_l,
                 'sao2_pct', sao2_pct) as evidence
 from candidates

@@ -28,7 +28,9 @@ with checks as (
 select
     sample_id,
     null as severity,
-    array_to_string(problems, '; ') as message,
+    'possible transcription, unit or decimal error: ' || (
+    array_to_string(problems, '; ')
+    ) || '; check the value against the analyser printout; do not withdraw a result on this flag alone' as message,
     to_json(problems) as evidence
 from checks
 where len(problems) > 0;
