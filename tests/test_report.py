@@ -324,6 +324,25 @@ def test_report_counts_children_and_neonates_apart(oxygen_site):
     assert "Ward O 15.4 % (2/13)" in rates  # undocumented oxygen, G4 of OXYGEN_GROUPS, by hand: 2 of 13
 
 
+def test_methods_name_the_site_targets_by_unit_type(oxygen_site, monkeypatch):
+    # The inferred target is stated with the site's own unit-type settings (a site setting, pipeline/config.py).
+    import dataclasses
+
+    from markupsafe import Markup
+
+    from pipeline.config import OxygenTarget
+
+    monkeypatch.setattr("pipeline.report.svg_markup", lambda chart, prefix: Markup("<svg></svg>"))
+    config = dataclasses.replace(
+        oxygen_site["config"],
+        unit_types={"Ward O": "critical_care", "Ward K": "paediatric"},
+        oxygen_targets={"critical_care": OxygenTarget(92.0, 96.0)},
+    )
+    methods = block(render_report(oxygen_site["con"], config, RUN_ID), "methods")
+    assert "This site's unit types: critical_care 92-96 %; paediatric no target (not assessed)." in methods
+    assert "This site sets no target by unit type." in block(oxygen_site["html"], "methods")
+
+
 def readme_caution() -> str:
     """The README's caution block: the quoted lines near the top."""
     lines = (ROOT / "README.md").read_text(encoding="utf-8").splitlines()
