@@ -293,6 +293,11 @@ def test_caution_and_what_the_audit_cannot_know_at_the_top_and_foot(oxygen_site)
     assert CAUTION in top
     # the data-quality section repeats it where the flags are
     assert "do not withdraw a result on a flag alone" in block(html, "data-quality")
+    # and every printed page carries it in its bottom margin (a page margin box; checked by hand in a Chromium
+    # PDF print: the sentence is on each of the 21 pages)
+    margin = re.search(r"@bottom-left \{ content: \"([^\"]+)\"", html)
+    assert margin and "not a diagnostic device" in margin.group(1)
+    assert "Do not withdraw a result on a flag alone" in margin.group(1)
 
 
 def test_workbooks_carry_the_caution_and_what_the_audit_cannot_know(oxygen_site):
