@@ -53,13 +53,14 @@ pattern = "*.parquet"
 
 def prepare_demo(workdir: Path, *, rows: int, seed: int, log: Log) -> Path:
     """Generate the demo exports (once per rows/seed) and write the site configuration; return its path."""
-    from synthetic_data import generate
+    from synthetic_data import GENERATOR_VERSION, generate_demo
     from synthetic_data.hospital import SITE_ALTITUDE_M
     from synthetic_data.writers import write_exports
 
     workdir.mkdir(parents=True, exist_ok=True)
     exports = workdir / "exports"
-    marker = exports / f".generated-{rows}-{seed}"
+    # the generator's version too: exports from an older generator are made again
+    marker = exports / f".generated-{rows}-{seed}-{GENERATOR_VERSION}"
     if not marker.exists():
         # Other demo data: start over, or the old store would read the new exports as corrections.
         for stale in (exports, workdir / "store", workdir / "output"):
@@ -67,8 +68,10 @@ def prepare_demo(workdir: Path, *, rows: int, seed: int, log: Log) -> Path:
                 log.info(f"removing the previous demo's {stale.name} folder")
                 shutil.rmtree(stale)
         log.info(f"generating {rows} invented samples (seed {seed}) into {exports}")
-        canonical, truth = generate(rows, seed)
-        write_exports(canonical, truth, exports, provenance={"rows": rows, "seed": seed})
+        demo = generate_demo(rows, seed)
+        write_exports(
+            demo.records, demo.faults, exports, provenance={"rows": rows, "seed": seed}, lookalikes=demo.lookalikes
+        )
         marker.touch()
     else:
         log.info(f"demo exports for {rows} samples (seed {seed}) already in {exports}")

@@ -12,8 +12,9 @@ from pathlib import Path
 import polars as pl
 
 from synthetic_data.faults import DEFAULT_FAULT_RATES, scale_fault_rates
-from synthetic_data.generator import DEFAULT_DAYS, DEFAULT_SAO2_CALCULATED_SHARE, DEFAULT_START, generate
+from synthetic_data.generator import DEFAULT_DAYS, DEFAULT_SAO2_CALCULATED_SHARE, DEFAULT_START, generate_demo
 from synthetic_data.hospital import SITE_NAME
+from synthetic_data.lookalikes import DEFAULT_LOOKALIKE_RATES
 
 DEFAULT_TOTAL = sum(DEFAULT_FAULT_RATES.values())
 
@@ -50,6 +51,7 @@ def _share(text: str) -> float:
 
 def build_parser() -> argparse.ArgumentParser:
     fault_lines = "\n".join(f"  {name:<24} {rate:.3f}" for name, rate in DEFAULT_FAULT_RATES.items())
+    lookalike_lines = "\n".join(f"  {name:<24} {rate:.3f}" for name, rate in DEFAULT_LOOKALIKE_RATES.items())
     parser = argparse.ArgumentParser(
         prog="python -m synthetic_data",
         formatter_class=argparse.RawDescriptionHelpFormatter,
@@ -63,19 +65,21 @@ def build_parser() -> argparse.ArgumentParser:
             "  us_style/export_YYYY-MM-DD.csv       US-style CSV (profiles/demo_us_style.toml)\n"
             "  eu_style/export_YYYY-MM-DD.csv       European-style CSV (profiles/demo_eu_style.toml)\n"
             "  parquet/export_YYYY-MM-DD.parquet    Parquet (profiles/demo_parquet.toml)\n"
-            "  ground_truth.parquet, ground_truth.csv, README.txt\n\n"
+            "  ground_truth.parquet, ground_truth.csv   injected faults\n"
+            "  lookalikes.parquet, lookalikes.csv       clinical look-alikes (real patients, no fault)\n"
+            "  README.txt\n\n"
             f"Fault types and their default shares of all samples (total {DEFAULT_TOTAL:.3f}):\n"
             f"{fault_lines}\n\n"
+            "Clinical look-alikes and their default shares of all samples:\n"
+            f"{lookalike_lines}\n\n"
             "Examples:\n"
             "  python -m synthetic_data --out demo_exports\n"
             "  python -m synthetic_data --rows 5000000 --single-file --out bench_exports\n"
-            "  python -m synthetic_data --fault-rate 0 --out clean_only"
+            "  python -m synthetic_data --fault-rate 0 --lookalike-rate 0 --out clean_only"
         ),
     )
     parser.add_argument("--out", type=Path, required=True, help="folder to write into (created if missing)")
-    parser.add_argument(
-        "--rows", type=_whole_number(2), default=20_000, help="number of samples (default 20000)"
-    )
+    parser.add_argument("--rows", type=_whole_number(2), default=20_000, help="number of samples (default 20000)")
     parser.add_argument("--seed", type=int, default=7, help="random seed (default 7)")
     parser.add_argument(
         "--start-date",
@@ -94,8 +98,15 @@ def build_parser() -> argparse.ArgumentParser:
         type=_share,
         default=None,
         metavar="SHARE",
-        help=f"total share of faulted samples, split like the defaults (default {DEFAULT_TOTAL:.3f};"
-        " 0 for clean data)",
+        help=f"total share of faulted samples, split like the defaults (default {DEFAULT_TOTAL:.3f}; 0 for clean data)",
+    )
+    parser.add_argument(
+        "--lookalike-rate",
+        type=_share,
+        default=None,
+        metavar="SHARE",
+        help="share of samples per look-alike kind (default "
+        f"{next(iter(DEFAULT_LOOKALIKE_RATES.values())):.3f}; 0 for none)",
     )
     parser.add_argument(
         "--sao2-calculated-share",
@@ -118,25 +129,29 @@ def main(argv: list[str] | None = None) -> int:
     from synthetic_data.writers import write_exports  # after parsing, so --help stays quick
 
     rates = DEFAULT_FAULT_RATES if args.fault_rate is None else scale_fault_rates(args.fault_rate)
+    kinds = None if args.lookalike_rate is None else dict.fromkeys(DEFAULT_LOOKALIKE_RATES, args.lookalike_rate)
     started = time.perf_counter()
     try:
-        canonical, truth = generate(
+        demo = generate_demo(
             args.rows,
             args.seed,
             args.start_date,
             args.days,
             rates,
             sao2_calculated_share=args.sao2_calculated_share,
+            lookalike_rates=kinds,
         )
     except ValueError as err:
         print(f"error: {err}", file=sys.stderr)
         return 2
     generated = time.perf_counter()
+    canonical, truth = demo.records, demo.faults
     try:
         written = write_exports(
             canonical,
             truth,
             args.out,
+            lookalikes=demo.lookalikes,
             single_file=args.single_file,
             provenance={
                 "seed": args.seed,
@@ -150,14 +165,17 @@ def main(argv: list[str] | None = None) -> int:
         return 74
     finished = time.perf_counter()
 
-    print(f"{canonical.height} records from {SITE_NAME} (invented), {truth.height} with an injected fault")
+    print(
+        f"{canonical.height} records from {SITE_NAME} (invented), {truth.height} with an injected fault, "
+        f"{demo.lookalikes.height} clinical look-alikes"
+    )
     for source, files in written.items():
         print(f"  {source:<9} {len(files):>4} file(s) in {args.out / source}")
-    counts = truth.group_by("fault_type").agg(
-        pl.len().alias("n"), pl.col("physically_visible").sum().alias("v")
-    )
+    counts = truth.group_by("fault_type").agg(pl.len().alias("n"), pl.col("physically_visible").sum().alias("v"))
     for row in counts.sort("fault_type").iter_rows(named=True):
         print(f"  {row['fault_type']:<24} {row['n']:>7}  physically visible {row['v']:>7}")
+    for row in demo.lookalikes.group_by("lookalike_kind").len().sort("lookalike_kind").iter_rows(named=True):
+        print(f"  {row['lookalike_kind']:<24} {row['len']:>7}  look-alike records")
     print(f"generated in {generated - started:.1f} s, written in {finished - generated:.1f} s")
     return 0
 

@@ -1,45 +1,44 @@
 """Forward model of the demo data: from a patient's state to what the analyser reports.
 
-Every physiological formula comes from the shared SQL macros in ``sql/macros/`` (one home per
-formula); this package only draws random inputs in numpy and combines the macros in the SQL
-files beside this module (``synthetic_data/sql/``). The steps, per sample:
+All physics is the generator's own (``physics.py``, ``devices.py``, numpy); nothing here uses the
+pipeline's SQL macros. The steps, per sample:
 
-1. **Site pressure.** ``barometric_pressure_from_altitude_mmhg`` at the invented hospital's
-   altitude, plus a day-to-day weather offset (SD 4 mmHg, clipped at 3 SD).
-2. **Inspired oxygen.** Low-flow devices (room air, nasal cannula, simple and reservoir masks):
-   the true FiO2 is ``device_fio2_expected(device, flow)`` plus breathing-pattern noise (SD 0.03
-   for cannulae, 0.06 simple mask, 0.08 reservoir mask), always kept inside
-   ``[device_fio2_min, device_fio2_max]``; the chart shows the expected value. Venturi and
-   tracheostomy masks run at the flow ``venturi_min_flow_l_min`` prints for their setting (a
-   fifth at 1.5 times that) and deliver the setting or up to 0.02 less. High-flow, CPAP, NIV and
-   ventilators deliver the set FiO2, which is also what is charted. So the true FiO2 never
-   exceeds the documented FiO2's upper plausible device bound.
-3. **Acid-base.** PaCO2 is drawn around the patient's chronic value (CO2 retainers 45-75 mmHg
-   with compensated bicarbonate; ventilated patients pulled towards 41 mmHg); bicarbonate falls
-   with lactate. pH = ``henderson_hasselbalch_ph(PaCO2, HCO3)``.
-4. **Oxygenation.** PAO2 = ``alveolar_po2_simplified_mmhg(FiO2, PaCO2, PB,
-   water_vapour_pressure_mmhg(T))`` (R 0.8). PaO2 = (PAO2 - g) * (1 - s), where
-   g = ``aa_gradient_expected_mmhg(age)`` times U(0.3, 1.0) is the age-related gradient and
-   s = min(0.85, (current lung-disease severity)^1.5 times U(0.5, 1.1)) the share lost to shunt and
-   V/Q mismatch. PaO2 is held at least 3 mmHg below PAO2 (so it never exceeds
-   ``alveolar_po2_max_mmhg``, the R = 1 bound) and, where PAO2 allows, at least 38 mmHg.
-5. **Pulse oximetry.** SpO2 = ``predicted_sao2_pct`` of the arterial blood (shifted as in
-   step 7), plus the oximeter's
-   error (mean +0.5, SD 1.5, clipped to -3.5..+4 points), rounded and capped at 100. It belongs
-   to the patient, so it does not change when the sample is spoiled.
-6. **The syringe.** Arterial blood, or for samples really taken from a vein: PO2 38 +/- 6 mmHg
-   (22-55, and at least 5 below arterial), PCO2 2-10 mmHg higher, HCO3 1 mmol/L higher.
-7. **The analyser** (``analyser_report.sql``) measures pH (2 decimals), PCO2 and PO2 (1
-   decimal, mmHg, at 37 C), Hb, Na, K and lactate (the patient's stable baselines plus small
-   within-patient noise: Hb SD 0.25 g/dL, Na SD 0.8 mmol/L), and calculates HCO3 with
-   ``henderson_hasselbalch_hco3`` from the rounded pH and PCO2, and BE with
-   ``base_excess_ecf_mmol_l``. SaO2 is measured by co-oximetry: ``predicted_sao2_pct(PO2, pH,
-   37 C, BE)`` (the curve shifted for pH and base excess, read at 37 C because PO2 and pH
-   are the analyser's 37 C values, as the derive stage reads it) plus co-oximeter error (SD
-   0.7, clipped at 2 points); on samples flagged ``sao2_is_calculated`` (a configurable
-   share) it is the curve value itself. Chloride follows from the patient's own anion gap.
-8. **Times.** Collected on a whole minute (a morning-round bump around 06:00 UTC), resulted
-   2-28 minutes later (log-normal; point-of-care median 4 min, laboratory 11-12 min).
+1. **Site pressure.** ``standard_pressure_mmhg`` at the invented hospital's altitude, plus a
+   day-to-day weather offset (SD 4 mmHg, clipped at 3 SD), rounded to 0.1 mmHg.
+2. **Inspired oxygen.** The device table of ``devices.py``: low-flow devices deliver an FiO2 that
+   varies with the breathing pattern within the device's range and the chart shows the bedside
+   estimate; Venturi valves deliver their setting or up to 0.02 less; set-FiO2 devices deliver
+   and chart the setting.
+3. **Acid-base at body temperature.** PaCO2 and bicarbonate are drawn by ``hospital.py``;
+   pH = Henderson-Hasselbalch (pK' 6.1, alpha 0.0307).
+4. **Oxygenation at body temperature.** Alveolar PO2 by the full alveolar gas equation with the
+   sample's own R (0.75-0.95) and water vapour at the patient's temperature (Antoine). End-capillary
+   PO2 = PAO2 minus a small V/Q gradient (``vq_factor`` x (1 + 0.12 x age) mmHg). The arterial
+   oxygen content is the end-capillary content diluted by the venous admixture (shunt fraction
+   Qs, arterial-venous content difference D): Ca = Cc' - D Qs / (1 - Qs); PaO2 is the PO2 that holds
+   Ca on the patient's own curve (Hill, per-patient P50 shifted for pH, PCO2 and temperature),
+   never below min(30, PAO2 - 3) mmHg. This shunt model gives a small A-a gradient on air and a
+   large one (50-100 mmHg for a few per cent of shunt) on 100 % oxygen, as in healthy lungs.
+   Look-alikes may set ``pao2_target`` or ``sat_target`` (the PO2 of that saturation on the
+   patient's curve; either capped at PAO2 - 3) or, on cardiopulmonary bypass,
+   ``oxygenator_efficiency``: PaO2 = efficiency x (FiO2 (PB - PH2O) - PaCO2).
+5. **Pulse oximetry** reads the blood in the patient: ``pulse_oximeter_reading_pct`` (COHb counted
+   as oxyhaemoglobin) plus the patient's error (``oximeter_bias``; for the pigmented fifth, a further
+   ``oximeter_extra`` points scaled from 0 at 97 % to the full amount at 88 % and below), rounded,
+   capped at 100. NULL where no SpO2 was recorded (on bypass). It belongs to the patient, so it
+   does not change when the sample is spoiled.
+6. **The syringe** holds arterial blood, or for samples really taken from a vein (labelled venous,
+   or the fault ``venous_as_arterial``) venous blood: content Ca - D, PCO2 2-10 mmHg higher, HCO3
+   1 mmol/L higher, its PO2 solved on the curve (at least 22 mmHg).
+7. **The analyser** warms the sealed sample to 37 C (``blood_at_temperature``: pH and PCO2 by fixed
+   coefficients, PO2 by conserving the oxygen content) and reports pH (2 decimals), PCO2 and PO2
+   (1 decimal, mmHg), Hb, Na, K, Cl, glucose, lactate, and by co-oximetry FO2Hb (``sao2_pct``, the
+   oxyhaemoglobin fraction of total Hb: the functional saturation at 37 C times 1 - (COHb + MetHb)),
+   COHb and MetHb, each with a small analytical error. It calculates HCO3 from the rounded pH and
+   PCO2 and the standard base excess. On analysers without a co-oximeter (``sao2_is_calculated``)
+   SaO2 is calculated from PO2 and pH with a standard adult curve and COHb and MetHb are not reported.
+8. **Times.** Collected on a whole minute (a morning-round bump around 06:00 UTC), resulted 2-28
+   minutes later (log-normal; point-of-care median 3-4 min, laboratory 11-12 min).
 
 Faults (``faults.py``) change the syringe, the documentation or the transcription, and the
 analyser step is re-run where the blood changed.
@@ -47,159 +46,14 @@ analyser step is re-run where the blood changed.
 
 from __future__ import annotations
 
-from functools import cache
-from pathlib import Path
-
-import duckdb
+import numpy as np
 import polars as pl
 
-from pipeline.schema import FIELDS
-from pipeline.sql_files import install_macros
-from synthetic_data.hospital import LOW_FLOW_DEVICES
+from pipeline.schema import FIELDS  # the canonical column list only; no formula comes from the pipeline
+from synthetic_data import devices as dev
+from synthetic_data import physics as phys
 
-SQL_DIR = Path(__file__).resolve().parent / "sql"
-
-REQUIRED_MACROS = (
-    "kpa_to_mmhg",
-    "mmhg_to_kpa",
-    "celsius_to_fahrenheit",
-    "pressure_to_mmhg",
-    "fio2_to_fraction",
-    "hb_to_g_dl",
-    "saturation_to_pct",
-    "water_vapour_pressure_mmhg",
-    "barometric_pressure_from_altitude_mmhg",
-    "inspired_po2_mmhg",
-    "alveolar_po2_simplified_mmhg",
-    "alveolar_po2_max_mmhg",
-    "aa_gradient_expected_mmhg",
-    "predicted_sao2_pct",
-    "henderson_hasselbalch_ph",
-    "henderson_hasselbalch_hco3",
-    "acid_base_residual",
-    "base_excess_ecf_mmol_l",
-    "device_fio2_min",
-    "device_fio2_max",
-    "device_fio2_expected",
-    "venturi_min_flow_l_min",
-)
-
-
-@cache
-def read_sql(name: str) -> str:
-    """Text of ``synthetic_data/sql/<name>``."""
-    return (SQL_DIR / name).read_text(encoding="utf-8")
-
-
-def physiology_connection() -> duckdb.DuckDBPyConnection:
-    """An in-memory DuckDB connection with the shared macros installed."""
-    try:
-        from pipeline.physiology import connect  # type: ignore[import-not-found,unused-ignore]
-    except ImportError:
-        con = duckdb.connect()
-        install_macros(con)
-    else:
-        con = connect()
-    present = {row[0] for row in con.execute(read_sql("installed_macros.sql")).fetchall()}
-    missing = [m for m in REQUIRED_MACROS if m not in present]
-    if missing:
-        raise RuntimeError(
-            f"the demo-data generator needs these SQL macros, not installed: {', '.join(missing)}"
-        )
-    return con
-
-
-def run_query(
-    con: duckdb.DuckDBPyConnection,
-    name: str,
-    views: dict[str, pl.DataFrame],
-    params: dict[str, object] | None = None,
-) -> pl.DataFrame:
-    """Run ``synthetic_data/sql/<name>`` over polars frames registered under the given view names.
-
-    The queries are projections over their input, so DuckDB keeps the input's row order
-    (its default ``preserve_insertion_order``); the ``_row`` column is checked to make sure.
-    """
-    for view, frame in views.items():
-        con.register(view, frame)
-    try:
-        rel = con.sql(read_sql(name), params=params) if params else con.sql(read_sql(name))
-        out = rel.pl()
-    finally:
-        for view in views:
-            con.unregister(view)
-    if "_row" in out.columns and out.height > 1 and not out["_row"].is_sorted():
-        raise RuntimeError(f"{name}: DuckDB changed the row order")
-    return out
-
-
-FORWARD_INPUTS = (
-    "_row",
-    "true_device",
-    "flow",
-    "flow_factor",
-    "fio2_set",
-    "pb_offset",
-    "u_fio2",
-    "temperature_c",
-    "paco2_true",
-    "hco3_true",
-    "age_years",
-    "u_aa",
-    "u_shunt",
-    "severity_now",
-    "u_spo2",
-    "u_venous_po2",
-    "u_venous_pco2",
-)
-
-
-def true_state(con: duckdb.DuckDBPyConnection, draws: pl.DataFrame, altitude_m: float) -> pl.DataFrame:
-    """Steps 1-6: each sample's true state, the chart beside it and the blood in its syringe.
-
-    Returns ``draws`` with the computed columns added (only numbers cross into DuckDB and back).
-    """
-    computed = run_query(
-        con, "forward_model.sql", {"draws": draws.select(FORWARD_INPUTS)}, {"altitude_m": altitude_m}
-    )
-    venous = pl.col("sample_type") == "venous"
-    return pl.concat([draws, computed.drop("_row")], how="horizontal").with_columns(
-        # documentation gaps (a missing device or FiO2 is not a fault)
-        pl.when(pl.col("device_missing")).then(None).otherwise(pl.col("true_device")).alias("o2_device"),
-        pl.when(pl.col("device_missing")).then(None).otherwise(pl.col("true_flow")).alias("o2_flow_l_min"),
-        # a low-flow FiO2 is only an estimate from the device and flow: without the device it is not charted
-        pl.when(
-            pl.col("fio2_missing")
-            | (pl.col("device_missing") & pl.col("true_device").is_in(LOW_FLOW_DEVICES))
-        )
-        .then(None)
-        .otherwise(pl.col("fio2_charted"))
-        .alias("fio2"),
-        # what is in the syringe: arterial blood, or venous blood when the sample really is venous
-        pl.when(venous).then(pl.col("venous_po2")).otherwise(pl.col("pao2_true")).alias("blood_po2"),
-        pl.when(venous).then(pl.col("venous_pco2")).otherwise(pl.col("paco2_true")).alias("blood_pco2"),
-        pl.when(venous).then(pl.col("venous_hco3")).otherwise(pl.col("hco3_true")).alias("blood_hco3"),
-        pl.col("lactate_true").alias("blood_lactate"),
-    )
-
-
-ANALYSER_INPUTS = (
-    "_row",
-    "blood_po2",
-    "blood_pco2",
-    "blood_hco3",
-    "blood_lactate",
-    "baseline_hb",
-    "baseline_na",
-    "baseline_k",
-    "anion_gap",
-    "u_hb",
-    "u_na",
-    "u_k",
-    "u_coox",
-    "sao2_is_calculated",
-    "temperature_c",
-)
+CANONICAL_COLUMNS: tuple[str, ...] = tuple(f.name for f in FIELDS)
 
 REPORTED = (
     "ph",
@@ -213,18 +67,210 @@ REPORTED = (
     "k_mmol_l",
     "cl_mmol_l",
     "lactate_mmol_l",
+    "glucose_mmol_l",
+    "cohb_pct",
+    "methb_pct",
 )
 """Columns the analyser step writes."""
-
-
-def analyser_report(con: duckdb.DuckDBPyConnection, state: pl.DataFrame) -> pl.DataFrame:
-    """Step 7: the analyser's reported values for the blood in each syringe (``_row`` + REPORTED)."""
-    return run_query(con, "analyser_report.sql", {"syringe": state.select(ANALYSER_INPUTS)})
-
-
-CANONICAL_COLUMNS: tuple[str, ...] = tuple(f.name for f in FIELDS)
 STATE_COLUMNS: tuple[str, ...] = tuple(c for c in CANONICAL_COLUMNS if c not in REPORTED)
 """Canonical columns that come from the sample's label and chart rather than from the analyser."""
+
+SYRINGE = (
+    "blood_po2",
+    "blood_pco2",
+    "blood_hco3",
+    "blood_hb",
+    "blood_na",
+    "blood_k",
+    "blood_cl",
+    "blood_glucose",
+    "blood_lactate",
+    "blood_cohb",
+    "blood_methb",
+)
+"""What is in the syringe, at 37 C (gases in mmHg, HCO3 in mmol/L)."""
+NOISE = ("u_coox", "u_hb", "u_na", "u_k", "u_cl", "u_glucose", "u_cohb", "u_methb")
+"""Analytical errors of one measurement, drawn once per sample (faults re-measure with the same)."""
+
+
+def _np(frame: pl.DataFrame, name: str) -> np.ndarray:
+    return frame.get_column(name).cast(pl.Float64).to_numpy()
+
+
+def _arterial_po2(
+    pao2_alveolar: np.ndarray,
+    end_capillary_gradient: np.ndarray,
+    shunt: np.ndarray,
+    av_diff: np.ndarray,
+    hb_available: np.ndarray,
+    p50: np.ndarray,
+    t_c: np.ndarray,
+) -> np.ndarray:
+    """Step 4: arterial PO2 from the alveolar PO2 through the end-capillary blood and the shunt."""
+    pc = np.maximum(pao2_alveolar - end_capillary_gradient, 15.0)
+    cc = phys.o2_content(pc, hb_available, p50, t_c)
+    ca = cc - av_diff * shunt / (1.0 - shunt)
+    pao2 = phys.po2_from_content(np.maximum(ca, 0.05), hb_available, p50, t_c)
+    return np.maximum(pao2, np.minimum(30.0, pao2_alveolar - 3.0))
+
+
+def true_state(draws: pl.DataFrame, altitude_m: float, rng: np.random.Generator) -> pl.DataFrame:
+    """Steps 1-6: each sample's true state, the chart beside it and the blood in its syringe at 37 C.
+
+    Returns ``draws`` with the computed columns added; ``rng`` draws the analytical errors.
+    """
+    n = draws.height
+    device = draws.get_column("device_idx").to_numpy()
+    flow = _np(draws, "flow")
+    fio2_set = _np(draws, "fio2_set")
+    t = _np(draws, "temperature_c")
+    paco2 = _np(draws, "paco2_true")
+    hco3 = _np(draws, "hco3_true")
+    hb = _np(draws, "hb_true")
+    cohb = _np(draws, "cohb_true")
+    methb = _np(draws, "methb_true")
+    p50_std = _np(draws, "p50_std")
+    shunt = _np(draws, "shunt")
+    av_diff = _np(draws, "av_diff")
+
+    # 1-2. pressure and inspired oxygen
+    pb = np.round(phys.standard_pressure_mmhg(altitude_m) + _np(draws, "pb_offset"), 1)
+    fio2_true = dev.delivered_fio2(device, flow, fio2_set, _np(draws, "u_breathing"), _np(draws, "u_venturi"))
+    fio2_charted = dev.charted_fio2(device, flow, fio2_set)
+
+    # 3-4. the patient at body temperature
+    ph2o = phys.water_vapour_pressure_mmhg(t)
+    pao2_alveolar = phys.alveolar_po2_mmhg(fio2_true, paco2, pb, ph2o, _np(draws, "rq"))
+    ph = phys.ph_from_hco3(paco2, hco3)
+    hb_available = hb * (1.0 - (cohb + methb) / 100.0)
+    p50 = phys.p50_mmhg(p50_std, ph, paco2, t)
+    gradient = _np(draws, "vq_factor") * (1.0 + 0.12 * _np(draws, "age_exact"))
+    pao2 = _arterial_po2(pao2_alveolar, gradient, shunt, av_diff, hb_available, p50, t)
+    target = np.where(
+        np.isnan(_np(draws, "sat_target")), _np(draws, "pao2_target"), phys.hill_po2(_np(draws, "sat_target"), p50)
+    )
+    pao2 = np.where(np.isnan(target), pao2, np.minimum(target, pao2_alveolar - 3.0))
+    efficiency = _np(draws, "oxygenator_efficiency")
+    oxygenator = efficiency * (fio2_true * (pb - ph2o) - paco2)
+    pao2 = np.where(np.isnan(efficiency), pao2, oxygenator)
+    sat = phys.hill_saturation(pao2, p50)
+    content = phys.o2_content(pao2, hb_available, p50, t)
+
+    # 5. the pulse oximeter
+    reading = phys.pulse_oximeter_reading_pct(sat, cohb, methb)
+    low_sat_weight = np.clip((97.0 - 100.0 * sat) / 9.0, 0.0, 1.0)
+    spo2 = reading + _np(draws, "oximeter_bias") + _np(draws, "oximeter_extra") * low_sat_weight
+    over = _np(draws, "spo2_over_coox")
+    spo2 = np.where(np.isnan(over), spo2, 100.0 * phys.fractional_o2hb(sat, cohb, methb) + over)
+    spo2 = np.minimum(100.0, np.round(spo2))
+    spo2 = np.where(draws.get_column("spo2_recorded").to_numpy(), spo2, np.nan)
+
+    # 6. venous blood of the same patient
+    pvco2 = paco2 + _np(draws, "u_venous_pco2")
+    hco3_v = hco3 + 1.0
+    ph_v = phys.ph_from_hco3(pvco2, hco3_v)
+    p50_v = phys.p50_mmhg(p50_std, ph_v, pvco2, t)
+    pvo2 = np.maximum(phys.po2_from_content(np.maximum(content - av_diff, 0.05), hb_available, p50_v, t), 22.0)
+
+    # 7. warmed to 37 C in the analyser
+    a_po2, a_pco2, a_ph = phys.blood_at_temperature(pao2, paco2, ph, t, 37.0, hb_available, p50_std)
+    v_po2, v_pco2, v_ph = phys.blood_at_temperature(pvo2, pvco2, ph_v, t, 37.0, hb_available, p50_std)
+    a_hco3 = phys.hco3_from_ph(a_ph, a_pco2)
+    v_hco3 = phys.hco3_from_ph(v_ph, v_pco2)
+    venous = (draws.get_column("sample_type") == "venous").to_numpy()
+    computed = {
+        "barometric_pressure_mmhg": pb,
+        "fio2_true": fio2_true,
+        "fio2_charted": fio2_charted,
+        "pao2_alveolar_true": pao2_alveolar,
+        "pao2_true": pao2,
+        "ph_true": ph,
+        "sat_true": sat,
+        "spo2_pct": spo2,
+        "arterial_po2_37": a_po2,
+        "arterial_pco2_37": a_pco2,
+        "arterial_hco3_37": a_hco3,
+        "venous_po2_37": v_po2,
+        "venous_pco2_37": v_pco2,
+        "venous_hco3_37": v_hco3,
+        "blood_po2": np.where(venous, v_po2, a_po2),
+        "blood_pco2": np.where(venous, v_pco2, a_pco2),
+        "blood_hco3": np.where(venous, v_hco3, a_hco3),
+        "blood_hb": hb,
+        "blood_na": _np(draws, "na_true"),
+        "blood_k": _np(draws, "k_true"),
+        "blood_cl": _np(draws, "cl_true"),
+        "blood_glucose": _np(draws, "glucose_true"),
+        "blood_lactate": _np(draws, "lactate_true"),
+        "blood_cohb": cohb,
+        "blood_methb": methb,
+        # analytical errors (co-oximeter SD 0.5 points clipped at 1.5; the rest small, common practice)
+        "u_coox": np.clip(rng.normal(0, 0.5, n), -1.5, 1.5),
+        "u_hb": rng.normal(0, 0.1, n),
+        "u_na": rng.normal(0, 0.4, n),
+        "u_k": rng.normal(0, 0.05, n),
+        "u_cl": rng.normal(0, 0.5, n),
+        "u_glucose": rng.normal(0, 0.015, n),
+        "u_cohb": rng.normal(0, 0.2, n),
+        "u_methb": rng.normal(0, 0.1, n),
+    }
+    device_missing = pl.col("device_missing")
+    low_flow = pl.col("true_device").is_in(dev.LOW_FLOW_DEVICES)
+    return draws.with_columns(pl.Series(k, v) for k, v in computed.items()).with_columns(
+        # documentation gaps (a missing device or FiO2 is not a fault)
+        pl.when(device_missing).then(None).otherwise(pl.col("true_device")).alias("o2_device"),
+        pl.when(device_missing).then(None).otherwise(pl.col("flow")).alias("o2_flow_l_min"),
+        # a low-flow FiO2 is only an estimate from the device and flow: without the device it is not charted
+        pl.when(pl.col("fio2_missing") | (device_missing & low_flow))
+        .then(None)
+        .otherwise(pl.col("fio2_charted"))
+        .alias("fio2"),
+        pl.col("spo2_pct").fill_nan(None),
+    )
+
+
+def analyser_report(syringe: pl.DataFrame) -> pl.DataFrame:
+    """Step 7: the analyser's reported values for the blood in each syringe (the columns ``REPORTED``).
+
+    ``syringe`` needs the ``SYRINGE`` columns, ``p50_std``, ``sao2_is_calculated`` and the ``NOISE``
+    columns; the output has the same rows in the same order.
+    """
+    po2 = _np(syringe, "blood_po2")
+    pco2 = _np(syringe, "blood_pco2")
+    hco3 = _np(syringe, "blood_hco3")
+    calculated = syringe.get_column("sao2_is_calculated").to_numpy()
+    ph_exact = phys.ph_from_hco3(pco2, hco3)
+    rep_ph = np.round(ph_exact, 2)
+    rep_pco2 = np.round(pco2, 1)
+    rep_po2 = np.round(po2, 1)
+    rep_hco3 = np.round(phys.hco3_from_ph(rep_ph, rep_pco2), 1)
+    cohb = _np(syringe, "blood_cohb")
+    methb = _np(syringe, "blood_methb")
+    # the co-oximeter: oxyhaemoglobin as a fraction of total Hb, after warming to 37 C
+    s37 = phys.hill_saturation(po2, phys.p50_mmhg(_np(syringe, "p50_std"), ph_exact, pco2, 37.0))
+    measured = 100.0 * phys.fractional_o2hb(s37, cohb, methb) + _np(syringe, "u_coox")
+    # without a co-oximeter: a standard adult curve at the reported pH and PCO2 (functional)
+    standard = 100.0 * phys.hill_saturation(rep_po2, phys.p50_mmhg(phys.P50_STANDARD, rep_ph, rep_pco2, 37.0))
+    sao2 = np.round(np.minimum(100.0, np.where(calculated, standard, measured)), 1)
+    rep_cohb = np.where(calculated, np.nan, np.round(np.maximum(cohb + _np(syringe, "u_cohb"), 0.0), 1))
+    rep_methb = np.where(calculated, np.nan, np.round(np.maximum(methb + _np(syringe, "u_methb"), 0.0), 1))
+    reported = {
+        "ph": rep_ph,
+        "paco2_mmhg": rep_pco2,
+        "pao2_mmhg": rep_po2,
+        "hco3_mmol_l": rep_hco3,
+        "base_excess_mmol_l": np.round(phys.standard_base_excess(rep_ph, rep_hco3), 1),
+        "sao2_pct": sao2,
+        "hb_g_dl": np.round(_np(syringe, "blood_hb") + _np(syringe, "u_hb"), 1),
+        "na_mmol_l": np.round(_np(syringe, "blood_na") + _np(syringe, "u_na"), 0),
+        "k_mmol_l": np.round(_np(syringe, "blood_k") + _np(syringe, "u_k"), 1),
+        "cl_mmol_l": np.round(_np(syringe, "blood_cl") + _np(syringe, "u_cl"), 0),
+        "lactate_mmol_l": np.round(_np(syringe, "blood_lactate"), 1),
+        "glucose_mmol_l": np.round(_np(syringe, "blood_glucose") * (1.0 + _np(syringe, "u_glucose")), 1),
+        "cohb_pct": rep_cohb,
+        "methb_pct": rep_methb,
+    }
+    return pl.DataFrame(reported).with_columns(pl.col("cohb_pct", "methb_pct").fill_nan(None))
 
 
 def assemble_records(state: pl.DataFrame, reported: pl.DataFrame) -> pl.DataFrame:

@@ -1,32 +1,52 @@
-"""``generate()``: the demo data set as canonical records plus the ground truth of its faults."""
+"""``generate()``: the demo data set as canonical records plus the ground truth of its faults;
+``generate_demo()``: the same plus the truth file of its clinical look-alikes."""
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from datetime import date
 
 import numpy as np
 import polars as pl
 
 from synthetic_data.faults import DEFAULT_FAULT_RATES, check_fault_rates, inject_faults
-from synthetic_data.forward_model import (
-    CANONICAL_COLUMNS,
-    analyser_report,
-    assemble_records,
-    physiology_connection,
-    true_state,
-)
+from synthetic_data.forward_model import CANONICAL_COLUMNS, analyser_report, assemble_records, true_state
 from synthetic_data.hospital import (
     ANALYSER_SOURCE,
     SITE_ALTITUDE_M,
     SOURCES,
+    UNITS,
+    concat_draws,
     draw_patients,
     draw_samples,
+    to_frame,
     weather_by_day,
+)
+from synthetic_data.lookalikes import (
+    DEFAULT_LOOKALIKE_RATES,
+    LOOKALIKE_KINDS,
+    check_lookalike_rates,
+    draw_lookalikes,
+    lookalike_rows,
 )
 
 DEFAULT_START = date(2025, 1, 6)
 DEFAULT_DAYS = 60
 DEFAULT_SAO2_CALCULATED_SHARE = 0.10
+LOOKALIKE_SCHEMA: dict[str, pl.DataType] = {
+    "sample_id": pl.String(),
+    "lookalike_kind": pl.String(),
+    "detail": pl.String(),
+}
+
+
+@dataclass(frozen=True)
+class DemoData:
+    """One generated demo set: canonical records, the injected faults and the clinical look-alikes."""
+
+    records: pl.DataFrame
+    faults: pl.DataFrame
+    lookalikes: pl.DataFrame
 
 
 def source_of(sample_id: pl.Expr) -> pl.Expr:
@@ -45,8 +65,73 @@ def _label(draws: pl.DataFrame) -> pl.DataFrame:
     return draws.with_columns(
         source.alias("source"),
         pl.format("{}{}", prefix, number.cast(pl.String).str.zfill(8)).alias("sample_id"),
-        pl.len().over("patient_idx").alias("patient_samples"),
     )
+
+
+def generate_demo(
+    rows: int = 20_000,
+    seed: int = 7,
+    start_date: date = DEFAULT_START,
+    days: int = DEFAULT_DAYS,
+    fault_rates: dict[str, float] | None = None,
+    *,
+    sao2_calculated_share: float = DEFAULT_SAO2_CALCULATED_SHARE,
+    lookalike_rates: dict[str, float] | None = None,
+) -> DemoData:
+    """Invent ``rows`` blood gas records from ``days`` days starting ``start_date``.
+
+    The records have exactly the canonical columns of ``pipeline.schema.FIELDS`` in canonical
+    units (UTC times without a zone), one patient's samples next to each other. ``faults`` has one
+    ground-truth row per faulted sample (``faults.py``), ``lookalikes`` one row per look-alike
+    sample (``lookalikes.py``). The same arguments always give the same data. ``fault_rates`` and
+    ``lookalike_rates`` map types or kinds to shares of all samples (missing: 0; ``None``: the
+    defaults). Faults use their own random stream, so a set without faults has every sample
+    without a fault identical to the set with faults.
+    """
+    if rows < 2:
+        raise ValueError("rows must be at least 2")
+    if days < 1:
+        raise ValueError("days must be at least 1")
+    if not 0.0 <= sao2_calculated_share <= 1.0:
+        raise ValueError("sao2_calculated_share must be between 0 and 1")
+    rates = check_fault_rates(DEFAULT_FAULT_RATES if fault_rates is None else fault_rates)
+    kinds = check_lookalike_rates(DEFAULT_LOOKALIKE_RATES if lookalike_rates is None else lookalike_rates)
+    hospital_rng, weather_rng, fault_rng, lookalike_rng, analyser_rng, id_rng = (
+        np.random.default_rng(s) for s in np.random.SeedSequence(seed).spawn(6)
+    )
+
+    per_kind = lookalike_rows(rows, kinds)
+    ordinary_rows = rows - sum(per_kind.values())
+    shares = np.array([u.sample_share for u in UNITS])
+    per_unit = hospital_rng.multinomial(ordinary_rows, shares / shares.sum())
+    patients, sample_patient = draw_patients(hospital_rng, UNITS, per_unit, start_date, days)
+    ordinary = draw_samples(hospital_rng, patients, sample_patient, days, sao2_calculated_share)
+    del patients, sample_patient
+    special = draw_lookalikes(lookalike_rng, per_kind, start_date, days, sao2_calculated_share)
+    draws = concat_draws([ordinary, *special])
+    del ordinary, special
+    n_patients = int(draws["patient_idx"].max()) + 1
+    patient_ids = id_rng.choice(9_000_000, size=n_patients, replace=False) + 1_000_000
+    frame = to_frame(draws, start_date, patient_ids)
+    del draws
+    frame = _label(frame).join(weather_by_day(weather_rng, days), on="day", how="left", maintain_order="left")
+
+    state = true_state(frame, SITE_ALTITUDE_M, analyser_rng)
+    del frame
+    records = assemble_records(state, analyser_report(state))
+    records, truth = inject_faults(fault_rng, state, records, rates)
+    lookalikes = (
+        state.filter(pl.col("lookalike_idx") >= 0)
+        .select(
+            "sample_id",
+            pl.col("lookalike_idx")
+            .replace_strict(dict(enumerate(LOOKALIKE_KINDS)), return_dtype=pl.String)
+            .alias("lookalike_kind"),
+            pl.col("lookalike_detail").alias("detail"),
+        )
+        .cast(LOOKALIKE_SCHEMA)
+    )
+    return DemoData(records.select(CANONICAL_COLUMNS), truth, lookalikes)
 
 
 def generate(
@@ -57,37 +142,16 @@ def generate(
     fault_rates: dict[str, float] | None = None,
     *,
     sao2_calculated_share: float = DEFAULT_SAO2_CALCULATED_SHARE,
+    lookalike_rates: dict[str, float] | None = None,
 ) -> tuple[pl.DataFrame, pl.DataFrame]:
-    """Invent ``rows`` blood gas records from ``days`` days starting ``start_date``.
-
-    Returns ``(canonical, ground_truth)``: the records with exactly the canonical columns of
-    ``pipeline.schema.FIELDS`` in canonical units (UTC times without a zone), one patient's
-    samples next to each other, and one ground-truth row per faulted sample (``faults.py``). The same
-    arguments always give the same data. ``fault_rates`` maps fault types to shares of all
-    samples (missing types: 0; ``None``: ``DEFAULT_FAULT_RATES``).
-    """
-    if rows < 2:
-        raise ValueError("rows must be at least 2")
-    if days < 1:
-        raise ValueError("days must be at least 1")
-    if not 0.0 <= sao2_calculated_share <= 1.0:
-        raise ValueError("sao2_calculated_share must be between 0 and 1")
-    rates = check_fault_rates(DEFAULT_FAULT_RATES if fault_rates is None else fault_rates)
-    hospital_rng, weather_rng, fault_rng = (
-        np.random.default_rng(s) for s in np.random.SeedSequence(seed).spawn(3)
+    """``(canonical records, fault ground truth)`` of ``generate_demo`` (see there)."""
+    demo = generate_demo(
+        rows,
+        seed,
+        start_date,
+        days,
+        fault_rates,
+        sao2_calculated_share=sao2_calculated_share,
+        lookalike_rates=lookalike_rates,
     )
-
-    patients, sample_patient = draw_patients(hospital_rng, rows, start_date, days)
-    draws = draw_samples(hospital_rng, patients, sample_patient, start_date, days, sao2_calculated_share)
-    del patients, sample_patient
-    draws = _label(draws).join(weather_by_day(weather_rng, days), on="day", how="left", maintain_order="left")
-
-    con = physiology_connection()
-    try:
-        state = true_state(con, draws, SITE_ALTITUDE_M)
-        del draws
-        records = assemble_records(state, analyser_report(con, state))
-        records, truth = inject_faults(con, fault_rng, state, records, rates)
-    finally:
-        con.close()
-    return records.select(CANONICAL_COLUMNS), truth
+    return demo.records, demo.faults

@@ -4,30 +4,44 @@ Everything here is made up for demonstration: unit names, analyser names, patien
 identifiers and every number describing the patient mix. Nothing is drawn from real
 records.
 
-This module only draws random inputs (who was sampled, where, when, on which device, with
-which random physiology offsets). It does not compute any physiological formula: the
-forward model (``forward_model.py``) does that in SQL with the shared macros.
+This module draws the random inputs of the forward model: who was sampled, where, when, on
+which device, and the patient's true state at body temperature (PaCO2, bicarbonate, lactate,
+Hb, electrolytes, glucose, carboxy- and methaemoglobin, the P50 of their blood, the shunt and
+gradient of their lungs, the error of their pulse oximeter). The forward model
+(``forward_model.py``) turns that into what the analyser reports, with the physics of
+``physics.py`` and the device table of ``devices.py``.
 
-All draws are vectorised with one ``numpy.random.Generator``; the only Python loops run
-over units, devices or export sources (a handful each), never over records.
+Draws are returned as a ``Draws`` mapping (column name -> numpy array, one entry per sample),
+so that the look-alike patients (``lookalikes.py``) can be drawn with the same machinery and
+then have their own columns overwritten. All draws are vectorised with one
+``numpy.random.Generator``; the only Python loops run over units, devices or export sources
+(a handful each), never over records.
 """
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import date, datetime
 
 import numpy as np
+import numpy.typing as npt
 import polars as pl
+
+from synthetic_data import devices as dev
+from synthetic_data.physics import P50_SD_BETWEEN_PATIENTS, P50_STANDARD
+
+Draws = dict[str, np.ndarray]
+"""Column name -> one numpy array per sample (all the same length)."""
 
 SITE_NAME = "Saltmarsh Valley Hospital"
 SITE_ALTITUDE_M = 35.0
-"""Invented altitude of the hospital; the station pressure follows from it (SQL macro)."""
+"""Invented altitude of the hospital; the station pressure follows from it (``physics.standard_pressure_mmhg``)."""
 WEATHER_SD_MMHG = 4.0
 """Day-to-day spread of the station pressure around its altitude value (invented)."""
 
 SOURCES: dict[str, str] = {
-    "eu_style": "POC",  # critical-care point-of-care analysers, European-style CSV
+    "eu_style": "POC",  # critical-care point-of-care co-oximeters, European-style CSV
     "us_style": "LAB",  # main laboratory analysers, US-style CSV
     "parquet": "WH",  # ward satellite analysers, data-warehouse Parquet feed
 }
@@ -45,25 +59,17 @@ ANALYSER_SOURCE: dict[str, str] = {
     "POC-HERON-3": "eu_style",
     "POC-KESTREL-1": "eu_style",
     "POC-KESTREL-2": "eu_style",
+    "POC-AVOCET-1": "eu_style",
+    "POC-DUNLIN-1": "eu_style",
     "LAB-GAS-1": "us_style",
     "LAB-GAS-2": "us_style",
     "SAT-CURLEW-1": "parquet",
     "SAT-SANDPIPER-1": "parquet",
 }
+ANALYSERS: tuple[str, ...] = tuple(ANALYSER_SOURCE)
 
-LOW_FLOW_DEVICES = ("room_air", "nasal_cannula", "simple_mask", "reservoir_mask")
-"""Devices whose FiO2 follows from the flow (device table); the others deliver a set FiO2."""
-SET_FIO2_DEVICES = (
-    "venturi_mask",
-    "high_flow_nasal",
-    "cpap",
-    "niv",
-    "invasive_ventilation",
-    "tracheostomy_mask",
-)
-DEVICES = LOW_FLOW_DEVICES + SET_FIO2_DEVICES
-VENTURI_SETTINGS = (0.24, 0.28, 0.31, 0.35, 0.40, 0.50, 0.60)
-"""Labelled Venturi settings (domain-methods.md §9)."""
+SAMPLE_TYPES = ("arterial", "venous", "unknown")
+"""Sample-type labels the generator writes (index = ``sample_type_idx``)."""
 
 
 @dataclass(frozen=True)
@@ -89,6 +95,7 @@ class Unit:
     mild_devices: dict[str, float]
     severe_devices: dict[str, float]
     ventilated_paco2: bool = False
+    age_range: tuple[float, float] = (18.02, 98.0)
 
 
 UNITS: tuple[Unit, ...] = (
@@ -232,8 +239,77 @@ UNITS: tuple[Unit, ...] = (
         },
     ),
 )
+"""The units whose patients make up the ordinary (non-look-alike) records, by ``sample_share``."""
 
-ANALYSERS: tuple[str, ...] = tuple(ANALYSER_SOURCE)
+CARDIAC_UNIT = Unit(
+    name="Avocet Cardiac Theatre and Recovery",
+    kind="cardiac_surgery",
+    sample_share=0.0,
+    samples_per_patient=7.0,
+    episode_days=(0.3, 0.6),
+    age_mean=66,
+    age_sd=10,
+    hypercapnic_share=0.05,
+    severity_beta=(1.5, 6.0),
+    hb_mean=13.2,
+    lactate_median=1.4,
+    venous_share=0.0,
+    fio2_missing_share=0.0,
+    device_missing_share=0.0,
+    turnaround_median_min=3.0,
+    analysers={"POC-AVOCET-1": 1.0},
+    mild_devices={"invasive_ventilation": 1.0},
+    severe_devices={"invasive_ventilation": 1.0},
+    ventilated_paco2=True,
+)
+NEONATAL_UNIT = Unit(
+    name="Dunlin Neonatal Unit",
+    kind="neonatal",
+    sample_share=0.0,
+    samples_per_patient=5.0,
+    episode_days=(1.0, 14.0),
+    age_mean=0.02,
+    age_sd=0.015,
+    hypercapnic_share=0.0,
+    severity_beta=(1.5, 4.0),
+    hb_mean=16.5,
+    lactate_median=1.5,
+    venous_share=0.0,
+    fio2_missing_share=0.0,
+    device_missing_share=0.01,
+    turnaround_median_min=3.0,
+    analysers={"POC-DUNLIN-1": 1.0},
+    mild_devices={"room_air": 0.40, "high_flow_nasal": 0.30, "cpap": 0.30},
+    severe_devices={"cpap": 0.40, "invasive_ventilation": 0.40, "high_flow_nasal": 0.20},
+    age_range=(0.0, 20.0 / 365.25),
+)
+PAEDIATRIC_UNIT = Unit(
+    name="Puffin Paediatric Ward",
+    kind="paediatric_ward",
+    sample_share=0.0,
+    samples_per_patient=2.0,
+    episode_days=(1.0, 6.0),
+    age_mean=7.0,
+    age_sd=4.0,
+    hypercapnic_share=0.0,
+    severity_beta=(1.2, 6.0),
+    hb_mean=12.2,
+    lactate_median=1.1,
+    venous_share=0.0,
+    fio2_missing_share=0.05,
+    device_missing_share=0.02,
+    turnaround_median_min=11.0,
+    analysers={"LAB-GAS-1": 0.5, "LAB-GAS-2": 0.5},
+    mild_devices={"room_air": 0.70, "nasal_cannula": 0.20, "simple_mask": 0.10},
+    severe_devices={"nasal_cannula": 0.40, "high_flow_nasal": 0.35, "simple_mask": 0.25},
+    age_range=(1.02, 15.9),
+)
+ALL_UNITS: tuple[Unit, ...] = (*UNITS, CARDIAC_UNIT, NEONATAL_UNIT, PAEDIATRIC_UNIT)
+"""Every unit of the hospital; ``unit_idx`` in the draws indexes this tuple."""
+
+
+def unit_index(unit: Unit) -> int:
+    return ALL_UNITS.index(unit)
 
 
 def _categorical(rng: np.random.Generator, groups: np.ndarray, tables: list[np.ndarray]) -> np.ndarray:
@@ -245,55 +321,77 @@ def _categorical(rng: np.random.Generator, groups: np.ndarray, tables: list[np.n
     out = np.zeros(groups.shape[0], dtype=np.int64)
     for g, probs in enumerate(tables):
         idx = np.flatnonzero(groups == g)
-        if idx.size:
+        if idx.size and probs.sum() > 0:
             cum = np.cumsum(probs) / probs.sum()
             out[idx] = np.minimum(np.searchsorted(cum, u[idx], side="right"), probs.size - 1)
     return out
 
 
 def _device_table(mix: dict[str, float]) -> np.ndarray:
-    unknown = set(mix) - set(DEVICES)
+    unknown = set(mix) - set(dev.DEVICES)
     if unknown:
         raise ValueError(f"unknown devices in a unit mix: {sorted(unknown)}")
-    return np.array([mix.get(d, 0.0) for d in DEVICES], dtype=np.float64)
+    return np.array([mix.get(d, 0.0) for d in dev.DEVICES], dtype=np.float64)
+
+
+def _split_counts(
+    rng: np.random.Generator, n_rows: int, mean: float, counts_range: tuple[int, int] | None
+) -> np.ndarray:
+    """Samples per patient adding up to ``n_rows``: geometric with the given mean, or uniform in
+    ``counts_range`` (a short last patient is merged into the one before)."""
+    if n_rows <= 0:
+        return np.zeros(0, dtype=np.int64)
+    if counts_range is None:
+        p = 1.0 / mean
+        counts = rng.geometric(p, size=int(n_rows * p * 1.3) + 16)
+        while counts.sum() < n_rows:
+            counts = np.concatenate([counts, rng.geometric(p, size=int(n_rows * p * 0.5) + 16)])
+    else:
+        lo, hi = counts_range
+        counts = rng.integers(lo, hi + 1, size=n_rows // lo + 2)
+    cum = np.cumsum(counts)
+    last = int(np.searchsorted(cum, n_rows))
+    counts = counts[: last + 1].copy()
+    counts[-1] -= int(cum[last] - n_rows)
+    if counts_range is not None and counts.size > 1 and counts[-1] < counts_range[0]:
+        counts[-2] += counts[-1]
+        counts = counts[:-1]
+    return counts.astype(np.int64)
 
 
 def draw_patients(
-    rng: np.random.Generator, rows: int, start: date, days: int
-) -> tuple[pl.DataFrame, np.ndarray]:
-    """Invent the patients and decide how many samples each one has.
+    rng: np.random.Generator,
+    units: Sequence[Unit],
+    rows_per_unit: Sequence[int],
+    start: date,
+    days: int,
+    counts_range: tuple[int, int] | None = None,
+) -> tuple[Draws, np.ndarray]:
+    """Invent the patients of the given units and decide how many samples each one has.
 
-    Returns the patient frame (one row per patient) and, per sample, the index of its
-    patient (length ``rows``; samples of one patient are contiguous).
+    Returns the patient draws (one entry per patient) and, per sample, the index of its
+    patient (length ``sum(rows_per_unit)``; samples of one patient are contiguous).
     """
-    shares = np.array([u.sample_share for u in UNITS])
-    per_unit = rng.multinomial(rows, shares / shares.sum())
     counts_parts: list[np.ndarray] = []
     unit_parts: list[np.ndarray] = []
-    for ui, (unit, n_unit) in enumerate(zip(UNITS, per_unit, strict=True)):
-        if n_unit == 0:
-            continue
-        p = 1.0 / unit.samples_per_patient
-        counts = rng.geometric(p, size=int(n_unit * p * 1.3) + 16)
-        while counts.sum() < n_unit:
-            counts = np.concatenate([counts, rng.geometric(p, size=int(n_unit * p * 0.5) + 16)])
-        cum = np.cumsum(counts)
-        last = int(np.searchsorted(cum, n_unit))
-        counts = counts[: last + 1].copy()
-        counts[-1] -= int(cum[last] - n_unit)
+    for unit, n_unit in zip(units, rows_per_unit, strict=True):
+        counts = _split_counts(rng, int(n_unit), unit.samples_per_patient, counts_range)
         counts_parts.append(counts)
-        unit_parts.append(np.full(counts.size, ui, dtype=np.int64))
-    counts = np.concatenate(counts_parts)
-    unit_idx = np.concatenate(unit_parts)
+        unit_parts.append(np.full(counts.size, unit_index(unit), dtype=np.int64))
+    counts = np.concatenate(counts_parts) if counts_parts else np.zeros(0, dtype=np.int64)
+    unit_idx = np.concatenate(unit_parts) if unit_parts else np.zeros(0, dtype=np.int64)
     n_pat = counts.size
 
     def per_unit_value(attr: str) -> np.ndarray:
-        return np.array([getattr(u, attr) for u in UNITS], dtype=np.float64)[unit_idx]
+        return np.array([getattr(u, attr) for u in ALL_UNITS], dtype=np.float64)[unit_idx]
 
-    age = np.clip(rng.normal(per_unit_value("age_mean"), per_unit_value("age_sd")), 18, 98)
+    age_lo = np.array([u.age_range[0] for u in ALL_UNITS])[unit_idx]
+    age_hi = np.array([u.age_range[1] for u in ALL_UNITS])[unit_idx]
+    age = np.clip(rng.normal(per_unit_value("age_mean"), per_unit_value("age_sd")), age_lo, age_hi)
+    adult = age >= 18.0
     hypercapnic = rng.random(n_pat) < per_unit_value("hypercapnic_share")
-    beta_a = np.array([u.severity_beta[0] for u in UNITS])[unit_idx]
-    beta_b = np.array([u.severity_beta[1] for u in UNITS])[unit_idx]
+    beta_a = np.array([u.severity_beta[0] for u in ALL_UNITS])[unit_idx]
+    beta_b = np.array([u.severity_beta[1] for u in ALL_UNITS])[unit_idx]
     severity = np.clip(rng.beta(beta_a, beta_b) + 0.08 * hypercapnic, 0.0, 0.95)
     # A share of at-risk patients actually retain CO2; their bicarbonate is compensated.
     retainer = hypercapnic & (rng.random(n_pat) < 0.7)
@@ -301,65 +399,90 @@ def draw_patients(
         retainer, np.clip(rng.normal(54, 7, n_pat), 45, 75), np.clip(rng.normal(39, 3, n_pat), 32, 46)
     )
     hb = np.clip(rng.normal(per_unit_value("hb_mean"), 1.7), 6.5, 18.0)
-    na = np.clip(rng.normal(139.0, 3.5, n_pat), 124, 154)
-    k = np.clip(rng.normal(4.1, 0.45, n_pat), 2.9, 6.0)
+    na = np.clip(rng.normal(139.0, 3.0, n_pat), 128, 150)
+    k = np.clip(rng.normal(4.1, 0.4, n_pat), 3.0, 5.8)
     anion_gap = np.clip(rng.normal(8.0, 2.0, n_pat), 3.0, 14.0)
+    # the patient's own metabolic bicarbonate offset (chloride mirrors it; it stays within a patient)
+    hco3_offset = np.clip(rng.normal(0.0, 1.4, n_pat), -4.0, 4.0)
+    # glucose: a fifth of adults diabetic (invented mix); typical 4-12 mmol/L
+    diabetic = adult & (rng.random(n_pat) < 0.2)
+    glucose = np.where(diabetic, rng.lognormal(np.log(9.0), 0.25, n_pat), rng.lognormal(np.log(6.0), 0.15, n_pat))
+    glucose = np.clip(glucose, 3.8, 20.0)
+    # carboxyhaemoglobin 0.5-2 %, smokers 3-8 %; methaemoglobin 0.3-1.2 % (from memory)
+    smoker = adult & (rng.random(n_pat) < 0.15)
+    cohb = np.where(smoker, rng.uniform(3.0, 8.0, n_pat), rng.uniform(0.5, 2.0, n_pat))
+    methb = rng.uniform(0.3, 1.2, n_pat)
+    # standard P50 of each patient's blood (2,3-DPG, anaemia, transfusion; SD from memory)
+    p50 = np.clip(rng.normal(P50_STANDARD, P50_SD_BETWEEN_PATIENTS, n_pat), 22.5, 31.0)
+    # pulse oximeter error: most read about 0.5 points high; a fifth of patients (darker skin
+    # pigmentation) over-read by a further 2-4 points at low saturations - occult hypoxaemia
+    # (Sjoding MW et al. 2020, N Engl J Med 383:2477; from memory)
+    oximeter_base = np.clip(rng.normal(0.5, 0.6, n_pat), -1.0, 2.0)
+    pigmented = rng.random(n_pat) < 0.2
+    oximeter_extra = np.where(pigmented, rng.uniform(2.0, 4.0, n_pat), 0.0)
 
-    lo = np.array([u.episode_days[0] for u in UNITS])[unit_idx]
-    hi = np.array([u.episode_days[1] for u in UNITS])[unit_idx]
+    lo = np.array([u.episode_days[0] for u in ALL_UNITS])[unit_idx]
+    hi = np.array([u.episode_days[1] for u in ALL_UNITS])[unit_idx]
     episode = np.minimum(lo + (hi - lo) * rng.random(n_pat) ** 1.5, float(days))
     episode_start = rng.random(n_pat) * np.maximum(days - episode, 0.0)
-
-    # Birth date: the age at the episode start, minus a random part of a year.
-    start_ordinal = start.toordinal()
+    # birth date: the (continuous) age before the episode start
     birth_ordinal = (
-        start_ordinal
-        + episode_start.astype(np.int64)
-        - np.floor(age * 365.25).astype(np.int64)
-        - rng.integers(0, 365, n_pat)
+        start.toordinal() + np.floor(episode_start).astype(np.int64) - np.round(age * 365.25).astype(np.int64)
     )
-    ids = rng.choice(9_000_000, size=n_pat, replace=False) + 1_000_000
-
-    patients = pl.DataFrame(
-        {
-            "patient_id": ids,
-            "unit_idx": unit_idx,
-            "birth_ordinal": birth_ordinal,
-            "hypercapnic_risk": hypercapnic,
-            "severity": severity,
-            "chronic_paco2": chronic_paco2,
-            "baseline_hb": hb,
-            "baseline_na": na,
-            "baseline_k": k,
-            "anion_gap": anion_gap,
-            "episode_start": episode_start,
-            "episode_days": episode,
-            "n_samples": counts,
-        }
-    ).with_columns(pl.format("SVH{}", pl.col("patient_id")).alias("patient_id"))
-    sample_patient = np.repeat(np.arange(n_pat, dtype=np.int64), counts)
-    return patients, sample_patient
+    patients: Draws = {
+        "unit_idx": unit_idx,
+        "age": age,
+        "birth_ordinal": birth_ordinal,
+        "hypercapnic_risk": hypercapnic,
+        "severity": severity,
+        "chronic_paco2": chronic_paco2,
+        "baseline_hb": hb,
+        "baseline_na": na,
+        "baseline_k": k,
+        "anion_gap": anion_gap,
+        "hco3_offset": hco3_offset,
+        "glucose": glucose,
+        "cohb": cohb,
+        "methb": methb,
+        "p50_std": p50,
+        "oximeter_base": oximeter_base,
+        "oximeter_extra": oximeter_extra,
+        "pigmented": pigmented,
+        "episode_start": episode_start,
+        "episode_days": episode,
+        "n_samples": counts,
+    }
+    return patients, np.repeat(np.arange(n_pat, dtype=np.int64), counts)
 
 
 def draw_samples(
     rng: np.random.Generator,
-    patients: pl.DataFrame,
+    patients: Draws,
     sample_patient: np.ndarray,
-    start: date,
     days: int,
     sao2_calculated_share: float,
-) -> pl.DataFrame:
-    """Per sample: unit, analyser, times, device, flow, set FiO2 and the random inputs of the
-    forward model. Column meanings are listed in ``forward_model.py``."""
+) -> Draws:
+    """Per sample: unit, analyser, times, device, flow, set FiO2 and the patient's true state.
+
+    The true state is at the patient's temperature: ``paco2_true``, ``hco3_true``, ``lactate_true``,
+    ``hb_true``, ``na_true``, ``cl_true``, ``k_true``, ``glucose_true``, ``cohb_true``, ``methb_true`` (percent),
+    and the lungs: respiratory exchange ratio ``rq`` (0.75-0.95), ``shunt`` (venous admixture, a
+    fraction of cardiac output), ``vq_factor`` (times 1 + 0.12 x age: mmHg lost between alveolus and end-capillary
+    blood), ``av_diff`` (arterial-venous oxygen content difference, mL/dL). ``pao2_target``,
+    ``sat_target``, ``oxygenator_efficiency`` and ``spo2_over_coox`` are NaN here (look-alikes set them).
+    """
     n = sample_patient.size
-    pat = patients[sample_patient]
-    unit_idx = pat["unit_idx"].to_numpy()
+
+    def pat(name: str) -> np.ndarray:
+        return patients[name][sample_patient]
+
+    unit_idx = pat("unit_idx")
 
     def per_unit_value(attr: str) -> np.ndarray:
-        return np.array([getattr(u, attr) for u in UNITS], dtype=np.float64)[unit_idx]
+        return np.array([getattr(u, attr) for u in ALL_UNITS], dtype=np.float64)[unit_idx]
 
     # --- when: collection day within the episode, time of day with a morning-round bump
-    day_offset = pat["episode_start"].to_numpy() + rng.random(n) * pat["episode_days"].to_numpy()
+    day_offset = pat("episode_start") + rng.random(n) * pat("episode_days")
     day = np.minimum(np.floor(day_offset), days - 1)
     minute_of_day = np.where(
         rng.random(n) < 0.3,
@@ -367,46 +490,45 @@ def draw_samples(
         rng.random(n) * 1440,
     )
     collected_min = (day * 1440 + np.floor(minute_of_day)).astype(np.int64)
-    turnaround = np.clip(
-        np.round(rng.lognormal(np.log(per_unit_value("turnaround_median_min")), 0.45, n)), 2, 28
-    )
+    turnaround = np.clip(np.round(rng.lognormal(np.log(per_unit_value("turnaround_median_min")), 0.45, n)), 2, 28)
 
     # --- where: analyser from the unit's analyser mix
-    analyser_tables = [np.array([u.analysers.get(a, 0.0) for a in ANALYSERS]) for u in UNITS]
+    analyser_tables = [np.array([u.analysers.get(a, 0.0) for a in ANALYSERS]) for u in ALL_UNITS]
     analyser_idx = _categorical(rng, unit_idx, analyser_tables)
 
     # --- how ill right now, and which device
-    severity_now = np.clip(pat["severity"].to_numpy() + rng.normal(0, 0.08, n), 0.0, 0.95)
+    severity_now = np.clip(pat("severity") + rng.normal(0, 0.08, n), 0.0, 0.95)
     severe = rng.random(n) < severity_now
     groups = unit_idx * 2 + severe
-    tables = [t for u in UNITS for t in (_device_table(u.mild_devices), _device_table(u.severe_devices))]
+    tables = [t for u in ALL_UNITS for t in (_device_table(u.mild_devices), _device_table(u.severe_devices))]
     device_idx = _categorical(rng, groups, tables)
 
-    # --- flow and the set FiO2 (for set-FiO2 devices); the table FiO2 for low-flow devices is SQL's job
+    # --- flow and the set FiO2
     flow = np.full(n, np.nan)
     fio2_set = np.full(n, np.nan)
-    is_dev = {d: device_idx == i for i, d in enumerate(DEVICES)}
-    m = is_dev["room_air"]
-    flow[m] = 0.0
+    is_dev = {d: device_idx == i for i, d in enumerate(dev.DEVICES)}
+    flow[is_dev["room_air"]] = 0.0
     m = is_dev["nasal_cannula"]
     flow[m] = rng.choice([1.0, 2.0, 2.0, 3.0, 3.0, 4.0, 4.0, 5.0, 6.0], size=int(m.sum()))
     m = is_dev["simple_mask"]
     flow[m] = rng.integers(5, 11, size=int(m.sum())).astype(np.float64)
     m = is_dev["reservoir_mask"]
     flow[m] = rng.integers(10, 16, size=int(m.sum())).astype(np.float64)
-    # Venturi and tracheostomy (humidified Venturi) masks: a labelled setting; the flow printed for it
-    # comes from the device table in SQL, a fifth of them run at 1.5 times that flow.
+    # Venturi and tracheostomy (humidified Venturi) masks: a labelled setting at the flow printed for it,
+    # a fifth of them at 1.5 times that flow
+    hypercapnic = pat("hypercapnic_risk")
     m = is_dev["venturi_mask"]
-    hypercapnic = pat["hypercapnic_risk"].to_numpy()
     setting = np.where(
         hypercapnic[m],
         rng.choice([0, 1, 1, 1, 2], size=int(m.sum())),
         rng.choice([1, 2, 3, 4, 5, 6], size=int(m.sum())),
     )
-    fio2_set[m] = np.array(VENTURI_SETTINGS)[setting]
+    fio2_set[m] = np.array(dev.VENTURI_SETTINGS)[setting]
     m = is_dev["tracheostomy_mask"]
     fio2_set[m] = rng.choice([0.28, 0.35, 0.40], size=int(m.sum()))
     flow_factor = np.where(rng.random(n) < 0.2, 1.5, 1.0)
+    m = is_dev["venturi_mask"] | is_dev["tracheostomy_mask"]
+    flow[m] = dev.venturi_flow(fio2_set[m]) * flow_factor[m]
     m = is_dev["high_flow_nasal"]
     flow[m] = rng.choice([30.0, 40.0, 50.0, 60.0], size=int(m.sum()))
     for d, lo, hi in (
@@ -426,116 +548,146 @@ def draw_samples(
     non_invasive = is_dev["cpap"] | is_dev["niv"]
     peep[non_invasive] = rng.choice([5.0, 6.0, 7.0, 8.0, 10.0], size=int(non_invasive.sum()))
     mean_airway = np.full(n, np.nan)
-    mean_airway[ventilated] = np.round(
-        peep[ventilated] + np.clip(rng.normal(6, 2, int(ventilated.sum())), 2, 14)
-    )
+    mean_airway[ventilated] = np.round(peep[ventilated] + np.clip(rng.normal(6, 2, int(ventilated.sum())), 2, 14))
 
     # --- documentation gaps (clean records may lack FiO2 or device; they are not faults)
-    charted_from_table = np.isin(device_idx, [DEVICES.index(d) for d in LOW_FLOW_DEVICES[1:]])
-    fio2_missing = charted_from_table & (rng.random(n) < per_unit_value("fio2_missing_share"))
+    low_flow_not_air = np.isin(device_idx, [dev.NASAL_CANNULA, dev.SIMPLE_MASK, dev.RESERVOIR_MASK])
+    fio2_missing = low_flow_not_air & (rng.random(n) < per_unit_value("fio2_missing_share"))
     device_missing = rng.random(n) < per_unit_value("device_missing_share")
 
     # --- labelled specimen type (correctly labelled venous samples are clean)
-    labelled_venous = rng.random(n) < per_unit_value("venous_share")
-    sample_type_idx = labelled_venous.astype(np.int64)  # 0 arterial, 1 venous
+    sample_type_idx = (rng.random(n) < per_unit_value("venous_share")).astype(np.int64)  # 0 arterial, 1 venous
     sample_type_idx[rng.random(n) < 0.003] = 2  # label missing: unknown
 
-    # --- acid-base inputs: PaCO2 around the patient's chronic value, bicarbonate compensated
-    chronic = pat["chronic_paco2"].to_numpy()
+    # --- acid-base at body temperature: PaCO2 around the patient's chronic value, bicarbonate compensated
+    chronic = pat("chronic_paco2")
     acute = rng.normal(0, 4.5, n) + np.where(rng.random(n) < 0.08, rng.normal(-8, 3, n), 0.0)
     acute = acute + np.where(rng.random(n) < 0.05 + 0.1 * severity_now, rng.normal(12, 6, n), 0.0)
     paco2 = chronic + acute
     # ventilated patients are held nearer a normal PaCO2
     paco2 = np.where(ventilated, 0.5 * paco2 + 0.5 * rng.normal(41, 4, n), paco2)
     paco2 = np.clip(paco2, 24, 92)
-    lactate = np.clip(
-        rng.lognormal(np.log(per_unit_value("lactate_median")) + 0.7 * severity_now**2, 0.45), 0.4, 14
-    )
-    hco3 = 24.5 + 0.35 * (chronic - 40.0) - 0.7 * (lactate - 1.0) + rng.normal(0, 1.6, n)
-    hco3 = np.clip(hco3, 12.0, 40.0)
+    lactate = np.clip(rng.lognormal(np.log(per_unit_value("lactate_median")) + 0.7 * severity_now**2, 0.45), 0.4, 14)
+    metabolic_hco3 = 24.5 + 0.35 * (chronic - 40.0) + pat("hco3_offset")
+    hco3 = np.clip(metabolic_hco3 - 0.7 * (lactate - 1.0) + rng.normal(0, 0.8, n), 12.0, 40.0)
+    na = pat("baseline_na") + rng.normal(0, 0.7, n)
+    # chloride: the patient's own (sodium minus metabolic bicarbonate minus the anion gap); lactate and
+    # acute changes of bicarbonate move the anion gap, not chloride
+    cl = na - metabolic_hco3 - pat("anion_gap") + rng.normal(0, 0.7, n)
+    temperature = np.clip(np.round(rng.normal(37.0 + 0.4 * severity_now, 0.45 + 0.3 * severity_now), 1), 35.0, 40.5)
 
-    temperature = np.clip(
-        np.round(rng.normal(37.0 + 0.4 * severity_now, 0.45 + 0.3 * severity_now), 1), 35.0, 40.5
-    )
+    # --- lungs: venous admixture grows with illness; a small V/Q gradient grows with age
+    shunt = rng.uniform(0.005, 0.035, n) + np.minimum(0.45, severity_now**1.5 * rng.uniform(0.25, 0.6, n))
+    return {
+        "patient_idx": sample_patient.astype(np.int64),
+        "unit_idx": unit_idx,
+        "analyser_idx": analyser_idx,
+        "collected_min": collected_min,
+        "turnaround_min": turnaround.astype(np.int64),
+        "birth_ordinal": pat("birth_ordinal"),
+        "age_at_start": pat("age"),
+        "sample_type_idx": sample_type_idx,
+        "device_idx": device_idx,
+        "device_missing": device_missing,
+        "flow": flow,
+        "fio2_set": fio2_set,
+        "fio2_missing": fio2_missing,
+        "peep_cmh2o": peep,
+        "mean_airway_pressure_cmh2o": mean_airway,
+        "hypercapnic_risk": hypercapnic,
+        "sao2_is_calculated": rng.random(n) < sao2_calculated_share,
+        "spo2_recorded": np.ones(n, dtype=bool),
+        "temperature_c": temperature,
+        "paco2_true": paco2,
+        "hco3_true": hco3,
+        "lactate_true": lactate,
+        "hb_true": pat("baseline_hb") + rng.normal(0, 0.22, n),
+        "na_true": na,
+        "cl_true": cl,
+        "k_true": pat("baseline_k") + rng.normal(0, 0.15, n),
+        "anion_gap": pat("anion_gap"),
+        "glucose_true": pat("glucose") * np.exp(rng.normal(0, 0.12, n)),
+        "cohb_true": np.maximum(pat("cohb") + rng.normal(0, 0.15, n), 0.2),
+        "methb_true": np.maximum(pat("methb") + rng.normal(0, 0.08, n), 0.1),
+        "p50_std": pat("p50_std"),
+        "rq": rng.uniform(0.75, 0.95, n),
+        "shunt": shunt,
+        "vq_factor": rng.uniform(0.5, 1.2, n),
+        "av_diff": rng.uniform(3.5, 5.5, n),
+        "severity_now": severity_now,
+        "pao2_target": np.full(n, np.nan),
+        "sat_target": np.full(n, np.nan),
+        "oxygenator_efficiency": np.full(n, np.nan),
+        "oximeter_bias": pat("oximeter_base") + np.clip(rng.normal(0, 1.2, n), -3.5, 3.5),
+        "oximeter_extra": pat("oximeter_extra"),
+        "spo2_over_coox": np.full(n, np.nan),
+        "u_breathing": rng.normal(0, 1, n),
+        "u_venturi": rng.random(n),
+        "u_venous_pco2": np.clip(rng.normal(5.5, 1.5, n), 2.0, 10.0),
+        "lookalike_idx": np.full(n, -1, dtype=np.int64),
+        "lookalike_detail": np.full(n, None, dtype=object),
+    }
 
-    unit_names = pl.Series([u.name for u in UNITS], dtype=pl.String)
-    frame = pl.DataFrame(
-        {
-            "_row": np.arange(n, dtype=np.int64),
-            "patient_idx": sample_patient,
-            "unit": unit_names.gather(unit_idx),
-            "analyser_id": pl.Series(ANALYSERS, dtype=pl.String).gather(analyser_idx),
-            "collected_min": collected_min,
-            "turnaround_min": turnaround.astype(np.int64),
-            "day": day.astype(np.int64),
-            "sample_type": pl.Series(["arterial", "venous", "unknown"], dtype=pl.String).gather(
-                sample_type_idx
-            ),
-            "true_device": pl.Series(DEVICES, dtype=pl.String).gather(device_idx),
-            "device_missing": device_missing,
-            "flow": flow,
-            "flow_factor": flow_factor,
-            "fio2_set": fio2_set,
-            "fio2_missing": fio2_missing,
-            "peep_cmh2o": peep,
-            "mean_airway_pressure_cmh2o": mean_airway,
-            "temperature_c": temperature,
-            "paco2_true": paco2,
-            "hco3_true": hco3,
-            "lactate_true": lactate,
-            "severity_now": severity_now,
-            # random inputs of the forward model (see forward_model.py)
-            "u_fio2": rng.normal(0, 1, n),
-            "u_aa": 0.3 + 0.7 * rng.random(n),
-            "u_shunt": 0.5 + 0.6 * rng.random(n),
-            "u_venous_po2": np.clip(rng.normal(38, 6, n), 22, 55),
-            "u_venous_pco2": np.clip(rng.normal(5.5, 1.5, n), 2.0, 10.0),
-            "u_coox": np.clip(rng.normal(0, 0.7, n), -2.0, 2.0),
-            "u_spo2": np.clip(rng.normal(0.5, 1.5, n), -3.5, 4.0),
-            "u_hb": rng.normal(0, 0.25, n),
-            "u_na": rng.normal(0, 0.8, n),
-            "u_k": rng.normal(0, 0.2, n),
-            "sao2_is_calculated": rng.random(n) < sao2_calculated_share,
-        }
+
+def concat_draws(parts: Sequence[Draws]) -> Draws:
+    """Draws of several groups of patients, one after the other (patient indices made distinct)."""
+    parts = [p for p in parts if p["patient_idx"].size]
+    out: Draws = {}
+    offset = 0
+    shifted: list[Draws] = []
+    for part in parts:
+        shifted.append({**part, "patient_idx": part["patient_idx"] + offset})
+        offset += int(part["patient_idx"].max()) + 1
+    for name in parts[0]:
+        out[name] = np.concatenate([p[name] for p in shifted])
+    return out
+
+
+def to_frame(draws: Draws, start: date, patient_ids: npt.NDArray[np.int64]) -> pl.DataFrame:
+    """The draws as one polars frame with the label columns spelled out and the times as datetimes.
+
+    ``patient_ids`` holds one invented 7-digit number per patient (``patient_idx``).
+    """
+    n = draws["patient_idx"].size
+    plain = {
+        k: v
+        for k, v in draws.items()
+        if k not in ("unit_idx", "analyser_idx", "sample_type_idx", "device_idx", "birth_ordinal", "lookalike_detail")
+    }
+    frame = pl.DataFrame(plain).with_columns(
+        pl.Series("_row", np.arange(n, dtype=np.int64)),
+        pl.Series([u.name for u in ALL_UNITS], dtype=pl.String).gather(draws["unit_idx"]).alias("unit"),
+        pl.Series(ANALYSERS, dtype=pl.String).gather(draws["analyser_idx"]).alias("analyser_id"),
+        pl.Series(SAMPLE_TYPES, dtype=pl.String).gather(draws["sample_type_idx"]).alias("sample_type"),
+        pl.Series(dev.DEVICES, dtype=pl.String).gather(draws["device_idx"]).alias("true_device"),
+        pl.Series("device_idx", draws["device_idx"]),
+        pl.Series("lookalike_detail", draws["lookalike_detail"].tolist(), dtype=pl.String),
+        pl.Series("patient_id", patient_ids[draws["patient_idx"]]).cast(pl.String).str.pad_start(7, "0"),
+        pl.Series("birth_date", draws["birth_ordinal"] - date(1970, 1, 1).toordinal()).cast(pl.Int32).cast(pl.Date),
     )
     start_dt = datetime.combine(start, datetime.min.time())
-    unix_epoch_ordinal = date(1970, 1, 1).toordinal()
     collected = pl.lit(start_dt) + pl.duration(minutes=pl.col("collected_min"))
     birth = pl.col("birth_date")
-    frame = (
-        frame.hstack(
-            pat.select(
-                "patient_id",
-                "hypercapnic_risk",
-                "baseline_hb",
-                "baseline_na",
-                "baseline_k",
-                "anion_gap",
-                (pl.col("birth_ordinal") - unix_epoch_ordinal)
-                .cast(pl.Int32)
-                .cast(pl.Date)
-                .alias("birth_date"),
-            )
+    frame = frame.with_columns(
+        pl.format("SVH{}", pl.col("patient_id")).alias("patient_id"),
+        # NaN marks "not applicable" in the numpy draws; the record wants NULL
+        pl.col("flow", "fio2_set", "peep_cmh2o", "mean_airway_pressure_cmh2o").fill_nan(None),
+        collected.alias("collected_at"),
+        (collected + pl.duration(minutes=pl.col("turnaround_min"))).alias("resulted_at"),
+        (pl.col("collected_min") // 1440).alias("day"),
+    ).with_columns(
+        # completed years at collection
+        (
+            pl.col("collected_at").dt.year()
+            - birth.dt.year()
+            - (
+                pl.col("collected_at").dt.month().cast(pl.Int32) * 100 + pl.col("collected_at").dt.day()
+                < birth.dt.month().cast(pl.Int32) * 100 + birth.dt.day()
+            ).cast(pl.Int32)
         )
-        .with_columns(
-            # NaN marks "not applicable" in the numpy draws; the record wants NULL
-            pl.col("flow", "fio2_set", "peep_cmh2o", "mean_airway_pressure_cmh2o").fill_nan(None),
-            collected.alias("collected_at"),
-            (collected + pl.duration(minutes=pl.col("turnaround_min"))).alias("resulted_at"),
-        )
-        .with_columns(
-            # completed years at collection
-            (
-                pl.col("collected_at").dt.year()
-                - birth.dt.year()
-                - (
-                    pl.col("collected_at").dt.month().cast(pl.Int32) * 100 + pl.col("collected_at").dt.day()
-                    < birth.dt.month().cast(pl.Int32) * 100 + birth.dt.day()
-                ).cast(pl.Int32)
-            )
-            .cast(pl.Float64)
-            .alias("age_years"),
-        )
+        .cast(pl.Float64)
+        .alias("age_years"),
+        ((pl.col("collected_at").dt.date() - birth).dt.total_days().cast(pl.Float64) / 365.25).alias("age_exact"),
     )
     return frame.drop("collected_min")
 

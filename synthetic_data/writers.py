@@ -9,11 +9,16 @@ in the profile's time zone), or one file in all with ``single_file``:
     OUT/us_style/export_YYYY-MM-DD.csv     profiles/demo_us_style.toml
     OUT/eu_style/export_YYYY-MM-DD.csv     profiles/demo_eu_style.toml
     OUT/parquet/export_YYYY-MM-DD.parquet  profiles/demo_parquet.toml
-    OUT/ground_truth.parquet, OUT/ground_truth.csv, OUT/README.txt
+    OUT/ground_truth.parquet, OUT/ground_truth.csv      injected faults
+    OUT/lookalikes.parquet, OUT/lookalikes.csv          clinical look-alikes (no fault)
+    OUT/README.txt
 
-Values are converted from canonical units into each profile's declared units with the shared
-SQL macros (``synthetic_data/sql/export_units.sql``), printed with the profile's decimal mark and date-time
-format in its local time zone, and coded with the profile's own sample-type and device codes.
+Values are converted from canonical units into each profile's declared units with the
+generator's own conversion factors (``physics.py``: 1 kPa = 7.50062 mmHg, degrees Fahrenheit,
+g/L, mmol/L of haem iron, mg/dL of lactate and glucose), printed with the profile's decimal mark
+and date-time format in its local time zone, and coded with the profile's own sample-type and
+device codes. The European-style CSV (critical-care point-of-care co-oximeters) and the Parquet
+feed carry glucose, COHb and MetHb; the US-style CSV does not.
 Faults that live in the export are written here from the ground truth: a duplicate is written
 again in a later day's file, a correction is written first with its first-sent value and again,
 corrected, in a later file, and a text result replaces the number in its cell.
@@ -27,13 +32,12 @@ from datetime import date
 from pathlib import Path
 from typing import BinaryIO
 
-import duckdb
 import polars as pl
 
 from pipeline.profile import Profile, load_profile
 from pipeline.schema import FIELDS_BY_NAME, Kind
-from synthetic_data.forward_model import physiology_connection, run_query
-from synthetic_data.generator import source_of
+from synthetic_data import physics as phys
+from synthetic_data.generator import LOOKALIKE_SCHEMA, source_of
 from synthetic_data.hospital import PROFILE_FILES, SITE_NAME, SOURCES
 
 PROFILES_DIR = Path(__file__).resolve().parent.parent / "profiles"
@@ -49,6 +53,9 @@ DECIMALS: dict[str, dict[str, int]] = {
     "temperature_c": {"C": 1, "F": 1},
     "hb_g_dl": {"g/dL": 1, "g/L": 0, "mmol/L": 1},
     "lactate_mmol_l": {"mmol/L": 1, "mg/dL": 0},
+    "glucose_mmol_l": {"mmol/L": 1, "mg/dL": 0},
+    "cohb_pct": {"percent": 1, "fraction": 3},
+    "methb_pct": {"percent": 1, "fraction": 3},
     "age_years": {"years": 0},
     "o2_flow_l_min": {"L/min": 1},
     "ph": {"pH": 2},
@@ -70,6 +77,9 @@ CONVERTED = (
     "temperature_c",
     "hb_g_dl",
     "lactate_mmol_l",
+    "glucose_mmol_l",
+    "cohb_pct",
+    "methb_pct",
 )
 BATCH_ROWS = 250_000
 """Rows turned into text at a time when one large file is written."""
@@ -95,30 +105,38 @@ def export_codes(path: Path) -> tuple[dict[str, str], dict[str, str]]:
     return out[0], out[1]
 
 
+HB_MMOL_L_PER_G_DL = 0.6206
+"""Haemoglobin in mmol/L of haem iron per g/dL (monomer molar mass 16 114 g/mol; domain-methods.md
+section 11)."""
+_FACTORS: dict[str, dict[str, float]] = {
+    # canonical value x factor = value in the declared unit
+    "pressure": {"mmHg": 1.0, "kPa": 1.0 / phys.MMHG_PER_KPA},
+    "fraction": {"fraction": 1.0, "percent": 100.0},
+    "saturation": {"percent": 1.0, "fraction": 0.01},
+    "haemoglobin": {"g/dL": 1.0, "g/L": 10.0, "mmol/L": HB_MMOL_L_PER_G_DL},
+    "lactate": {"mmol/L": 1.0, "mg/dL": phys.LACTATE_MG_DL_PER_MMOL_L},
+    "glucose": {"mmol/L": 1.0, "mg/dL": phys.GLUCOSE_MG_DL_PER_MMOL_L},
+}
+
+
 def _units(profile: Profile) -> dict[str, str]:
-    units = {c: profile.unit_of(c) for c in CONVERTED}
+    units = {c: profile.unit_of(c) for c in CONVERTED if c in profile.columns}
     for name, unit in units.items():
         if unit not in DECIMALS[name]:
             raise ValueError(f"{profile.name}: the demo writer cannot write {name} in {unit!r}")
     return units
 
 
-def _to_profile_units(con: duckdb.DuckDBPyConnection, rows: pl.DataFrame, profile: Profile) -> pl.DataFrame:
-    units = _units(profile)
-    params = {
-        "paco2_unit": units["paco2_mmhg"],
-        "pao2_unit": units["pao2_mmhg"],
-        "barometric_unit": units["barometric_pressure_mmhg"],
-        "fio2_unit": units["fio2"],
-        "sao2_unit": units["sao2_pct"],
-        "spo2_unit": units["spo2_pct"],
-        "temperature_unit": units["temperature_c"],
-        "hb_unit": units["hb_g_dl"],
-        "lactate_unit": units["lactate_mmol_l"],
-    }
-    canon = rows.select(pl.int_range(pl.len(), dtype=pl.Int64).alias("_row"), *CONVERTED)
-    converted = run_query(con, "export_units.sql", {"canon": canon}, params)
-    return rows.with_columns(converted.drop("_row"))
+def to_unit(expr: pl.Expr, name: str, unit: str) -> pl.Expr:
+    """A canonical column expressed in a declared unit (temperature has an offset; the rest are factors)."""
+    if name == "temperature_c":
+        return expr * 1.8 + 32.0 if unit == "F" else expr
+    family = FIELDS_BY_NAME[name].unit_family or ""
+    return expr * _FACTORS[family][unit]
+
+
+def _to_profile_units(rows: pl.DataFrame, profile: Profile) -> pl.DataFrame:
+    return rows.with_columns(to_unit(pl.col(name), name, unit).alias(name) for name, unit in _units(profile).items())
 
 
 def _export_rows(rows: pl.DataFrame, truth: pl.DataFrame, timezone: str) -> pl.DataFrame:
@@ -149,10 +167,7 @@ def _export_rows(rows: pl.DataFrame, truth: pl.DataFrame, timezone: str) -> pl.D
     rows = rows.join(first, on="sample_id", how="left", maintain_order="left")
     fields = first["_first_field"].unique().to_list()
     rows = rows.with_columns(
-        pl.when(pl.col("_first_field") == name)
-        .then(pl.col("_first_value"))
-        .otherwise(pl.col(name))
-        .alias(name)
+        pl.when(pl.col("_first_field") == name).then(pl.col("_first_value")).otherwise(pl.col(name)).alias(name)
         for name in fields
     ).drop("_first_field", "_first_value")
     # file order: by export day, re-sent copies after the day's own results, then by result time; one
@@ -204,9 +219,7 @@ def _csv_cells(truth: pl.DataFrame, profile: Profile, path: Path) -> list[pl.Exp
         field_texts = texts.filter(pl.col("field") == name)
         if field_texts.height:
             lookup = dict(zip(field_texts["sample_id"], field_texts["cell_text"], strict=True))
-            cell = pl.coalesce(
-                pl.col("sample_id").replace_strict(lookup, default=None, return_dtype=pl.String), cell
-            )
+            cell = pl.coalesce(pl.col("sample_id").replace_strict(lookup, default=None, return_dtype=pl.String), cell)
         cells.append(cell.alias(header))
     return cells
 
@@ -225,10 +238,7 @@ def _write_csv(frame: pl.DataFrame, out: BinaryIO, profile: Profile, header: boo
 def _batches(rows: pl.DataFrame, single_file: bool) -> list[tuple[str, pl.DataFrame]]:
     """(file stem, rows) in writing order: one batch per export day, or slices of one file."""
     if single_file:
-        return [
-            ("export_all", rows.slice(start, BATCH_ROWS))
-            for start in range(0, max(rows.height, 1), BATCH_ROWS)
-        ]
+        return [("export_all", rows.slice(start, BATCH_ROWS)) for start in range(0, max(rows.height, 1), BATCH_ROWS)]
     return [
         (f"export_{day.isoformat()}", part)
         for (day,), part in sorted(rows.partition_by("_export_date", as_dict=True).items())
@@ -237,7 +247,6 @@ def _batches(rows: pl.DataFrame, single_file: bool) -> list[tuple[str, pl.DataFr
 
 
 def _write_source(
-    con: duckdb.DuckDBPyConnection,
     rows: pl.DataFrame,
     truth: pl.DataFrame,
     source: str,
@@ -248,7 +257,7 @@ def _write_source(
     path = profile_path(source, profiles_dir)
     profile = load_profile(path)
     # re-sent copies and first-sent values are canonical, so they are laid out before the unit conversion
-    rows = _to_profile_units(con, _export_rows(rows, truth, profile.timezone), profile)
+    rows = _to_profile_units(_export_rows(rows, truth, profile.timezone), profile)
     folder = out_dir / source
     folder.mkdir(parents=True, exist_ok=True)
     written: list[Path] = []
@@ -287,6 +296,10 @@ ground_truth.parquet / .csv
               one row per sample with an injected fault: sample_id, fault_type, detail,
               physically_visible (whether physics can see it in the record), field,
               value_before / value_after (canonical units), cell_text, resend_delay_days.
+lookalikes.parquet / .csv
+              one row per sample of a clinical look-alike - a real (invented) patient whose
+              physiology looks odd but is not an error, and which carries no fault:
+              sample_id, lookalike_kind, detail. Records in neither file are clean.
 
 Files are named by the local date on which results were produced. A duplicate or a corrected
 re-send appears again in a later file. Times in the CSV files are local wall-clock times, as
@@ -302,24 +315,29 @@ def write_exports(
     single_file: bool = False,
     profiles_dir: Path = PROFILES_DIR,
     provenance: dict[str, object] | None = None,
+    lookalikes: pl.DataFrame | None = None,
 ) -> dict[str, list[Path]]:
-    """Write every source's export files, the ground truth and a README; return the files per source."""
+    """Write every source's export files, the ground truth of faults, the look-alikes and a README;
+    return the files per source. ``lookalikes`` None writes an empty look-alike file."""
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
     with_source = canonical.with_columns(source_of(pl.col("sample_id")).alias("_source"))
     written: dict[str, list[Path]] = {}
-    con = physiology_connection()
-    try:
-        for source in SOURCES:
-            rows = with_source.filter(pl.col("_source") == source).drop("_source")
-            ids = rows.select("sample_id")
-            truth = ground_truth.join(ids, on="sample_id", how="semi")
-            written[source] = _write_source(con, rows, truth, source, out_dir, single_file, profiles_dir)
-    finally:
-        con.close()
+    for source in SOURCES:
+        rows = with_source.filter(pl.col("_source") == source).drop("_source")
+        ids = rows.select("sample_id")
+        truth = ground_truth.join(ids, on="sample_id", how="semi")
+        written[source] = _write_source(rows, truth, source, out_dir, single_file, profiles_dir)
     ground_truth.write_parquet(out_dir / "ground_truth.parquet")
     ground_truth.write_csv(out_dir / "ground_truth.csv")
-    info: dict[str, object] = {"records": canonical.height, "with a fault": ground_truth.height}
+    lookalikes = pl.DataFrame(schema=LOOKALIKE_SCHEMA) if lookalikes is None else lookalikes
+    lookalikes.write_parquet(out_dir / "lookalikes.parquet")
+    lookalikes.write_csv(out_dir / "lookalikes.csv")
+    info: dict[str, object] = {
+        "records": canonical.height,
+        "with a fault": ground_truth.height,
+        "look-alikes": lookalikes.height,
+    }
     info.update(provenance or {})
     generated = ", ".join(f"{key} {value}" for key, value in info.items())
     (out_dir / "README.txt").write_text(README.format(site=SITE_NAME, generated=generated), encoding="utf-8")
