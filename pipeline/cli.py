@@ -431,7 +431,11 @@ def rules(config_path: Path | None, kind: str | None) -> None:
     for rule in catalogue.rules:
         if kind and rule.kind != kind:
             continue
-        excludes = "; excludes the record from oxygenation statistics" if rule.excludes_from_oxygenation else ""
+        excludes = (
+            "; a high-severity flag excludes the record from oxygenation statistics"
+            if rule.excludes_from_oxygenation
+            else ""
+        )
         click.echo(f"\n{rule.id}  [{rule.kind}, {rule.severity}{excludes}]\n  {rule.title}")
         click.echo(f"  why: {rule.rationale}")
         click.echo(f"  source: {rule.reference}")
