@@ -29,7 +29,7 @@ pipeline's SQL macros. The steps, per sample:
    does not change when the sample is spoiled.
 6. **The syringe** holds arterial blood, or for samples really taken from a vein (labelled venous,
    or the fault ``venous_as_arterial``) venous blood: content Ca - D, PCO2 2-10 mmHg higher, HCO3
-   1 mmol/L higher, its PO2 solved on the curve (at least 22 mmHg).
+   1 mmol/L higher, its PO2 solved on the curve (at least 22 mmHg at 37 C).
 7. **The analyser** warms the sealed sample to 37 C (``blood_at_temperature``: pH and PCO2 by fixed
    coefficients, PO2 by conserving the oxygen content) and reports pH (2 decimals), PCO2 and PO2
    (1 decimal, mmHg), Hb, Na, K, Cl, glucose, lactate, and by co-oximetry FO2Hb (``sao2_pct``, the
@@ -170,11 +170,12 @@ def true_state(draws: pl.DataFrame, altitude_m: float, rng: np.random.Generator)
     hco3_v = hco3 + 1.0
     ph_v = phys.ph_from_hco3(pvco2, hco3_v)
     p50_v = phys.p50_mmhg(p50_std, ph_v, pvco2, t)
-    pvo2 = np.maximum(phys.po2_from_content(np.maximum(content - av_diff, 0.05), hb_available, p50_v, t), 22.0)
+    pvo2 = phys.po2_from_content(np.maximum(content - av_diff, 0.05), hb_available, p50_v, t)
 
     # 7. warmed to 37 C in the analyser
     a_po2, a_pco2, a_ph = phys.blood_at_temperature(pao2, paco2, ph, t, 37.0, hb_available, p50_std)
     v_po2, v_pco2, v_ph = phys.blood_at_temperature(pvo2, pvco2, ph_v, t, 37.0, hb_available, p50_std)
+    v_po2 = np.maximum(v_po2, 22.0)
     a_hco3 = phys.hco3_from_ph(a_ph, a_pco2)
     v_hco3 = phys.hco3_from_ph(v_ph, v_pco2)
     venous = (draws.get_column("sample_type") == "venous").to_numpy()

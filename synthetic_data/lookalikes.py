@@ -32,7 +32,7 @@ Kinds (values invented within the ranges stated; "from memory" where a number is
   on a reservoir mask and about 250 min on air, from memory), on a reservoir mask at 15 L/min (70 %)
   or air; PaO2 normal to high, SpO2 high (COHb read as oxyhaemoglobin), co-oximeter FO2Hb low.
 - ``ventilated_high_fio2``: intensive care, invasive ventilation on FiO2 0.80-1.00 with PEEP 8-16;
-  shunt 6-38 % of cardiac output, so PaO2 about 60-450 mmHg and a large A-a gradient (50-100 mmHg
+  shunt 10-36 % of cardiac output, so PaO2 about 60-450 mmHg and a large A-a gradient (50-100 mmHg
   is normal on 100 % oxygen even in healthy lungs).
 - ``neonate``: the Dunlin Neonatal Unit, 0-27 days old (birth date given; age exported only by
   layouts with an age column), fetal haemoglobin (P50 18-21 mmHg, about 19.5; from memory),
@@ -226,7 +226,7 @@ def _transfusion(rng: np.random.Generator, d: Draws, sp: np.ndarray, days: int) 
     rise = np.clip(units * rng.uniform(0.85, 1.15, n_pat)[sp], 1.0, 3.0)
     before = _per_patient(rng, sp, 6.8, 8.5)
     after = rank >= after_k
-    d["hb_true"] = before + np.where(after, rise, 0.0) + rng.normal(0, 0.15, sp.size)
+    d["hb_true"] = before + np.where(after, rise, 0.0) + rng.normal(0, 0.1, sp.size)
     gaps = np.where(rank == after_k, rng.uniform(120, 360, sp.size), rng.uniform(180, 600, sp.size))
     d["collected_min"] = _times(rng, sp, gaps, days)
     d["lookalike_detail"] = _details(
@@ -256,7 +256,8 @@ def _sodium_correction(rng: np.random.Generator, d: Draws, sp: np.ndarray, days:
     na = na0 + rate * hours / 24.0 + rng.normal(0, 0.4, sp.size)
     d["cl_true"] = d["cl_true"] + (na - d["na_true"])  # chloride follows sodium
     d["na_true"] = na
-    d["hb_true"] = d["hb_true"] - rng.normal(0, 0.22, sp.size) * 0.3  # Hb stable: less within-patient spread
+    first = _within(sp)[2]
+    d["hb_true"] = d["hb_true"][first] + rng.normal(0, 0.12, sp.size)  # Hb stable
     d["lookalike_detail"] = _details(
         "hyponatraemia corrected at {:.1f} mmol/L per 24 h from Na {:.0f}; sample {} of {}, {:.0f} h after the first",
         rate,
@@ -345,7 +346,8 @@ def _hypothermia(rng: np.random.Generator, d: Draws, sp: np.ndarray, days: int) 
     on_cannula = _per_patient(rng, sp, 0.0, 1.0) < 0.4
     _device(d, ~on_cannula, "room_air", flow=0.0)
     _device(d, on_cannula, "nasal_cannula", flow=np.round(_per_patient(rng, sp, 0.5, 4.49)))
-    d["shunt"] = rng.uniform(0.005, 0.03, n)
+    d["shunt"] = rng.uniform(0.003, 0.02, n)
+    d["vq_factor"] = rng.uniform(0.4, 0.9, n)
     d["paco2_true"] = np.clip(rng.normal(38.0, 3.5, n), 30.0, 46.0)
     d["hco3_true"] = np.clip(rng.normal(23.5, 1.8, n), 19.0, 28.0)
     d["lactate_true"] = np.clip(rng.lognormal(np.log(1.6), 0.35, n), 0.6, 4.5)
@@ -370,7 +372,7 @@ def _young_hyperventilation(rng: np.random.Generator, d: Draws, sp: np.ndarray, 
     d["hco3_true"] = 24.5 - 0.2 * (40.0 - paco2) + rng.normal(0, 0.8, n)
     washout = rng.random(n) < 0.25
     d["rq"] = np.where(washout, rng.uniform(1.0, 1.1, n), rng.uniform(0.8, 0.95, n))
-    d["shunt"] = rng.uniform(0.003, 0.02, n)
+    d["shunt"] = rng.uniform(0.002, 0.012, n)
     d["vq_factor"] = rng.uniform(0.3, 0.8, n)
     d["temperature_c"] = np.round(rng.uniform(36.6, 37.4, n), 1)
     d["lactate_true"] = np.clip(rng.lognormal(np.log(1.2), 0.3, n), 0.5, 2.5)
@@ -427,7 +429,9 @@ def _carbon_monoxide(rng: np.random.Generator, d: Draws, sp: np.ndarray, days: i
     cohb0 = lowest_start + rng.random(n_pat) * np.maximum(30.0 - lowest_start, 0.0)
     d["cohb_true"] = np.minimum(cohb0[sp] * decay, 30.0)
     d["sao2_is_calculated"][:] = False  # COHb is known from co-oximetry
-    d["shunt"] = rng.uniform(0.01, 0.06, n)
+    d["shunt"] = rng.uniform(0.005, 0.03, n)
+    d["paco2_true"] = np.clip(rng.normal(38.0, 3.5, n), 30.0, 46.0)
+    d["hco3_true"] = np.clip(rng.normal(23.0, 1.5, n), 19.0, 27.0)
     d["lactate_true"] = np.clip(rng.lognormal(np.log(2.2), 0.35, n), 1.0, 6.0)
     d["temperature_c"] = np.round(rng.uniform(36.5, 37.3, n), 1)
     d["hypercapnic_risk"][:] = False
@@ -455,7 +459,7 @@ def _ventilated_high_fio2(rng: np.random.Generator, d: Draws, sp: np.ndarray, da
         peep=peep,
         mean_airway=np.round(peep + rng.uniform(4.0, 10.0, n)),
     )
-    d["shunt"] = np.clip(_per_patient(rng, sp, 0.08, 0.36) + rng.normal(0, 0.02, n), 0.06, 0.38)
+    d["shunt"] = np.clip(_per_patient(rng, sp, 0.11, 0.34) + rng.normal(0, 0.02, n), 0.10, 0.36)
     d["paco2_true"] = np.clip(rng.normal(42.0, 5.0, n), 32.0, 60.0)
     d["severity_now"] = np.maximum(d["severity_now"], 0.6)
     d["lookalike_detail"] = _details(

@@ -1,6 +1,6 @@
 """The demo generator's own physics, in numpy: an independent forward model.
 
-Nothing here calls the pipeline's SQL macros (``sql/macros/``): the detection figures would
+Nothing here calls the pipeline's SQL formula macros: the detection figures would
 otherwise only show that the pipeline agrees with itself. Where a reasonable alternative
 exists, the formulation deliberately differs from the pipeline's (water vapour by the Antoine
 equation, not Buck's fit; the alveolar gas equation in its full form with R drawn per sample;
