@@ -45,9 +45,13 @@ Fault types (how each lands; all arithmetic is the generator's own, in numpy):
 physical evidence on its own (``evidence.py``) - venous blood, air contamination, under-documented
 FiO2, pH transcription, wrong units and decimal slips. So air in a sample whose PO2 was already near
 150 mmHg, a unit error whose value lands in range, or a pH one hundredth off are not visible. Wrong
-blood in tube is visible when the patient's nearest other sample within 72 h differs by at least
-2.0 g/dL Hb or 8 mmol/L Na (delta-check window and limits of domain-methods.md section 8, from memory
-there), or the record carries evidence. A line-flush dilution is visible when the patient's nearest
+blood in tube is visible when the record carries evidence, or when the sample is out of line with the
+patient on both sides - its previous and its next sample, both within 72 h, differ from it in the same
+direction by at least 2.0 g/dL Hb, 8 mmol/L Na or 8 mmol/L Cl (delta-check window and limits of
+domain-methods.md section 8, from memory there; Cl as Na, common practice) - or when Na or Cl differs by
+8 mmol/L from a sample taken within 12 h. A one-sided Hb change alone is not counted: a transfusion
+raises Hb and a bypass prime lowers it with sodium unchanged (``lookalikes.py``), so physics cannot
+tell them from wrong blood. A line-flush dilution is visible when the patient's nearest
 other sample within 72 h had an Hb higher by more than the reference change value of 8.56 % (Hb CVa
 1.5 %, CVi 2.7 %; domain-methods.md section 8, CVs from memory there) and, beside it, chloride rose
 by at least 4.5 mmol/L (about the reference change value of chloride: CVa 1.0 %, CVi 1.2 %, from
@@ -106,6 +110,9 @@ FAULTED_COLUMNS = (
 WBIT_HB_DELTA_G_DL = 2.0
 WBIT_NA_DELTA_MMOL_L = 8.0
 NEIGHBOUR_WINDOW_HOURS = 72.0
+FAST_CHANGE_HOURS = 12.0
+"""Na or Cl moving 8 mmol/L within this time is faster than any look-alike moves them (sodium correction
+at most 9 mmol/L per 24 h; a bypass prime is balanced)."""
 HB_RCV_PCT = 8.56
 NA_RCV_PCT = 2.38
 CL_RISE_MMOL_L = 4.5
@@ -484,37 +491,39 @@ def inject_faults(
 
 
 def _nearest_other_sample(records: pl.DataFrame, state: pl.DataFrame, rows: np.ndarray) -> pl.DataFrame:
-    """For the given rows: the same patient's nearest other sample (hours away, its Hb, Na, Cl, glucose)."""
-    times = records.select(
-        "_row",
-        pl.Series("patient_idx", state["patient_idx"]),
-        "collected_at",
-        "hb_g_dl",
-        "na_mmol_l",
-        "cl_mmol_l",
-        "glucose_mmol_l",
-    )
+    """For the given rows: the same patient's nearest other sample (``near_h`` hours away; its Hb, Na, Cl
+    and glucose as ``nb_*``) and its previous and next samples (``prev_*``, ``next_*``; hours apart in
+    ``prev_h``, ``next_h``). NULL where there is none."""
+    values = ("hb_g_dl", "na_mmol_l", "cl_mmol_l", "glucose_mmol_l")
+    short = dict(zip(values, ("hb", "na", "cl", "glucose"), strict=True))
+    times = records.select("_row", pl.Series("patient_idx", state["patient_idx"]), "collected_at", *values)
     target = times[rows].select("_row", "patient_idx", "collected_at")
     others = times.join(target.select("patient_idx").unique(), on="patient_idx", how="semi").select(
         pl.col("_row").alias("_other"),
         "patient_idx",
         pl.col("collected_at").alias("_other_at"),
-        pl.col("hb_g_dl").alias("nb_hb"),
-        pl.col("na_mmol_l").alias("nb_na"),
-        pl.col("cl_mmol_l").alias("nb_cl"),
-        pl.col("glucose_mmol_l").alias("nb_glucose"),
+        *(pl.col(v).alias(short[v]) for v in values),
     )
-    nearest = (
+    pairs = (
         target.join(others, on="patient_idx")
         .filter(pl.col("_other") != pl.col("_row"))
-        .with_columns(
-            ((pl.col("_other_at") - pl.col("collected_at")).abs().dt.total_seconds() / 3600.0).alias("near_h")
-        )
-        .sort("_row", "near_h", "_other")
-        .unique("_row", keep="first", maintain_order=True)
-        .select("_row", "near_h", "nb_hb", "nb_na", "nb_cl", "nb_glucose")
+        .with_columns(((pl.col("_other_at") - pl.col("collected_at")).dt.total_seconds() / 3600.0).alias("dt_h"))
     )
-    return target.select("_row").join(nearest, on="_row", how="left", maintain_order="left")
+
+    def pick(frame: pl.DataFrame, key: pl.Expr, prefix: str, hours: pl.Expr) -> pl.DataFrame:
+        return (
+            frame.sort(pl.col("_row"), key, pl.col("_other"))
+            .unique("_row", keep="first", maintain_order=True)
+            .select("_row", hours.alias(f"{prefix}_h"), *(pl.col(s).alias(f"{prefix}_{s}") for s in short.values()))
+        )
+
+    nearest = pick(pairs, pl.col("dt_h").abs(), "nb", pl.col("dt_h").abs()).rename({"nb_h": "near_h"})
+    before = pick(pairs.filter(pl.col("dt_h") <= 0), -pl.col("dt_h"), "prev", -pl.col("dt_h"))
+    after = pick(pairs.filter(pl.col("dt_h") > 0), pl.col("dt_h"), "next", pl.col("dt_h"))
+    out = target.select("_row")
+    for part in (nearest, before, after):
+        out = out.join(part, on="_row", how="left", maintain_order="left")
+    return out
 
 
 def _fmt(expr: pl.Expr) -> pl.Expr:
@@ -592,9 +601,27 @@ def _ground_truth(
     )
     # 3. visible to physics?
     near = (pl.col("near_h") <= NEIGHBOUR_WINDOW_HOURS).fill_null(False)
-    delta_seen = near & (
-        ((after("hb_g_dl") - pl.col("nb_hb")).abs() >= WBIT_HB_DELTA_G_DL)
-        | ((after("na_mmol_l") - pl.col("nb_na")).abs() >= WBIT_NA_DELTA_MMOL_L)
+
+    def excursion(name: str, short: str, limit: float) -> pl.Expr:
+        """The value differs by at least ``limit`` from both the previous and the next sample within the
+        window, in the same direction: one sample out of line with the patient on both sides."""
+        up = ((after(name) - pl.col(f"prev_{short}")) >= limit) & ((after(name) - pl.col(f"next_{short}")) >= limit)
+        down = ((pl.col(f"prev_{short}") - after(name)) >= limit) & ((pl.col(f"next_{short}") - after(name)) >= limit)
+        both = (pl.col("prev_h") <= NEIGHBOUR_WINDOW_HOURS) & (pl.col("next_h") <= NEIGHBOUR_WINDOW_HOURS)
+        return (both & (up | down)).fill_null(False)
+
+    def fast_change(name: str, short: str, limit: float) -> pl.Expr:
+        """At least ``limit`` away from the nearest sample taken within ``FAST_CHANGE_HOURS``."""
+        return (
+            (pl.col("near_h") <= FAST_CHANGE_HOURS) & ((after(name) - pl.col(f"nb_{short}")).abs() >= limit)
+        ).fill_null(False)
+
+    delta_seen = (
+        excursion("hb_g_dl", "hb", WBIT_HB_DELTA_G_DL)
+        | excursion("na_mmol_l", "na", WBIT_NA_DELTA_MMOL_L)
+        | excursion("cl_mmol_l", "cl", WBIT_NA_DELTA_MMOL_L)
+        | fast_change("na_mmol_l", "na", WBIT_NA_DELTA_MMOL_L)
+        | fast_change("cl_mmol_l", "cl", WBIT_NA_DELTA_MMOL_L)
     )
     hb_fall = (pl.col("nb_hb") - after("hb_g_dl")) > HB_RCV_PCT / 100.0 * pl.col("nb_hb")
     towards_saline = ((after("cl_mmol_l") - pl.col("nb_cl")) >= CL_RISE_MMOL_L) | (
