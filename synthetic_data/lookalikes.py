@@ -187,6 +187,12 @@ def _base(
     hosts = HOST_UNITS[kind]
     shares = np.array([s for _, s in hosts])
     per_unit = rng.multinomial(n_rows, shares / shares.sum())
+    # a host unit with fewer rows than one patient needs gives them to the largest one
+    short = (per_unit > 0) & (per_unit < SAMPLES_PER_PATIENT[kind][0])
+    largest = int(np.argmax(per_unit))
+    moved = int(per_unit[short].sum()) - (int(per_unit[largest]) if short[largest] else 0)
+    per_unit[short & (np.arange(per_unit.size) != largest)] = 0
+    per_unit[largest] += moved
     patients, sample_patient = draw_patients(
         rng, [u for u, _ in hosts], per_unit, start, days, SAMPLES_PER_PATIENT[kind]
     )

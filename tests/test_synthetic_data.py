@@ -404,6 +404,15 @@ def test_same_seed_same_data_other_seed_other_data(demo: DemoData) -> None:
     assert not other.records.equals(demo.records)
 
 
+@pytest.mark.parametrize("rows", [2, 10, 100, 333, 420])
+def test_small_sets_have_exactly_the_rows_asked_for(rows: int) -> None:
+    # look-alike kinds too small for one patient are left out, the rest fill whole patients
+    for seed in range(4):
+        data = generate_demo(rows, seed, START, 3)
+        assert data.records.height == rows
+        assert data.records["sample_id"].n_unique() == rows
+
+
 def test_a_large_set_is_generated_in_one_piece() -> None:
     # not a timing test: the generator must handle a large set in one piece (no per-row Python loops
     # over the ordinary records); 200 000 rows keep the suite fast
