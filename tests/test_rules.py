@@ -109,17 +109,22 @@ def test_sao2_off_dissociation_curve(tmp_path):
     # Severinghaus 1979 at pH 7.40, 37 C, BE 0, with P50 26.8 +/- 4 mmHg: PaO2 60 reads as 60 x 26.8 / 30.8 =
     # 52.21 mmHg -> 86.52 % and 60 x 26.8 / 22.8 = 70.53 mmHg -> 93.92 %; tolerance 3 points (common practice)
     # -> band 83.52-96.92 %. Shift 8 mmHg: 46.21 mmHg -> 81.86 %, wide band from 78.86 % (high severity).
+    # COHb and MetHb reported as 0 here, so the oxyhaemoglobin fraction is the functional saturation.
+    co_ox = {"pao2_mmhg": 60.0, "spo2_pct": None, "cohb_pct": 0.0, "methb_pct": 0.0}
     rows = [
-        record("INSIDE", pao2_mmhg=60.0, sao2_pct=83.6, spo2_pct=None),
-        record("FIRE", pao2_mmhg=60.0, sao2_pct=83.4, spo2_pct=None),
-        record("STRONG", pao2_mmhg=60.0, sao2_pct=78.5, spo2_pct=None),
-        record("HIGH_SIDE", pao2_mmhg=60.0, sao2_pct=97.1, spo2_pct=None),
-        record("CALCULATED", pao2_mmhg=60.0, sao2_pct=80.0, sao2_is_calculated=True, spo2_pct=None),
+        record("INSIDE", sao2_pct=83.6, **co_ox),
+        record("FIRE", sao2_pct=83.4, **co_ox),
+        record("STRONG", sao2_pct=78.5, **co_ox),
+        record("HIGH_SIDE", sao2_pct=97.1, **co_ox),
+        record("CALCULATED", sao2_pct=80.0, sao2_is_calculated=True, **co_ox),
         # fetal haemoglobin: a newborn's curve sits left of the adult one (out of the adult check)
-        record("NEONATE", pao2_mmhg=60.0, sao2_pct=97.1, spo2_pct=None, age_years=0.02),
+        record("NEONATE", sao2_pct=97.1, age_years=0.02, **co_ox),
         # carboxyhaemoglobin 20 %: FO2Hb 72 % is functional 90 % (domain notes section 5), and raised COHb
         # moves the curve: not checked
         record("COHB", pao2_mmhg=60.0, sao2_pct=72.0, cohb_pct=20.0, spo2_pct=None),
+        # neither COHb nor MetHb reported: a smoker's FO2Hb may sit 8 % of the saturation lower (COHb of heavy
+        # smokers, from memory): 79.0 is inside 83.52 - 0.08 x 79.0 = 77.2
+        record("UNREPORTED", pao2_mmhg=60.0, sao2_pct=79.0, spo2_pct=None),
     ]
     con = evaluate(tmp_path, rows)
     assert flagged(con, "sao2_off_dissociation_curve") == {"FIRE": "medium", "STRONG": "high", "HIGH_SIDE": "medium"}
@@ -127,7 +132,6 @@ def test_sao2_off_dissociation_curve(tmp_path):
     assert status_of(con)["STRONG"] == "caution"
     (functional,) = con.execute("select sao2_functional_pct from derived where sample_id = 'COHB'").fetchall()[0]
     assert functional == pytest.approx(90.0)
-
 
 def test_suspected_venous_sample_needs_strong_evidence(tmp_path):
     # Venous PO2 is 20-50 mmHg (common practice). Strong evidence: PO2 < 40 with saturation < 75 % while SpO2 >= 94,
@@ -348,8 +352,11 @@ def test_decimal_slip(tmp_path):
         record("PCO2", paco2_mmhg=400.0),
         record("SMALL_PO2", pao2_mmhg=8.45, sao2_pct=96.3),
         record("HIGH_BUT_POSSIBLE", o2_device="invasive_ventilation", fio2=1.0, pao2_mmhg=600.0, sao2_pct=None),
-        record("UNDER_DOCUMENTED", pao2_mmhg=400.0, sao2_pct=None),
-    ]  # room air charted; could be FiO2 0.8
+        record("UNDER_DOCUMENTED", pao2_mmhg=400.0, sao2_pct=None),  # room air charted; could be FiO2 0.8
+        # carbon monoxide on a reservoir mask: PaO2 540 with FO2Hb 72 % is no slip (COHb 25 % shifts the curve)
+        record("CARBON_MONOXIDE", o2_device="reservoir_mask", o2_flow_l_min=15.0, fio2=0.75, pao2_mmhg=540.0,
+               sao2_pct=72.0, cohb_pct=25.0),
+    ]
     con = evaluate(tmp_path, rows)
     assert set(flagged(con, "decimal_slip")) == {"PO2", "PO2_NO_SAT", "PCO2", "SMALL_PO2"}
 

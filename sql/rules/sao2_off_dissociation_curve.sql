@@ -4,19 +4,32 @@
 -- few mmHg) and a tolerance for the equation and the co-oximeter is added. Adults (and records
 -- of unknown age) only: fetal haemoglobin moves a newborn's curve; not applied when
 -- carboxy- or methaemoglobin is raised (they shift the curve), nor on the flat part.
--- The saturation compared is the functional one (derived.sao2_functional_pct).
-with banded as (
+-- The saturation compared is the functional one (derived.sao2_functional_pct); when neither
+-- COHb nor MetHb is reported, the band's lower end allows $unreported_dyshaemoglobin_pct of
+-- unreported carboxyhaemoglobin (a smoker's oxyhaemoglobin fraction sits that far below).
+with inputs as (
+    select
+        *,
+        -- without COHb and MetHb the oxyhaemoglobin fraction of a smoker sits below the functional
+        -- saturation by up to this many points
+        case when cohb_pct is null and methb_pct is null
+             then $unreported_dyshaemoglobin_pct * sao2_functional_pct / 100.0 else 0.0 end as unreported_allowance
+    from rule_input
+),
+banded as (
     select
         *,
         saturation_with_p50_shift_pct(pao2_mmhg, $p50_shift_mmhg, ph := coalesce(ph, 7.40),
-                                      base_excess := coalesce(base_excess_mmol_l, 0.0)) - $tolerance_pct as band_low,
+                                      base_excess := coalesce(base_excess_mmol_l, 0.0)) - $tolerance_pct
+            - unreported_allowance as band_low,
         saturation_with_p50_shift_pct(pao2_mmhg, -$p50_shift_mmhg, ph := coalesce(ph, 7.40),
                                       base_excess := coalesce(base_excess_mmol_l, 0.0)) + $tolerance_pct as band_high,
         saturation_with_p50_shift_pct(pao2_mmhg, 2 * $p50_shift_mmhg, ph := coalesce(ph, 7.40),
-                                      base_excess := coalesce(base_excess_mmol_l, 0.0)) - $tolerance_pct as wide_low,
+                                      base_excess := coalesce(base_excess_mmol_l, 0.0)) - $tolerance_pct
+            - unreported_allowance as wide_low,
         saturation_with_p50_shift_pct(pao2_mmhg, -2 * $p50_shift_mmhg, ph := coalesce(ph, 7.40),
                                       base_excess := coalesce(base_excess_mmol_l, 0.0)) + $tolerance_pct as wide_high
-    from rule_input
+    from inputs
     where sao2_functional_pct is not null
       and age_group in ('adult', 'unknown')
       and coalesce(cohb_pct, 0) + coalesce(methb_pct, 0) <= $dyshaemoglobin_max_pct
