@@ -7,8 +7,9 @@ per unit and period counts, ``02_audit_layer_update.sql``) that a nightly run up
 its own samples only; every later step reads those small tables, so the stage costs what
 the new data touches, not what the store holds. Counts pass through ``audit_cell``, where small counts are hidden
 (primary suppression) and then, step by step, one more cell in every line that would let
-a hidden count be recovered from a total (complementary suppression), before any
-published table reads them.
+a hidden count be recovered from a total (complementary suppression), and one more cell
+wherever several totals together would still give a hidden count away (found by linear
+algebra over the lines' sums), before any published table reads them.
 """
 
 from __future__ import annotations
@@ -17,6 +18,7 @@ import hashlib
 import json
 
 import duckdb
+import numpy as np
 
 from pipeline.config import SiteConfig
 from pipeline.errors import StorageError
@@ -46,6 +48,7 @@ _WORK_FILES = (
     "audit/11_audit_line.sql",
 )
 _STEP_FILE = "audit/12_audit_complementary_step.sql"
+_DETERMINED_STEP_FILE = "audit/12_audit_determined_step.sql"
 _PUBLISH_FILES = (
     "audit/13_audit_period.sql",
     "audit/20_audit_volume.sql",
@@ -68,6 +71,7 @@ _TEMP_TABLES = (
     "audit_cell",
     "audit_line",
     "audit_period",
+    "audit_determined",
 )
 
 # Aggregate tables fit for people without access to row-level data (small cells suppressed).
@@ -123,6 +127,82 @@ def suppress_complementary(con: duckdb.DuckDBPyConnection) -> int:
         if changed == 0:
             return step
     raise RuntimeError(f"complementary suppression did not settle in {MAX_SUPPRESSION_STEPS} steps")
+
+
+def determined_cells(con: duckdb.DuckDBPyConnection) -> dict[int, list[int]]:
+    """The hidden cells of ``audit_cell`` whose value follows exactly from the shown cells and the sums of
+    ``audit_line`` taken together, each with the hidden cells of its block (those linked to it by lines).
+
+    Each line says total - sum(parts) = 0; with the shown cells moved to the right-hand side it is one
+    equation in the hidden cells. A hidden cell is determined when every solution of the homogeneous system
+    gives it the same value, that is when its coordinate is zero in every null-space vector. Cells linked by
+    no line fall into independent blocks, solved one at a time (singular value decomposition, numpy).
+    """
+    members = con.execute(
+        "select l.line_id, l.cell_id, l.is_total from audit_line as l "
+        "join audit_cell as c on c.cell_id = l.cell_id where c.hidden order by l.line_id, l.cell_id"
+    ).fetchall()
+    equations: dict[int, list[tuple[int, float]]] = {}
+    for line_id, cell_id, is_total in members:
+        equations.setdefault(line_id, []).append((cell_id, 1.0 if is_total else -1.0))
+    parent: dict[int, int] = {}
+
+    def root(cell: int) -> int:
+        parent.setdefault(cell, cell)
+        while parent[cell] != cell:
+            parent[cell] = parent[parent[cell]]
+            cell = parent[cell]
+        return cell
+
+    for terms in equations.values():
+        first = root(terms[0][0])
+        for cell, _ in terms[1:]:
+            parent[root(cell)] = first
+    blocks: dict[int, list[list[tuple[int, float]]]] = {}
+    for terms in equations.values():
+        blocks.setdefault(root(terms[0][0]), []).append(terms)
+    determined: dict[int, list[int]] = {}
+    for block in blocks.values():
+        cells = sorted({cell for terms in block for cell, _ in terms})
+        column = {cell: j for j, cell in enumerate(cells)}
+        matrix = np.zeros((len(block), len(cells)))
+        for row, terms in enumerate(block):
+            for cell, coefficient in terms:
+                matrix[row, column[cell]] += coefficient
+        _, singular, vt = np.linalg.svd(matrix, full_matrices=True)
+        rank = int((singular > 1e-9 * max(float(singular.max(initial=0.0)), 1.0)).sum())
+        null_space = vt[rank:]
+        for cell in cells:
+            if null_space.shape[0] == 0 or float(np.abs(null_space[:, column[cell]]).max()) < 1e-9:
+                determined[cell] = cells
+    return determined
+
+
+def suppress_determined(con: duckdb.DuckDBPyConnection) -> int:
+    """Hide one more cell beside every hidden cell that several sums together give away, repeat the
+    complementary step, and search again until no hidden cell is determined; return the rounds taken.
+
+    When every line of a determined cell is hidden throughout, the partner is sought in the lines of the
+    other hidden cells of its block; when those too are hidden throughout, no shown count is left to give
+    anything away, and the search stops.
+    """
+    statement = con.extract_statements(read_sql(_DETERMINED_STEP_FILE))[0]
+    con.execute("create or replace temp table audit_determined (cell_id bigint)")
+    for step in range(1, MAX_SUPPRESSION_STEPS + 1):
+        determined = determined_cells(con)
+        if not determined:
+            return step
+        changed = 0
+        for cells in (sorted(determined), sorted({c for block in determined.values() for c in block})):
+            con.execute("delete from audit_determined")
+            con.executemany("insert into audit_determined values (?)", [[cell] for cell in cells])
+            changed = con.execute(statement.query).fetchall()[0][0]
+            if changed:
+                break
+        if not changed:
+            return step
+        suppress_complementary(con)
+    raise RuntimeError(f"suppression against combined sums did not settle in {MAX_SUPPRESSION_STEPS} steps")
 
 
 def layer_sha256(config: SiteConfig) -> str:
@@ -182,6 +262,7 @@ def build_audit(
         for path in _WORK_FILES:
             run_sql(con, path, **params)
         suppress_complementary(con)
+        suppress_determined(con)
         for path in _PUBLISH_FILES:
             run_sql(con, path, **params)
         for table in _TEMP_TABLES:

@@ -556,8 +556,10 @@ def _definitions(config: SiteConfig, derive: dict[str, Any]) -> list[tuple[str, 
             "policy: no cell 1-10 shown or derivable; threshold configurable), nor a numerator whose "
             "denominator minus numerator is that small, nor any rate, interval or limit derived from a hidden "
             "count. Complementary suppression then hides one more count in every unit row, period column and "
-            "sum (status and exclusion splits, P/F bands) that would otherwise let a hidden count be recovered "
-            "from its total. Hidden cells show * here and 'suppressed' in CSV and Excel; 0 is a real zero.",
+            "sum (status, exclusion, sample-type, age-group and oxygen-documentation splits, P/F bands) that would "
+            "otherwise let a hidden count be recovered from its total, and more counts wherever several sums taken "
+            "together would still give a hidden count away (checked by linear algebra over every published sum). "
+            "Hidden cells show * here and 'suppressed' in CSV and Excel; 0 is a real zero.",
         ),
         (
             "Reporting window",

@@ -21,7 +21,7 @@ from statsmodels.stats.proportion import proportion_confint
 
 from pipeline.audit_settings import AuditSettings, parse_audit_settings
 from pipeline.errors import ConfigError
-from pipeline.sql_files import install_macros
+from pipeline.sql_files import install_macros, run_sql
 from synthetic_data import generate
 from tests.audit_store import (
     JAN,
@@ -664,8 +664,38 @@ def hidden(row: dict[str, Any], column: str) -> bool:
     return column in (row["suppressed_columns"] or "").split(", ")
 
 
-def published_lines(con: duckdb.DuckDBPyConnection) -> list[tuple[str, list[tuple[Any, str]]]]:
-    """Every sum relation among published cells: (description, [(cell key, column)...]) with the total first."""
+# What each rate counts, from the measure definitions (sql/audit/05_audit_measure.sql): a reader who matches the
+# definitions knows that two rates share a denominator, or that one rate's numerator is another's denominator.
+RATE_COUNTS = {
+    "fio2_device_documented": ("fio2_device_documented", "arterial"),
+    "fio2_device_mismatch": ("fio2_device_mismatch", "fio2_device_documented"),
+    "oxygen_status_unknown": ("oxygen_unknown", "oxygen_assessed"),
+    "undocumented_oxygen": ("undocumented_oxygen", "no_oxygen_documented"),
+    "hypoxaemia": ("hypoxaemic", "oxygen_assessed"),
+    "above_target_on_oxygen": ("above_target_on_oxygen", "on_oxygen"),
+    "hyperoxaemia_on_oxygen": ("hyperoxaemic_on_oxygen", "on_oxygen"),
+    "aa_above_age_limit": ("aa_above_limit", "aa_assessed"),
+}
+
+
+def count_key(table: str, column: str, r: dict[str, Any]) -> tuple[str, str, str]:
+    """What a published count is, wherever it is shown: the same count in several tables or rows (the samples of
+    a unit and period in the volume, age-group and flag tables; a P/F denominator on every band's row; a shared
+    rate denominator) is one unknown to a reader, not several."""
+    if table == "audit_rates":
+        what = RATE_COUNTS[r["measure"]][0 if column == "numerator" else 1]
+    elif table == "audit_pf_bands":
+        what = f"pf band {r['band']}" if column == "samples_in_band" else "pf_assessed"
+    elif table == "audit_flag_rates":
+        what = f"flag {r['rule_id']}" if column == "flagged_samples" else "samples"
+    else:  # volume and age groups: the column names the count
+        what = column
+    return (what, r["unit"], r["period"])
+
+
+def published_lines(con: duckdb.DuckDBPyConnection) -> list[tuple[str, list[tuple[Any, str, dict[str, Any]]]]]:
+    """Every sum relation among published cells: (description, [(count key, column, row)...]) with the total
+    first."""
     lines = []
     for table, group in GROUP.items():
         rows = frame(con, table).to_dicts()
@@ -680,20 +710,22 @@ def published_lines(con: duckdb.DuckDBPyConnection) -> list[tuple[str, list[tupl
                 by_col.setdefault((*g, r["period"]), []).append(r)
             for name, members in by_row.items():  # one unit across periods; total: all periods
                 members.sort(key=lambda r: not r["all_periods"])
-                lines.append((f"{table}.{column} {name}", [(id(r), column, r) for r in members]))
+                lines.append((f"{table}.{column} {name}", [(count_key(table, column, r), column, r) for r in members]))
             for name, members in by_col.items():  # one period across units; total: all units
                 members.sort(key=lambda r: not r["all_units"])
-                lines.append((f"{table}.{column} {name}", [(id(r), column, r) for r in members]))
+                lines.append((f"{table}.{column} {name}", [(count_key(table, column, r), column, r) for r in members]))
     volume = frame(con, "audit_volume").to_dicts()
     for r in volume:
         for parts in (
             ["samples", "samples_usable", "samples_caution", "samples_excluded"],
             ["samples_excluded", "excluded_sample_type", "excluded_data_quality"],
         ):
-            lines.append((f"volume split {r['unit']} {r['period']} {parts[0]}", [(id(r), c, r) for c in parts]))
+            split = [(count_key("audit_volume", c, r), c, r) for c in parts]
+            lines.append((f"volume split {r['unit']} {r['period']} {parts[0]}", split))
     for r in frame(con, "audit_age_groups").to_dicts():
         parts = ["samples", "adults", "age_unknown", "children", "neonates"]
-        lines.append((f"age groups {r['unit']} {r['period']}", [(id(r), c, r) for c in parts]))
+        members = [(count_key("audit_age_groups", c, r), c, r) for c in parts]
+        lines.append((f"age groups {r['unit']} {r['period']}", members))
     # The oxygenation denominator (hypoxaemia) = no supplemental oxygen documented (undocumented oxygen)
     # + supplemental oxygen documented (above target on oxygen).
     by_measure: dict[tuple, dict[str, dict]] = {}
@@ -701,7 +733,18 @@ def published_lines(con: duckdb.DuckDBPyConnection) -> list[tuple[str, list[tupl
         by_measure.setdefault((r["unit"], r["period"]), {})[r["measure"]] = r
     for key, measures in by_measure.items():
         split = [measures[m] for m in ("hypoxaemia", "undocumented_oxygen", "above_target_on_oxygen")]
-        lines.append((f"oxygen documentation split {key}", [(id(r), "denominator", r) for r in split]))
+        members = [(count_key("audit_rates", "denominator", r), "denominator", r) for r in split]
+        lines.append((f"oxygen documentation split {key}", members))
+    # Samples = labelled arterial or of unknown type (the FiO2/device documentation denominator) + excluded for
+    # their sample type.
+    for r in volume:
+        documented = by_measure[(r["unit"], r["period"])]["fio2_device_documented"]
+        members = [
+            (count_key("audit_volume", "samples", r), "samples", r),
+            (count_key("audit_rates", "denominator", documented), "denominator", documented),
+            (count_key("audit_volume", "excluded_sample_type", r), "excluded_sample_type", r),
+        ]
+        lines.append((f"sample type split {r['unit']} {r['period']}", members))
     bands = frame(con, "audit_pf_bands").to_dicts()
     by_cell: dict[tuple, list] = {}
     for r in bands:
@@ -710,7 +753,8 @@ def published_lines(con: duckdb.DuckDBPyConnection) -> list[tuple[str, list[tupl
         lines.append(
             (
                 f"bands {key}",
-                [(id(members[0]), "samples_with_pf", members[0])] + [(id(r), "samples_in_band", r) for r in members],
+                [(count_key("audit_pf_bands", "samples_with_pf", members[0]), "samples_with_pf", members[0])]
+                + [(count_key("audit_pf_bands", "samples_in_band", r), "samples_in_band", r) for r in members],
             )
         )
     return lines
@@ -747,13 +791,13 @@ def determined_hidden_cells(con: duckdb.DuckDBPyConnection) -> list[str]:
     vector. The system splits into independent blocks (cells linked by shared relations), solved one by one.
     """
     lines = published_lines(con)
-    index: dict[tuple[int, str], int] = {}
+    index: dict[tuple[str, str, str], int] = {}
     equations: list[list[tuple[int, float]]] = []
     for _, members in lines:
         terms = []
         for i, (key, c, r) in enumerate(members):
             if hidden(r, c):
-                terms.append((index.setdefault((key, c), len(index)), 1.0 if i == 0 else -1.0))
+                terms.append((index.setdefault(key, len(index)), 1.0 if i == 0 else -1.0))
         if terms:
             equations.append(terms)
     parent = list(range(len(index)))
@@ -770,7 +814,7 @@ def determined_hidden_cells(con: duckdb.DuckDBPyConnection) -> list[str]:
     blocks: dict[int, list[list[tuple[int, float]]]] = {}
     for terms in equations:
         blocks.setdefault(root(terms[0][0]), []).append(terms)
-    names = {v: f"{c} of row {key}" for (key, c), v in index.items()}
+    names = {v: " ".join(map(str, key)) for key, v in index.items()}
     determined = []
     for block in blocks.values():
         variables = sorted({v for terms in block for v, _ in terms})
@@ -839,6 +883,7 @@ def test_no_raw_identifier_in_audit_tables(hand_store):
 def test_the_checks_catch_primary_suppression_alone(tmp_path, demo_records, monkeypatch):
     # Without the complementary step, hidden counts are recoverable: both checks must notice.
     monkeypatch.setattr("pipeline.audit.suppress_complementary", lambda con: 0)
+    monkeypatch.setattr("pipeline.audit.suppress_determined", lambda con: 0)
     config = audit_config(tmp_path, k=11, period="week")
     con = build_store(tmp_path, demo_records, config)
     audit(con, config)
@@ -846,3 +891,85 @@ def test_the_checks_catch_primary_suppression_alone(tmp_path, demo_records, monk
     with pytest.raises(AssertionError, match="recoverable"):
         check_suppression(con, 11)
     con.close()
+
+
+# A unit x period table whose hidden cells leave no line with exactly one hidden cell, yet one hidden cell is
+# recoverable: units A and C hide the same two periods (P2, P4), so P2 + P4 of A is known, and with A's total
+# so is A's third hidden cell, P3. Units K and S hide P1 and P3.
+BRIDGE_HIDDEN = {("A", 2), ("A", 3), ("A", 4), ("C", 2), ("C", 4), ("K", 1), ("K", 3), ("S", 1), ("S", 3)}
+
+
+def bridge_store() -> duckdb.DuckDBPyConnection:
+    """audit_cell and audit_line for BRIDGE_HIDDEN: every inner count 20 (or 3 where hidden), totals shown."""
+    con = duckdb.connect()
+    install_macros(con)
+    con.execute("create temp table audit_partition (partition_id varchar, family varchar, role varchar)")
+    units, periods = ["A", "C", "K", "S"], [1, 2, 3, 4, 5]
+    inner = {(u, p): 3 if (u, p) in BRIDGE_HIDDEN else 20 for u in units for p in periods}
+    cells = [(u, p, v, (u, p) in BRIDGE_HIDDEN) for (u, p), v in inner.items()]
+    cells += [(u, None, sum(inner[(u, p)] for p in periods), False) for u in units]
+    cells += [(None, p, sum(inner[(u, p)] for u in units), False) for p in periods]
+    cells += [(None, None, sum(inner.values()), False)]
+    con.execute(
+        "create temp table audit_cell (cell_id bigint, family varchar, unit varchar, period_start date, "
+        "value bigint, additive boolean, hidden boolean, hidden_reason varchar)"
+    )
+    con.executemany(
+        "insert into audit_cell values (?, 'samples', ?, ?, ?, true, ?, case when ? then 'small count' end)",
+        [
+            [i + 1, u, None if p is None else datetime(2026, p, 1).date(), v, h, h]
+            for i, (u, p, v, h) in enumerate(cells)
+        ],
+    )
+    run_sql(con, "audit/11_audit_line.sql")
+    return con
+
+
+def bridges(con: duckdb.DuckDBPyConnection) -> list[tuple[str, str]]:
+    """Hidden cells that are bridges of the graph whose nodes are the table's rows and columns (the all-units
+    row and all-periods column included) and whose edges are the hidden cells. In a two-way table with its
+    totals, a hidden cell is exactly determined by the shown ones when, and only when, it lies on no cycle of
+    that graph (the constraints are a network's flow conservation; common practice in disclosure control)."""
+    hidden_cells = con.execute(
+        "select coalesce(unit, 'all'), coalesce(cast(period_start as varchar), 'all') from audit_cell where hidden"
+    ).fetchall()
+    edges = [(f"unit {u}", f"period {p}") for u, p in hidden_cells]
+    found = []
+    for i, (a, b) in enumerate(edges):
+        rest = edges[:i] + edges[i + 1 :]
+        reached, frontier = {a}, [a]
+        while frontier:
+            node = frontier.pop()
+            for x, y in rest:
+                for here, there in ((x, y), (y, x)):
+                    if here == node and there not in reached:
+                        reached.add(there)
+                        frontier.append(there)
+        if b not in reached:
+            found.append((a, b))
+    return found
+
+
+def test_complementary_lines_alone_can_leave_a_count_recoverable_and_the_next_step_closes_it():
+    from pipeline.audit import determined_cells, suppress_complementary, suppress_determined
+
+    con = bridge_store()
+    assert suppress_complementary(con) == 1  # no line with exactly one hidden cell: nothing to add
+    assert bridges(con) == [("unit A", "period 2026-03-01")]  # the graph oracle
+    determined = list(determined_cells(con))  # linear algebra agrees
+    where = con.execute(
+        "select unit, cast(period_start as varchar) from audit_cell where cell_id = ?", [determined[0]]
+    ).fetchall()
+    assert len(determined) == 1 and where == [("A", "2026-03-01")]
+    hidden_before = con.execute("select count(*) from audit_cell where hidden").fetchall()[0][0]
+    suppress_determined(con)
+    assert bridges(con) == [] and determined_cells(con) == {}
+    hidden_after = con.execute("select count(*) from audit_cell where hidden").fetchall()[0][0]
+    assert hidden_before < hidden_after <= hidden_before + 3  # a few cells more, not the table
+    lines = con.execute(
+        "select count(*) from (select l.line_id from audit_line as l join audit_cell as c using (cell_id) "
+        "group by l.line_id having sum(case when c.hidden then 1 else 0 end) = 1)"
+    ).fetchall()[0][0]
+    assert lines == 0
+    con.close()
+
