@@ -260,6 +260,15 @@ def test_wrong_blood_in_tube_needs_two_stable_analytes_or_a_jump_away_and_back(t
     assert status_of(con)["A2"] == "excluded"
 
 
+def test_the_time_allowance_of_a_delta_check_has_a_ceiling(tmp_path):
+    # Hb 14.3 -> 8.7 -> 14.4 over 71 h and 25 h: the time allowance stops at 3 g/dL (catalogue hb_max_change,
+    # common practice: about 1 g/dL per transfused unit), so the limits are 1.22 + 3 and 1.23 + 3 g/dL; the jump of
+    # 5.6 g/dL away and back (neighbours 0.1 apart, within the 1.22 g/dL reference change value) is out of line.
+    rows = series("PF", [("F1", 0, {"hb_g_dl": 14.3}), ("F2", 71, {"hb_g_dl": 8.7}), ("F3", 96, {"hb_g_dl": 14.4})])
+    con = evaluate(tmp_path, rows)
+    assert flagged(con, "wrong_blood_in_tube") == {"F2": "high"}
+
+
 def test_wrong_blood_in_tube_on_one_side_only_is_a_caution_with_complete_evidence(tmp_path):
     # The patient's only two samples differ in Hb and Na beyond their limits: either may be the other patient's.
     rows = series("PE", [("E1", 0, {}), ("E2", 6, {"hb_g_dl": 10.0, "na_mmol_l": 130.0})])
@@ -302,8 +311,13 @@ def test_diluted_sample_from_a_line_flush(tmp_path):
     glucose = {"hb_g_dl": 10.2, "na_mmol_l": 126.0, "cl_mmol_l": 94.0, "glucose_mmol_l": 30.0}
     rows += series("GL", [("G1", 0, {"hb_g_dl": 12.0, "cl_mmol_l": 104.0, "glucose_mmol_l": 6.0}), ("G2", 2, glucose),
                           ("G3", 4, {"hb_g_dl": 12.0, "cl_mmol_l": 104.0, "glucose_mmol_l": 6.5})])
+    # Away from neighbours that agree (back to where it was a day later), the reference change value suffices:
+    # Hb 9.7 -> 6.3 -> 9.3 (RCV 0.83 g/dL at 9.7), Cl 103 -> 120 -> 103 (RCV 4.46 mmol/L at 103).
+    rows += series("FAR", [("F1", 0, {"hb_g_dl": 9.7, "cl_mmol_l": 103.0}),
+                           ("F2", 0.5, {"hb_g_dl": 6.3, "cl_mmol_l": 120.0, "na_mmol_l": 143.0}),
+                           ("F3", 27.5, {"hb_g_dl": 9.3, "cl_mmol_l": 103.0})])
     con = evaluate(tmp_path, rows)
-    assert flagged(con, "diluted_sample") == {"S2": "high", "G2": "high"}
+    assert flagged(con, "diluted_sample") == {"S2": "high", "G2": "high", "F2": "high"}
     assert flagged(con, "wrong_blood_in_tube") == {}
     message = con.execute("select message from flags where sample_id = 'S2' and rule_id = 'diluted_sample'"
                           ).fetchall()[0][0]
@@ -351,6 +365,10 @@ def test_decimal_slip(tmp_path):
         record("PO2_NO_SAT", pao2_mmhg=845.0, sao2_pct=None),
         record("PCO2", paco2_mmhg=400.0),
         record("SMALL_PO2", pao2_mmhg=8.45, sao2_pct=96.3),
+        # PaO2 22.5 typed for 225: the measured SaO2 99 % lies 60 points above its curve value (about 39 %,
+        # Severinghaus) and fits 225 mmHg (99.3 %); a real PaO2 of 35 with SaO2 68 % is left alone
+        record("LOW_PO2", o2_device="invasive_ventilation", fio2=0.5, pao2_mmhg=22.5, sao2_pct=99.0),
+        record("REAL_LOW_PO2", pao2_mmhg=35.0, sao2_pct=68.0, spo2_pct=None),
         record("HIGH_BUT_POSSIBLE", o2_device="invasive_ventilation", fio2=1.0, pao2_mmhg=600.0, sao2_pct=None),
         record("UNDER_DOCUMENTED", pao2_mmhg=400.0, sao2_pct=None),  # room air charted; could be FiO2 0.8
         # carbon monoxide on a reservoir mask: PaO2 540 with FO2Hb 72 % is no slip (COHb 25 % shifts the curve)
@@ -358,7 +376,7 @@ def test_decimal_slip(tmp_path):
                sao2_pct=72.0, cohb_pct=25.0),
     ]
     con = evaluate(tmp_path, rows)
-    assert set(flagged(con, "decimal_slip")) == {"PO2", "PO2_NO_SAT", "PCO2", "SMALL_PO2"}
+    assert set(flagged(con, "decimal_slip")) == {"PO2", "PO2_NO_SAT", "PCO2", "SMALL_PO2", "LOW_PO2"}
 
 
 def test_corrected_after_release(tmp_path):

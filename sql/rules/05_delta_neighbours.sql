@@ -20,13 +20,16 @@ with patients as (
 analytes as (
     select * from (
         values
-            ('hb', 'Hb', 'g/dL', 'haemoglobin', true, $hb_cva_pct, $hb_cvi_pct, $hb_rate_per_hour),
-            ('na', 'Na', 'mmol/L', 'sodium_chloride', true, $na_cva_pct, $na_cvi_pct, $na_rate_per_hour),
-            ('cl', 'Cl', 'mmol/L', 'sodium_chloride', true, $cl_cva_pct, $cl_cvi_pct, $cl_rate_per_hour),
-            ('k', 'K', 'mmol/L', 'potassium', false, $k_cva_pct, $k_cvi_pct, $k_rate_per_hour),
+            ('hb', 'Hb', 'g/dL', 'haemoglobin', true, $hb_cva_pct, $hb_cvi_pct, $hb_rate_per_hour,
+             $hb_max_change),
+            ('na', 'Na', 'mmol/L', 'sodium_chloride', true, $na_cva_pct, $na_cvi_pct, $na_rate_per_hour,
+             $na_max_change),
+            ('cl', 'Cl', 'mmol/L', 'sodium_chloride', true, $cl_cva_pct, $cl_cvi_pct, $cl_rate_per_hour,
+             $cl_max_change),
+            ('k', 'K', 'mmol/L', 'potassium', false, $k_cva_pct, $k_cvi_pct, $k_rate_per_hour, $k_max_change),
             ('glucose', 'glucose', 'mmol/L', 'glucose', false, $glucose_cva_pct, $glucose_cvi_pct,
-             $glucose_rate_per_hour)
-    ) as a(analyte, label, unit, analyte_group, stable, cva, cvi, rate)
+             $glucose_rate_per_hour, $glucose_max_change)
+    ) as a(analyte, label, unit, analyte_group, stable, cva, cvi, rate, max_change)
 ),
 long as (
     select
@@ -63,7 +66,7 @@ ordered as (
 ),
 windowed as (
     select
-        sample_id, analyte, label, unit, analyte_group, stable, cva, cvi, rate, value,
+        sample_id, analyte, label, unit, analyte_group, stable, cva, cvi, rate, max_change, value,
         case when hours_since_prev <= $window_hours then prev_value end as prev_value,
         case when hours_since_prev <= $window_hours then hours_since_prev end as hours_since_prev,
         case when hours_to_next <= $window_hours then next_value end as next_value,
@@ -83,16 +86,22 @@ select
     next_value is not null as has_next,
     value - prev_value as change_from_prev,
     value - next_value as change_from_next,
-    delta_check_limit(prev_value, cva, cvi, rate, hours_since_prev) as limit_prev,
-    delta_check_limit(next_value, cva, cvi, rate, hours_to_next) as limit_next,
-    -- the two neighbours agree: the patient's level before and after is the same
-    abs(next_value - prev_value)
-        <= delta_check_limit(prev_value, cva, cvi, rate, hours_since_prev + hours_to_next) as neighbours_agree,
+    -- the time allowance grows with the hours between the samples up to max_change (treatment moves
+    -- a value so far and no further within the window)
+    delta_check_limit(prev_value, cva, cvi, rate, least(hours_since_prev, max_change / rate)) as limit_prev,
+    delta_check_limit(next_value, cva, cvi, rate, least(hours_to_next, max_change / rate)) as limit_next,
+    delta_check_limit(prev_value, cva, cvi, 0.0, 0.0) as rcv_prev,
+    delta_check_limit(next_value, cva, cvi, 0.0, 0.0) as rcv_next,
+    -- the two neighbours agree: the patient's level before and after is the same, within the
+    -- reference change value alone
+    abs(next_value - prev_value) <= delta_check_limit(prev_value, cva, cvi, 0.0, 0.0) as neighbours_agree,
     -- the only neighbour is itself in line with the one beyond it (so the sample after a wrong
     -- one, back at the patient's level, is not blamed)
-    coalesce(abs(prev_value - prev2_value) <= delta_check_limit(prev2_value, cva, cvi, rate, hours_prev_to_prev2), true)
+    coalesce(abs(prev_value - prev2_value)
+             <= delta_check_limit(prev2_value, cva, cvi, rate, least(hours_prev_to_prev2, max_change / rate)), true)
         as prev_in_line,
-    coalesce(abs(next_value - next2_value) <= delta_check_limit(next2_value, cva, cvi, rate, hours_next_to_next2), true)
+    coalesce(abs(next_value - next2_value)
+             <= delta_check_limit(next2_value, cva, cvi, rate, least(hours_next_to_next2, max_change / rate)), true)
         as next_in_line,
     -- the evidence in words, naming only the neighbours that exist
     label || ' ' || printf(case when unit = 'g/dL' then '%.1f %s' else '%.0f %s' end, value, unit)
@@ -128,8 +137,12 @@ with per_analyte as (
         coalesce(case when has_prev and not has_next then abs(change_from_prev) > limit_prev and prev_in_line
                       when has_next and not has_prev then abs(change_from_next) > limit_next and next_in_line
                  end, false) as moved_one_sided,
-        -- direction against the neighbours that exist (-1 down, +1 up, 0 within limits)
+        -- direction against the neighbours that exist (-1 down, +1 up, 0 within limits); away from
+        -- neighbours that agree with each other (and back), the reference change value suffices
         case
+            when has_prev and has_next and neighbours_agree then
+                case when change_from_prev < -rcv_prev and change_from_next < -rcv_next then -1
+                     when change_from_prev > rcv_prev and change_from_next > rcv_next then 1 else 0 end
             when has_prev and has_next then
                 case when change_from_prev < -limit_prev and change_from_next < -limit_next then -1
                      when change_from_prev > limit_prev and change_from_next > limit_next then 1 else 0 end

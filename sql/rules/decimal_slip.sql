@@ -27,7 +27,11 @@ candidates as (
         case when saturation_for_check is not null
              then abs(saturation_for_check - predicted_sao2_pct(pao2_mmhg * 10.0, ph := coalesce(ph, 7.4)))
                   <= $tolerance_sat_pct
-             else pao2_mmhg * 10.0 <= pao2_limit_patient_temp_mmhg end as pao2_fits_multiplied
+             else pao2_mmhg * 10.0 <= pao2_limit_patient_temp_mmhg end as pao2_fits_multiplied,
+        -- a low PaO2 that the measured saturation flatly contradicts (PaO2 22.5 with SaO2 99 %)
+        saturation_for_check is not null and age_group in ('adult', 'unknown')
+            and saturation_for_check - predicted_sao2_pct(pao2_mmhg, ph := coalesce(ph, 7.4)) > $contradiction_pct
+            as low_pao2_contradicted
     from inputs
 )
 select
@@ -41,6 +45,9 @@ select
             then printf('PaCO2 %.1f mmHg fits pH and HCO3 only as %.0f mmHg (decimal point shifted)', paco2_mmhg, paco2_mmhg * 10)
         when pao2_mmhg < 20 and pao2_fits_multiplied
             then printf('PaO2 %.1f mmHg is only plausible as %.0f mmHg (decimal point shifted)', pao2_mmhg, pao2_mmhg * 10)
+        when pao2_mmhg < $low_pao2_mmhg and pao2_fits_multiplied and low_pao2_contradicted
+            then printf('PaO2 %.1f mmHg contradicts the measured SaO2 of %.0f %%; %.0f mmHg fits it (decimal point shifted)',
+                        pao2_mmhg, saturation_for_check, pao2_mmhg * 10)
         else printf('PaO2 %.0f mmHg exceeds the alveolar limit of %.0f mmHg; %.1f mmHg would fit (decimal point shifted)',
                     pao2_mmhg, pao2_limit_patient_temp_mmhg, pao2_mmhg / 10)
     end
@@ -51,4 +58,5 @@ from candidates
 where (paco2_mmhg > 100 and paco2_fits_divided)
    or (paco2_mmhg < 15 and paco2_fits_multiplied)
    or (pao2_mmhg < 20 and pao2_fits_multiplied)
+   or (pao2_mmhg < $low_pao2_mmhg and pao2_fits_multiplied and low_pao2_contradicted)
    or (pao2_excess_over_limit_mmhg > 0 and pao2_mmhg / 10.0 >= 20 and pao2_fits_divided);
