@@ -321,7 +321,25 @@ def test_diluted_sample_from_a_line_flush(tmp_path):
     assert flagged(con, "wrong_blood_in_tube") == {}
     message = con.execute("select message from flags where sample_id = 'S2' and rule_id = 'diluted_sample'"
                           ).fetchall()[0][0]
-    assert message.startswith("possible sample diluted by a line flush or infusion: Cl 115 mmol/L against 104")
+    assert message.startswith("possible sample diluted by a line flush or infusion (about 20 % flush fluid): "
+                              "Cl 115 mmol/L against 104 mmol/L 2 h earlier")
+
+
+def test_dilution_needs_one_share_of_flush_and_a_return(tmp_path):
+    # Mixing with saline moves Hb and Cl by one share: Hb 12 -> 9.6 is a 20 % share, Cl 104 -> 115 a 22 % share
+    # of the way to 154 (common practice: composition of 0.9 % saline); tolerance 0.08.
+    # Saline resuscitation lowers Hb (25 %) far more than it raises chloride (10 %): not a diluted sample.
+    resuscitated = {"hb_g_dl": 9.0, "cl_mmol_l": 109.0}
+    rows = series("RS", [("R1", 0, {"hb_g_dl": 12.0, "cl_mmol_l": 104.0}), ("R2", 2, resuscitated),
+                         ("R3", 4, {"hb_g_dl": 12.0, "cl_mmol_l": 104.0})])
+    # the same change that lasts (the next sample stays at the new level) is a clinical course
+    lasting = {"hb_g_dl": 9.6, "cl_mmol_l": 115.0}
+    rows += series("LA", [("L1", 0, {"hb_g_dl": 12.0, "cl_mmol_l": 104.0}), ("L2", 2, lasting), ("L3", 4, lasting)])
+    # the newest sample, with nothing after it yet: a medium caution
+    rows += series("NW", [("W1", 0, {"hb_g_dl": 12.0, "cl_mmol_l": 104.0}), ("W2", 2, lasting)])
+    con = evaluate(tmp_path, rows)
+    assert flagged(con, "diluted_sample") == {"W2": "medium"}
+    assert status_of(con)["W2"] == "caution"
 
 
 def test_delayed_analysis(tmp_path):

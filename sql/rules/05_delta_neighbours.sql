@@ -115,11 +115,14 @@ select
 from windowed;
 
 -- Grain of delta_summary and delta_judged: one row per sample in scope with at least one
--- compared analyte; delta_judged adds
--- the patterns the three rules report:
---   dilution_pattern     Hb down against the neighbours with chloride up and sodium not down
---                        (0.9 % saline: Na and Cl 154 mmol/L) or glucose up with sodium or chloride
---                        down (5 % glucose): a sample diluted by a line flush.
+-- compared analyte; delta_judged adds the patterns the three rules report:
+--   dilution_pattern     against the nearer neighbour, Hb down beyond its reference change
+--                        value with chloride up (sodium not down) or with glucose up and sodium
+--                        down, by a share of flush fluid that agrees within $mixing_tolerance
+--                        between the two analytes (mixing with 0.9 % saline, Na and Cl 154 mmol/L,
+--                        or 5 % glucose, 278 mmol/L, moves every analyte by the same share); where
+--                        the other neighbour exists, Hb must be back up there (a lasting change, as
+--                        after saline resuscitation, is not a diluted sample).
 --   wrong_blood_severity 'high' when both stable groups (Hb, Na/Cl) are out of line with the
 --                        neighbours on both sides, or one stable group jumps away and comes back
 --                        to where it was (the neighbours agree); 'medium' when both stable groups
@@ -137,23 +140,17 @@ with per_analyte as (
         coalesce(case when has_prev and not has_next then abs(change_from_prev) > limit_prev and prev_in_line
                       when has_next and not has_prev then abs(change_from_next) > limit_next and next_in_line
                  end, false) as moved_one_sided,
-        -- direction against the neighbours that exist (-1 down, +1 up, 0 within limits); away from
-        -- neighbours that agree with each other (and back), the reference change value suffices
-        case
-            when has_prev and has_next and neighbours_agree then
-                case when change_from_prev < -rcv_prev and change_from_next < -rcv_next then -1
-                     when change_from_prev > rcv_prev and change_from_next > rcv_next then 1 else 0 end
-            when has_prev and has_next then
-                case when change_from_prev < -limit_prev and change_from_next < -limit_next then -1
-                     when change_from_prev > limit_prev and change_from_next > limit_next then 1 else 0 end
-            when has_prev then
-                case when change_from_prev < -limit_prev then -1 when change_from_prev > limit_prev then 1 else 0 end
-            when has_next then
-                case when change_from_next < -limit_next then -1 when change_from_next > limit_next then 1 else 0 end
-            else 0
-        end as direction,
+        -- the nearer neighbour in time, and whether the sample differs from the other one too (same
+        -- direction, beyond the reference change value): NULL when there is no other one
+        case when has_prev and (not has_next or hours_since_prev <= hours_to_next) then prev_value else next_value end
+            as near_value,
+        case when has_prev and has_next then
+            case when hours_since_prev <= hours_to_next
+                 then sign(change_from_next) = sign(change_from_prev) and abs(change_from_next) > rcv_next
+                 else sign(change_from_prev) = sign(change_from_next) and abs(change_from_prev) > rcv_prev end
+        end as far_differs_too,
         -- beyond the reference change value alone (no time allowance) from the previous result
-        coalesce(abs(change_from_prev) > delta_check_limit(prev_value, cva, cvi, 0.0, 0.0), false) as changed_from_prev
+        coalesce(abs(change_from_prev) > rcv_prev, false) as changed_from_prev
     from delta_values
 )
 select
@@ -163,18 +160,27 @@ select
     count(distinct analyte_group) filter (where out_of_line and stable and neighbours_agree) as stable_groups_away_and_back,
     count(distinct analyte_group) filter (where moved_one_sided) as groups_moved_one_sided,
     count(distinct analyte_group) filter (where moved_one_sided and stable) as stable_groups_moved_one_sided,
-    coalesce(max(direction) filter (where analyte = 'hb'), 0) as hb_direction,
-    coalesce(max(direction) filter (where analyte = 'na'), 0) as na_direction,
-    coalesce(max(direction) filter (where analyte = 'cl'), 0) as cl_direction,
-    coalesce(max(direction) filter (where analyte = 'glucose'), 0) as glucose_direction,
+    -- each analyte against its nearer neighbour, with the reference change value at that level
+    max(value) filter (where analyte = 'hb') as hb,
+    max(near_value) filter (where analyte = 'hb') as hb_near,
+    max(delta_check_limit(near_value, cva, cvi, 0.0, 0.0)) filter (where analyte = 'hb') as hb_rcv,
+    bool_and(far_differs_too) filter (where analyte = 'hb') as hb_far_differs_too,
+    max(value) filter (where analyte = 'na') as na,
+    max(near_value) filter (where analyte = 'na') as na_near,
+    max(delta_check_limit(near_value, cva, cvi, 0.0, 0.0)) filter (where analyte = 'na') as na_rcv,
+    max(value) filter (where analyte = 'cl') as cl,
+    max(near_value) filter (where analyte = 'cl') as cl_near,
+    max(delta_check_limit(near_value, cva, cvi, 0.0, 0.0)) filter (where analyte = 'cl') as cl_rcv,
+    max(value) filter (where analyte = 'glucose') as glucose,
+    max(near_value) filter (where analyte = 'glucose') as glucose_near,
+    max(delta_check_limit(near_value, cva, cvi, 0.0, 0.0)) filter (where analyte = 'glucose') as glucose_rcv,
     bool_or(has_prev and has_next) as two_sided,
     -- a single stable analyte beyond its reference change value since the previous sample
     max(change_from_prev) filter (where analyte = 'hb' and changed_from_prev) as hb_change,
     max(hours_since_prev) filter (where analyte = 'hb' and changed_from_prev) as hb_hours,
     max(change_from_prev) filter (where analyte = 'na' and changed_from_prev) as na_change,
     max(hours_since_prev) filter (where analyte = 'na' and changed_from_prev) as na_hours,
-    string_agg(words, '; ' order by analyte) filter (where out_of_line or moved_one_sided or direction <> 0)
-        as words_changed,
+    string_agg(words, '; ' order by analyte) filter (where out_of_line or moved_one_sided) as words_changed,
     string_agg(words, '; ' order by analyte) as words_all,
     json_group_object(analyte, json_object('value', value, 'previous', prev_value, 'next', next_value,
                                            'hours_since_previous', round(hours_since_prev, 1),
@@ -185,13 +191,29 @@ from per_analyte
 group by sample_id;
 
 create or replace temp table delta_judged as
-with patterns as (
+with shares as (
     select
         *,
-        hb_direction = -1
-            and ((cl_direction = 1 and na_direction >= 0) or (glucose_direction = 1 and least(na_direction, cl_direction) = -1))
-            as dilution_pattern
+        -- the share of flush fluid each analyte implies, against the nearer neighbour
+        1.0 - hb / nullif(hb_near, 0) as hb_share,
+        (cl - cl_near) / nullif(154.0 - cl_near, 0) as saline_share_from_cl,
+        (na_near - na) / nullif(na_near, 0) as glucose_share_from_na
     from delta_summary
+),
+patterns as (
+    select
+        *,
+        coalesce(
+            hb < hb_near - hb_rcv
+            and coalesce(hb_far_differs_too, true)
+            and (
+                (cl > cl_near + cl_rcv and na >= na_near - na_rcv
+                 and abs(hb_share - saline_share_from_cl) <= $mixing_tolerance)
+                or (glucose > glucose_near + glucose_rcv and na < na_near - na_rcv
+                    and abs(hb_share - glucose_share_from_na) <= $mixing_tolerance)
+            ), false) as dilution_pattern,
+        hb_far_differs_too is not null as dilution_two_sided
+    from shares
 )
 select
     *,
