@@ -15,6 +15,7 @@
 --   $gas_temperature_min_c, $gas_temperature_max_c   band in which 37 C gases are corrected to the
 --                                      patient's temperature for the alveolar comparison
 --   $alveolar_tolerance_mmhg, $alveolar_tolerance_fraction   tolerance above the R = 1 alveolar bound
+--   $dyshaemoglobin_max_pct           COHb + MetHb above which a saturation is not read on the curve
 -- Temp table unit_oxygen_targets (unit, unit_type, target_low_pct, target_high_pct, assessed): a
 -- site's target range per unit type (pipeline/derive.py fills it from the site configuration).
 create or replace temp table derived_batch as
@@ -146,6 +147,11 @@ metrics as (
             as sao2_residual_pct,
         case when sao2_pct is not null and not coalesce(sao2_is_calculated, false)
              then functional_saturation_pct(sao2_pct, cohb_pct, methb_pct) end as sao2_functional_pct,
+        -- the measured saturation that may be read against the standard curve: not when carboxy- or
+        -- methaemoglobin is raised (they shift the curve)
+        case when sao2_pct is not null and not coalesce(sao2_is_calculated, false)
+                  and coalesce(cohb_pct, 0.0) + coalesce(methb_pct, 0.0) <= $dyshaemoglobin_max_pct
+             then functional_saturation_pct(sao2_pct, cohb_pct, methb_pct) end as sao2_curve_pct,
         henderson_hasselbalch_ph(paco2_mmhg, hco3_mmol_l) as ph_predicted,
         acid_base_residual(ph, paco2_mmhg, hco3_mmol_l) as acid_base_residual,
         winters_expected_paco2_mmhg(hco3_mmol_l) as winters_expected_paco2_mmhg,
@@ -229,6 +235,7 @@ select
     case when is_arterial_or_unknown then predicted_sao2_pct end as predicted_sao2_pct,
     case when is_arterial_or_unknown then sao2_residual_pct end as sao2_residual_pct,
     case when is_arterial_or_unknown then sao2_functional_pct end as sao2_functional_pct,
+    case when is_arterial_or_unknown then sao2_curve_pct end as sao2_curve_pct,
     ph_predicted,
     acid_base_residual,
     winters_expected_paco2_mmhg,

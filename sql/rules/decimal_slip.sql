@@ -1,14 +1,11 @@
 -- A value ten times too large or too small: impossible as stored, consistent after moving
 -- the decimal point (Henderson-Hasselbalch for PCO2; measured SaO2, or the alveolar limit
 -- when SaO2 is not measured, for PO2). The saturation is the measured functional one
--- (derived.sao2_functional_pct), and only when carboxy- and methaemoglobin are not raised (they
+-- (derived.sao2_curve_pct), and only when carboxy- and methaemoglobin are not raised (they
 -- shift the curve, and a patient with carbon monoxide poisoning on a reservoir mask has a high
 -- PaO2 with a low oxyhaemoglobin fraction that must not read as a slip).
 with inputs as (
-    select
-        *,
-        case when coalesce(cohb_pct, 0) + coalesce(methb_pct, 0) <= $dyshaemoglobin_max_pct
-             then sao2_functional_pct end as saturation_for_check
+    select *, sao2_curve_pct as saturation_for_check
     from rule_input
     where is_arterial_or_unknown
 ),
@@ -53,7 +50,8 @@ select
     end
     ) || '; check the value against the analyser printout; do not withdraw a result on this flag alone' as message,
     json_object('paco2_mmhg', paco2_mmhg, 'pao2_mmhg', pao2_mmhg, 'alveolar_po2_limit_mmhg',
-                round(pao2_limit_patient_temp_mmhg, 1), 'sao2_functional_pct', round(saturation_for_check, 1), 'ph', ph, 'hco3_mmol_l', hco3_mmol_l) as evidence
+                round(pao2_limit_patient_temp_mmhg, 1), 'sao2_functional_pct', round(saturation_for_check, 1), 'ph', ph,
+                'hco3_mmol_l', hco3_mmol_l) as evidence
 from candidates
 where (paco2_mmhg > 100 and paco2_fits_divided)
    or (paco2_mmhg < 15 and paco2_fits_multiplied)

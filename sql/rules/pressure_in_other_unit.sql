@@ -3,10 +3,7 @@
 -- SaO2 on the dissociation curve (functional, and only when carboxy- and methaemoglobin are not
 -- raised: see decimal_slip).
 with inputs as (
-    select
-        *,
-        case when coalesce(cohb_pct, 0) + coalesce(methb_pct, 0) <= $dyshaemoglobin_max_pct
-             then sao2_functional_pct end as saturation_for_check
+    select *, sao2_curve_pct as saturation_for_check
     from rule_input
     where is_arterial_or_unknown
 ),
