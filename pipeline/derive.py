@@ -29,7 +29,12 @@ def store_unit_targets(con: duckdb.DuckDBPyConnection, config: SiteConfig) -> No
 
 
 def derive(con: duckdb.DuckDBPyConnection, catalogue: Catalogue, config: SiteConfig) -> None:
-    """Recompute derived metrics for ``scope_samples`` from the catalogue's [derive] definitions."""
+    """Recompute derived metrics for ``scope_samples`` from the catalogue's [derive] definitions.
+
+    A rebuild recreates the table, so a release that adds a derived column needs nothing more
+    than the re-check its changed stage SQL triggers (pipeline.run.analysis_sha256)."""
+    if con.execute("select rebuild from scope_settings").fetchall()[0][0]:
+        con.execute("drop table if exists derived")
     store_unit_targets(con, config)
     run_sql(
         con,

@@ -34,7 +34,7 @@ from pipeline.preflight import check_free_space, check_private_folder
 from pipeline.pseudonym import key_id, load_key
 from pipeline.report import write_outputs
 from pipeline.rules import Catalogue, evaluate_rules, load_catalogue
-from pipeline.sql_files import run_sql
+from pipeline.sql_files import SQL_DIR, run_sql
 from pipeline.store import open_store
 from pipeline.testhooks import pause_point
 
@@ -248,11 +248,18 @@ def _analysis_tables_exist(con: duckdb.DuckDBPyConnection) -> bool:
 
 def analysis_sha256(config: SiteConfig, catalogue: Catalogue) -> str:
     """What the derived metrics and flags depend on besides the records: the effective
-    catalogue (with the site's threshold overrides) and the site's pressure or altitude."""
+    catalogue (with the site's threshold overrides), the site's pressure or altitude, its
+    unit types and targets, and the stage SQL itself (a new release re-checks every sample)."""
+    stage_sql = hashlib.sha256()
+    for folder in ("macros", "derive", "rules"):
+        for path in sorted((SQL_DIR / folder).glob("*.sql")):
+            stage_sql.update(path.name.encode() + b"\0" + path.read_bytes())
     basis = {
         "catalogue": catalogue.sha256,
         "altitude_m": config.altitude_m,
         "barometric_pressure_mmhg": config.barometric_pressure_mmhg,
+        "unit_targets": config.unit_target_rows(),
+        "stage_sql": stage_sql.hexdigest(),
     }
     return hashlib.sha256(json.dumps(basis, sort_keys=True).encode()).hexdigest()
 
@@ -264,7 +271,10 @@ def _rebuild_reason(con: duckdb.DuckDBPyConnection, analysis: str) -> str | None
         "order by analysed_at desc limit 1"
     ).fetchall()
     if last and last[0][0] != analysis:
-        return "the rule catalogue, its thresholds or the site's pressure changed since the last analysis"
+        return (
+            "the rule catalogue, its thresholds, the stage SQL, the site's pressure or its unit targets changed "
+            "since the last analysis"
+        )
     unfinished = con.execute("select count(*) from runs where analysed_at is null and rebuild").fetchall()[0][0]
     if unfinished:
         return "an earlier full re-check did not finish"

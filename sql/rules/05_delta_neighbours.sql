@@ -79,7 +79,8 @@ windowed as (
             as hours_next_to_next2
     from ordered
     semi join scope_samples using (sample_id)
-)
+),
+limits as (
 select
     *,
     prev_value is not null as has_prev,
@@ -102,17 +103,30 @@ select
         as prev_in_line,
     coalesce(abs(next_value - next2_value)
              <= delta_check_limit(next2_value, cva, cvi, rate, least(hours_next_to_next2, max_change / rate)), true)
-        as next_in_line,
-    -- the evidence in words, naming only the neighbours that exist
-    label || ' ' || printf(case when unit = 'g/dL' then '%.1f %s' else '%.0f %s' end, value, unit)
-        || coalesce(printf(case when unit = 'g/dL' then ' against %.1f %s %.0f h earlier'
-                                else ' against %.0f %s %.0f h earlier' end,
-                           prev_value, unit, hours_since_prev), '')
-        || coalesce(printf(case when unit = 'g/dL' then ' %s %.1f %s %.0f h later' else ' %s %.0f %s %.0f h later' end,
-                           case when prev_value is not null then 'and' else 'against' end,
-                           next_value, unit, hours_to_next), '')
-        as words
-from windowed;
+        as next_in_line
+from windowed
+)
+select
+    *,
+    -- two-sided: away from both neighbours in the same direction
+    coalesce(has_prev and has_next and abs(change_from_prev) > limit_prev and abs(change_from_next) > limit_next
+             and sign(change_from_prev) = sign(change_from_next), false) as out_of_line,
+    -- one-sided: away from the only neighbour, which is in line with its own neighbour
+    coalesce(case when has_prev and not has_next then abs(change_from_prev) > limit_prev and prev_in_line
+                  when has_next and not has_prev then abs(change_from_next) > limit_next and next_in_line
+             end, false) as moved_one_sided,
+    -- the nearer neighbour in time, and whether the sample differs from the other one too (same
+    -- direction, beyond the reference change value): NULL when there is no other one
+    case when has_prev and (not has_next or hours_since_prev <= hours_to_next) then prev_value else next_value end
+        as near_value,
+    case when has_prev and has_next then
+        case when hours_since_prev <= hours_to_next
+             then sign(change_from_next) = sign(change_from_prev) and abs(change_from_next) > rcv_next
+             else sign(change_from_prev) = sign(change_from_next) and abs(change_from_prev) > rcv_prev end
+    end as far_differs_too,
+    -- beyond the reference change value alone (no time allowance) from the previous result
+    coalesce(abs(change_from_prev) > rcv_prev, false) as changed_from_prev
+from limits;
 
 -- Grain of delta_summary and delta_judged: one row per sample in scope with at least one
 -- compared analyte; delta_judged adds the patterns the three rules report:
@@ -130,36 +144,17 @@ from windowed;
 --                        stable analyte changing alone fits a clinical course (transfusion,
 --                        bleeding, bypass, sodium correction): never wrong blood on its own.
 create or replace temp table delta_summary as
-with per_analyte as (
-    select
-        *,
-        -- two-sided: away from both neighbours in the same direction
-        coalesce(has_prev and has_next and abs(change_from_prev) > limit_prev and abs(change_from_next) > limit_next
-                 and sign(change_from_prev) = sign(change_from_next), false) as out_of_line,
-        -- one-sided: away from the only neighbour, which is in line with its own neighbour
-        coalesce(case when has_prev and not has_next then abs(change_from_prev) > limit_prev and prev_in_line
-                      when has_next and not has_prev then abs(change_from_next) > limit_next and next_in_line
-                 end, false) as moved_one_sided,
-        -- the nearer neighbour in time, and whether the sample differs from the other one too (same
-        -- direction, beyond the reference change value): NULL when there is no other one
-        case when has_prev and (not has_next or hours_since_prev <= hours_to_next) then prev_value else next_value end
-            as near_value,
-        case when has_prev and has_next then
-            case when hours_since_prev <= hours_to_next
-                 then sign(change_from_next) = sign(change_from_prev) and abs(change_from_next) > rcv_next
-                 else sign(change_from_prev) = sign(change_from_next) and abs(change_from_prev) > rcv_prev end
-        end as far_differs_too,
-        -- beyond the reference change value alone (no time allowance) from the previous result
-        coalesce(abs(change_from_prev) > rcv_prev, false) as changed_from_prev
-    from delta_values
-)
 select
     sample_id,
-    count(distinct analyte_group) filter (where out_of_line) as groups_out_of_line,
-    count(distinct analyte_group) filter (where out_of_line and stable) as stable_groups_out_of_line,
-    count(distinct analyte_group) filter (where out_of_line and stable and neighbours_agree) as stable_groups_away_and_back,
-    count(distinct analyte_group) filter (where moved_one_sided) as groups_moved_one_sided,
-    count(distinct analyte_group) filter (where moved_one_sided and stable) as stable_groups_moved_one_sided,
+    -- stable groups (haemoglobin; sodium and chloride) out of line, away and back, moved one-sided
+    coalesce(bool_or(out_of_line) filter (where analyte = 'hb'), false)::int
+        + coalesce(bool_or(out_of_line) filter (where analyte in ('na', 'cl')), false)::int as stable_groups_out_of_line,
+    coalesce(bool_or(out_of_line and neighbours_agree) filter (where analyte = 'hb'), false)::int
+        + coalesce(bool_or(out_of_line and neighbours_agree) filter (where analyte in ('na', 'cl')), false)::int
+        as stable_groups_away_and_back,
+    coalesce(bool_or(moved_one_sided) filter (where analyte = 'hb'), false)::int
+        + coalesce(bool_or(moved_one_sided) filter (where analyte in ('na', 'cl')), false)::int
+        as stable_groups_moved_one_sided,
     -- each analyte against its nearer neighbour, with the reference change value at that level
     max(value) filter (where analyte = 'hb') as hb,
     max(near_value) filter (where analyte = 'hb') as hb_near,
@@ -179,15 +174,8 @@ select
     max(change_from_prev) filter (where analyte = 'hb' and changed_from_prev) as hb_change,
     max(hours_since_prev) filter (where analyte = 'hb' and changed_from_prev) as hb_hours,
     max(change_from_prev) filter (where analyte = 'na' and changed_from_prev) as na_change,
-    max(hours_since_prev) filter (where analyte = 'na' and changed_from_prev) as na_hours,
-    string_agg(words, '; ' order by analyte) filter (where out_of_line or moved_one_sided) as words_changed,
-    string_agg(words, '; ' order by analyte) as words_all,
-    json_group_object(analyte, json_object('value', value, 'previous', prev_value, 'next', next_value,
-                                           'hours_since_previous', round(hours_since_prev, 1),
-                                           'hours_to_next', round(hours_to_next, 1),
-                                           'limit_previous', round(limit_prev, 2),
-                                           'limit_next', round(limit_next, 2))) as evidence
-from per_analyte
+    max(hours_since_prev) filter (where analyte = 'na' and changed_from_prev) as na_hours
+from delta_values
 group by sample_id;
 
 create or replace temp table delta_judged as
@@ -223,3 +211,36 @@ select
         when stable_groups_moved_one_sided >= 2 then 'medium'
     end as wrong_blood_severity
 from patterns;
+
+-- The evidence in words and as JSON, for the samples the three rules report only (string work
+-- on every analyte of every sample would cost more than the judgement itself). Words name only
+-- the neighbours that exist.
+-- Grain: one row per sample of delta_judged with a pattern or a clinical-course change.
+create or replace temp table delta_evidence as
+with described as (
+    select
+        v.*,
+        label || ' ' || printf(case when unit = 'g/dL' then '%.1f %s' else '%.0f %s' end, value, unit)
+            || coalesce(printf(case when unit = 'g/dL' then ' against %.1f %s %.0f h earlier'
+                                    else ' against %.0f %s %.0f h earlier' end,
+                               prev_value, unit, hours_since_prev), '')
+            || coalesce(printf(case when unit = 'g/dL' then ' %s %.1f %s %.0f h later' else ' %s %.0f %s %.0f h later' end,
+                               case when prev_value is not null then 'and' else 'against' end,
+                               next_value, unit, hours_to_next), '')
+            as words
+    from delta_values as v
+    semi join delta_judged as j
+        on j.sample_id = v.sample_id
+       and (j.dilution_pattern or j.wrong_blood_severity is not null or j.hb_change is not null or j.na_change is not null)
+)
+select
+    sample_id,
+    string_agg(words, '; ' order by analyte) filter (where out_of_line or moved_one_sided) as words_changed,
+    string_agg(words, '; ' order by analyte) as words_all,
+    json_group_object(analyte, json_object('value', value, 'previous', prev_value, 'next', next_value,
+                                           'hours_since_previous', round(hours_since_prev, 1),
+                                           'hours_to_next', round(hours_to_next, 1),
+                                           'limit_previous', round(limit_prev, 2),
+                                           'limit_next', round(limit_next, 2))) as evidence
+from described
+group by sample_id;

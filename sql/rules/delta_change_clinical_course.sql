@@ -17,6 +17,7 @@ select
     ) as message,
     evidence
 from delta_judged
+join delta_evidence using (sample_id)
 where wrong_blood_severity is null
   and not dilution_pattern
   and (hb_change is not null or na_change is not null);

@@ -12,4 +12,5 @@ select
         || 'on this flag alone' as message,
     evidence
 from delta_judged
+join delta_evidence using (sample_id)
 where dilution_pattern;

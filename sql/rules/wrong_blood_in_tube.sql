@@ -10,4 +10,5 @@ select
         || 'withdraw a result on this flag alone' as message,
     evidence
 from delta_judged
+join delta_evidence using (sample_id)
 where wrong_blood_severity is not null;
