@@ -6,9 +6,9 @@
 -- (analytical and within-subject CVs) at the neighbour's level, plus the change a treated
 -- patient's value can make per hour times the hours between the samples. Parameters are the
 -- wrong_blood_in_tube rule's (pipeline/catalogue.toml, with their sources).
--- Analyte groups: haemoglobin; sodium and chloride (one group: they move together); potassium;
--- glucose. Haemoglobin and sodium/chloride are stable; potassium and glucose are labile (a
--- labile change alone never suggests another patient's blood).
+-- Stable analyte groups: haemoglobin; sodium and chloride (one group: they move together).
+-- Potassium and glucose are labile: they never suggest another patient's blood, and glucose
+-- only shows a dilution by a glucose infusion.
 -- Grain of delta_values: one row per (sample in scope, analyte with a value).
 create or replace temp table delta_values as
 with patients as (
@@ -20,23 +20,21 @@ with patients as (
 analytes as (
     select * from (
         values
-            ('hb', 'Hb', 'g/dL', 'haemoglobin', true, $hb_cva_pct, $hb_cvi_pct, $hb_rate_per_hour,
-             $hb_max_change),
-            ('na', 'Na', 'mmol/L', 'sodium_chloride', true, $na_cva_pct, $na_cvi_pct, $na_rate_per_hour,
-             $na_max_change),
-            ('cl', 'Cl', 'mmol/L', 'sodium_chloride', true, $cl_cva_pct, $cl_cvi_pct, $cl_rate_per_hour,
-             $cl_max_change),
-            ('k', 'K', 'mmol/L', 'potassium', false, $k_cva_pct, $k_cvi_pct, $k_rate_per_hour, $k_max_change),
-            ('glucose', 'glucose', 'mmol/L', 'glucose', false, $glucose_cva_pct, $glucose_cvi_pct,
-             $glucose_rate_per_hour, $glucose_max_change)
-    ) as a(analyte, label, unit, analyte_group, stable, cva, cvi, rate, max_change)
+            ('hb', $hb_cva_pct, $hb_cvi_pct, $hb_rate_per_hour, $hb_max_change),
+            ('na', $na_cva_pct, $na_cvi_pct, $na_rate_per_hour, $na_max_change),
+            ('cl', $cl_cva_pct, $cl_cvi_pct, $cl_rate_per_hour, $cl_max_change),
+            ('k', $k_cva_pct, $k_cvi_pct, $k_rate_per_hour, $k_max_change),
+            ('glucose', $glucose_cva_pct, $glucose_cvi_pct, $glucose_rate_per_hour, $glucose_max_change)
+    ) as a(analyte, cva, cvi, rate, max_change)
 ),
+-- only the keys and the value go through the window (the analyte's constants are joined back
+-- after it: a window keeps every column it carries)
 long as (
     select
         r.sample_id,
         r.patient_key,
         r.collected_at,
-        a.*,
+        a.analyte,
         case a.analyte
             when 'hb' then r.hb_g_dl
             when 'na' then r.na_mmol_l
@@ -66,7 +64,7 @@ ordered as (
 ),
 windowed as (
     select
-        sample_id, analyte, label, unit, analyte_group, stable, cva, cvi, rate, max_change, value,
+        sample_id, analyte, cva, cvi, rate, max_change, value,
         case when hours_since_prev <= $window_hours then prev_value end as prev_value,
         case when hours_since_prev <= $window_hours then hours_since_prev end as hours_since_prev,
         case when hours_to_next <= $window_hours then next_value end as next_value,
@@ -78,11 +76,12 @@ windowed as (
         case when hours_to_next + hours_next_to_next2 <= $window_hours then hours_next_to_next2 end
             as hours_next_to_next2
     from ordered
+    join analytes using (analyte)
     semi join scope_samples using (sample_id)
 ),
 limits as (
 select
-    *,
+    * exclude (cva, cvi, rate, max_change),
     prev_value is not null as has_prev,
     next_value is not null as has_next,
     value - prev_value as change_from_prev,
@@ -124,6 +123,8 @@ select
              then sign(change_from_next) = sign(change_from_prev) and abs(change_from_next) > rcv_next
              else sign(change_from_prev) = sign(change_from_next) and abs(change_from_prev) > rcv_prev end
     end as far_differs_too,
+    case when has_prev and (not has_next or hours_since_prev <= hours_to_next) then rcv_prev else rcv_next end
+        as near_rcv,
     -- beyond the reference change value alone (no time allowance) from the previous result
     coalesce(abs(change_from_prev) > rcv_prev, false) as changed_from_prev
 from limits;
@@ -158,17 +159,17 @@ select
     -- each analyte against its nearer neighbour, with the reference change value at that level
     max(value) filter (where analyte = 'hb') as hb,
     max(near_value) filter (where analyte = 'hb') as hb_near,
-    max(delta_check_limit(near_value, cva, cvi, 0.0, 0.0)) filter (where analyte = 'hb') as hb_rcv,
+    max(near_rcv) filter (where analyte = 'hb') as hb_rcv,
     bool_and(far_differs_too) filter (where analyte = 'hb') as hb_far_differs_too,
     max(value) filter (where analyte = 'na') as na,
     max(near_value) filter (where analyte = 'na') as na_near,
-    max(delta_check_limit(near_value, cva, cvi, 0.0, 0.0)) filter (where analyte = 'na') as na_rcv,
+    max(near_rcv) filter (where analyte = 'na') as na_rcv,
     max(value) filter (where analyte = 'cl') as cl,
     max(near_value) filter (where analyte = 'cl') as cl_near,
-    max(delta_check_limit(near_value, cva, cvi, 0.0, 0.0)) filter (where analyte = 'cl') as cl_rcv,
+    max(near_rcv) filter (where analyte = 'cl') as cl_rcv,
     max(value) filter (where analyte = 'glucose') as glucose,
     max(near_value) filter (where analyte = 'glucose') as glucose_near,
-    max(delta_check_limit(near_value, cva, cvi, 0.0, 0.0)) filter (where analyte = 'glucose') as glucose_rcv,
+    max(near_rcv) filter (where analyte = 'glucose') as glucose_rcv,
     bool_or(has_prev and has_next) as two_sided,
     -- a single stable analyte beyond its reference change value since the previous sample
     max(change_from_prev) filter (where analyte = 'hb' and changed_from_prev) as hb_change,
@@ -217,9 +218,20 @@ from patterns;
 -- the neighbours that exist.
 -- Grain: one row per sample of delta_judged with a pattern or a clinical-course change.
 create or replace temp table delta_evidence as
-with described as (
+with labelled as (
     select
         v.*,
+        case v.analyte when 'hb' then 'Hb' when 'na' then 'Na' when 'cl' then 'Cl' when 'k' then 'K' else v.analyte end
+            as label,
+        case v.analyte when 'hb' then 'g/dL' else 'mmol/L' end as unit
+    from delta_values as v
+    semi join delta_judged as j
+        on j.sample_id = v.sample_id
+       and (j.dilution_pattern or j.wrong_blood_severity is not null or j.hb_change is not null or j.na_change is not null)
+),
+described as (
+    select
+        *,
         label || ' ' || printf(case when unit = 'g/dL' then '%.1f %s' else '%.0f %s' end, value, unit)
             || coalesce(printf(case when unit = 'g/dL' then ' against %.1f %s %.0f h earlier'
                                     else ' against %.0f %s %.0f h earlier' end,
@@ -228,10 +240,7 @@ with described as (
                                case when prev_value is not null then 'and' else 'against' end,
                                next_value, unit, hours_to_next), '')
             as words
-    from delta_values as v
-    semi join delta_judged as j
-        on j.sample_id = v.sample_id
-       and (j.dilution_pattern or j.wrong_blood_severity is not null or j.hb_change is not null or j.na_change is not null)
+    from labelled
 )
 select
     sample_id,
