@@ -7,8 +7,8 @@
 -- patient's value can make per hour times the hours between the samples. Parameters are the
 -- wrong_blood_in_tube rule's (pipeline/catalogue.toml, with their sources).
 -- Stable analyte groups: haemoglobin; sodium and chloride (one group: they move together).
--- Potassium and glucose are labile: they never suggest another patient's blood, and glucose
--- only shows a dilution by a glucose infusion.
+-- Glucose is labile: it never suggests another patient's blood and only shows a dilution by a
+-- glucose infusion. Potassium (haemolysis, treatment) is too labile to be compared at all.
 -- Grain of delta_values: one row per (sample in scope, analyte with a value).
 create or replace temp table delta_values as
 with patients as (
@@ -23,7 +23,6 @@ analytes as (
             ('hb', $hb_cva_pct, $hb_cvi_pct, $hb_rate_per_hour, $hb_max_change),
             ('na', $na_cva_pct, $na_cvi_pct, $na_rate_per_hour, $na_max_change),
             ('cl', $cl_cva_pct, $cl_cvi_pct, $cl_rate_per_hour, $cl_max_change),
-            ('k', $k_cva_pct, $k_cvi_pct, $k_rate_per_hour, $k_max_change),
             ('glucose', $glucose_cva_pct, $glucose_cvi_pct, $glucose_rate_per_hour, $glucose_max_change)
     ) as a(analyte, cva, cvi, rate, max_change)
 ),
@@ -39,7 +38,6 @@ long as (
             when 'hb' then r.hb_g_dl
             when 'na' then r.na_mmol_l
             when 'cl' then r.cl_mmol_l
-            when 'k' then r.k_mmol_l
             when 'glucose' then r.glucose_mmol_l
         end as value
     from records as r
@@ -221,7 +219,7 @@ create or replace temp table delta_evidence as
 with labelled as (
     select
         v.*,
-        case v.analyte when 'hb' then 'Hb' when 'na' then 'Na' when 'cl' then 'Cl' when 'k' then 'K' else v.analyte end
+        case v.analyte when 'hb' then 'Hb' when 'na' then 'Na' when 'cl' then 'Cl' else v.analyte end
             as label,
         case v.analyte when 'hb' then 'g/dL' else 'mmol/L' end as unit
     from delta_values as v
