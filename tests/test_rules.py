@@ -260,6 +260,18 @@ def test_wrong_blood_in_tube_needs_two_stable_analytes_or_a_jump_away_and_back(t
     assert status_of(con)["A2"] == "excluded"
 
 
+def test_sodium_away_and_back_needs_chloride_to_agree(tmp_path):
+    # Na 140 -> 135 -> 140, 2 h apart: 5 mmol/L beyond the 4.14 limit. With chloride reported and steady it is
+    # within what noise does now and then; with chloride away and back too (104 -> 98 -> 104, beyond 4.50 + 0.8)
+    # it is another patient's blood (Cl RCV 4.33 %, from memory).
+    rows = series("NC", [("C1", 0, {"cl_mmol_l": 104.0}), ("C2", 2, {"na_mmol_l": 135.0, "cl_mmol_l": 104.0}),
+                         ("C3", 4, {"cl_mmol_l": 104.0})])
+    rows += series("ND", [("D1", 0, {"cl_mmol_l": 104.0}), ("D2", 2, {"na_mmol_l": 135.0, "cl_mmol_l": 98.0}),
+                          ("D3", 4, {"cl_mmol_l": 104.0})])
+    con = evaluate(tmp_path, rows)
+    assert flagged(con, "wrong_blood_in_tube") == {"D2": "high"}
+
+
 def test_the_time_allowance_of_a_delta_check_has_a_ceiling(tmp_path):
     # Hb 14.3 -> 8.7 -> 14.4 over 71 h and 25 h: the time allowance stops at 3 g/dL (catalogue hb_max_change,
     # common practice: about 1 g/dL per transfused unit), so the limits are 1.22 + 3 and 1.23 + 3 g/dL; the jump of
@@ -330,8 +342,7 @@ def test_dilution_needs_one_share_of_flush_and_a_return(tmp_path):
     # of the way to 154 (common practice: composition of 0.9 % saline); tolerance 0.08.
     # Saline resuscitation lowers Hb (25 %) far more than it raises chloride (10 %): not a diluted sample.
     resuscitated = {"hb_g_dl": 9.0, "cl_mmol_l": 109.0}
-    rows = series("RS", [("R1", 0, {"hb_g_dl": 12.0, "cl_mmol_l": 104.0}), ("R2", 2, resuscitated),
-                         ("R3", 4, {"hb_g_dl": 12.0, "cl_mmol_l": 104.0})])
+    rows = series("RS", [("R1", 0, {"hb_g_dl": 12.0, "cl_mmol_l": 104.0}), ("R2", 2, resuscitated)])
     # the same change that lasts (the next sample stays at the new level) is a clinical course
     lasting = {"hb_g_dl": 9.6, "cl_mmol_l": 115.0}
     rows += series("LA", [("L1", 0, {"hb_g_dl": 12.0, "cl_mmol_l": 104.0}), ("L2", 2, lasting), ("L3", 4, lasting)])
@@ -340,6 +351,8 @@ def test_dilution_needs_one_share_of_flush_and_a_return(tmp_path):
     con = evaluate(tmp_path, rows)
     assert flagged(con, "diluted_sample") == {"W2": "medium"}
     assert status_of(con)["W2"] == "caution"
+    # W1, compared only with the diluted-looking W2, is not blamed as another patient's blood
+    assert flagged(con, "wrong_blood_in_tube") == {}
 
 
 def test_delayed_analysis(tmp_path):

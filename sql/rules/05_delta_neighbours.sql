@@ -139,7 +139,8 @@ from limits;
 --   wrong_blood_severity 'high' when both stable groups (Hb, Na/Cl) are out of line with the
 --                        neighbours on both sides, or one stable group jumps away and comes back
 --                        to where it was (the neighbours agree); 'medium' when both stable groups
---                        differ from the only neighbour; NULL otherwise, and for a dilution. One
+--                        differ from the only neighbour and that neighbour does not itself look
+--                        diluted; NULL otherwise, and for a dilution. One
 --                        stable analyte changing alone fits a clinical course (transfusion,
 --                        bleeding, bypass, sodium correction): never wrong blood on its own.
 create or replace temp table delta_summary as
@@ -148,8 +149,10 @@ select
     -- stable groups (haemoglobin; sodium and chloride) out of line, away and back, moved one-sided
     coalesce(bool_or(out_of_line) filter (where analyte = 'hb'), false)::int
         + coalesce(bool_or(out_of_line) filter (where analyte in ('na', 'cl')), false)::int as stable_groups_out_of_line,
+    -- away and back: sodium and chloride must both show it where both are reported (one of them
+    -- alone, a few mmol/L off, is within what noise does now and then)
     coalesce(bool_or(out_of_line and neighbours_agree) filter (where analyte = 'hb'), false)::int
-        + coalesce(bool_or(out_of_line and neighbours_agree) filter (where analyte in ('na', 'cl')), false)::int
+        + coalesce(bool_and(out_of_line and neighbours_agree) filter (where analyte in ('na', 'cl')), false)::int
         as stable_groups_away_and_back,
     coalesce(bool_or(moved_one_sided) filter (where analyte = 'hb'), false)::int
         + coalesce(bool_or(moved_one_sided) filter (where analyte in ('na', 'cl')), false)::int
@@ -184,7 +187,11 @@ with shares as (
         -- the share of flush fluid each analyte implies, against the nearer neighbour
         1.0 - hb / nullif(hb_near, 0) as hb_share,
         (cl - cl_near) / nullif(154.0 - cl_near, 0) as saline_share_from_cl,
-        (na_near - na) / nullif(na_near, 0) as glucose_share_from_na
+        (na_near - na) / nullif(na_near, 0) as glucose_share_from_na,
+        -- the same shares with the roles turned round: the nearer neighbour looks diluted
+        1.0 - hb_near / nullif(hb, 0) as neighbour_hb_share,
+        (cl_near - cl) / nullif(154.0 - cl, 0) as neighbour_saline_share_from_cl,
+        (na - na_near) / nullif(na, 0) as neighbour_glucose_share_from_na
     from delta_summary
 ),
 patterns as (
@@ -199,7 +206,14 @@ patterns as (
                 or (glucose > glucose_near + glucose_rcv and na < na_near - na_rcv
                     and abs(hb_share - glucose_share_from_na) <= $mixing_tolerance)
             ), false) as dilution_pattern,
-        hb_far_differs_too is not null as dilution_two_sided
+        hb_far_differs_too is not null as dilution_two_sided,
+        coalesce(
+            hb_near < hb - hb_rcv
+            and (
+                (cl_near > cl + cl_rcv and abs(neighbour_hb_share - neighbour_saline_share_from_cl) <= $mixing_tolerance)
+                or (glucose_near > glucose + glucose_rcv
+                    and abs(neighbour_hb_share - neighbour_glucose_share_from_na) <= $mixing_tolerance)
+            ), false) as neighbour_looks_diluted
     from shares
 )
 select
@@ -207,7 +221,8 @@ select
     case
         when dilution_pattern then null
         when stable_groups_out_of_line >= 2 or stable_groups_away_and_back >= 1 then 'high'
-        when stable_groups_moved_one_sided >= 2 then 'medium'
+        -- compared with one neighbour only, which itself looks diluted: that one is the odd sample
+        when stable_groups_moved_one_sided >= 2 and not neighbour_looks_diluted then 'medium'
     end as wrong_blood_severity
 from patterns;
 
