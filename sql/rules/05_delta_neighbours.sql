@@ -130,7 +130,8 @@ from limits;
 -- Grain of delta_summary and delta_judged: one row per sample in scope with at least one
 -- compared analyte; delta_judged adds the patterns the three rules report:
 --   dilution_pattern     against the nearer neighbour, Hb down beyond its reference change
---                        value with chloride up (sodium not down) or with glucose up and sodium
+--                        value with chloride up (sodium neither down nor up by more than the
+--                        share allows) or with glucose up and sodium
 --                        down, by a share of flush fluid that agrees within $mixing_tolerance
 --                        between the two analytes (mixing with 0.9 % saline, Na and Cl 154 mmol/L,
 --                        or 5 % glucose, 278 mmol/L, moves every analyte by the same share); where
@@ -149,10 +150,8 @@ select
     -- stable groups (haemoglobin; sodium and chloride) out of line, away and back, moved one-sided
     coalesce(bool_or(out_of_line) filter (where analyte = 'hb'), false)::int
         + coalesce(bool_or(out_of_line) filter (where analyte in ('na', 'cl')), false)::int as stable_groups_out_of_line,
-    -- away and back: sodium and chloride must both show it where both are reported (one of them
-    -- alone, a few mmol/L off, is within what noise does now and then)
     coalesce(bool_or(out_of_line and neighbours_agree) filter (where analyte = 'hb'), false)::int
-        + coalesce(bool_and(out_of_line and neighbours_agree) filter (where analyte in ('na', 'cl')), false)::int
+        + coalesce(bool_or(out_of_line and neighbours_agree) filter (where analyte in ('na', 'cl')), false)::int
         as stable_groups_away_and_back,
     coalesce(bool_or(moved_one_sided) filter (where analyte = 'hb'), false)::int
         + coalesce(bool_or(moved_one_sided) filter (where analyte in ('na', 'cl')), false)::int
@@ -202,6 +201,7 @@ patterns as (
             and coalesce(hb_far_differs_too, true)
             and (
                 (cl > cl_near + cl_rcv and na >= na_near - na_rcv
+                 and na <= na_near + hb_share * (154.0 - na_near) + na_rcv
                  and abs(hb_share - saline_share_from_cl) <= $mixing_tolerance)
                 or (glucose > glucose_near + glucose_rcv and na < na_near - na_rcv
                     and abs(hb_share - glucose_share_from_na) <= $mixing_tolerance)
@@ -210,7 +210,9 @@ patterns as (
         coalesce(
             hb_near < hb - hb_rcv
             and (
-                (cl_near > cl + cl_rcv and abs(neighbour_hb_share - neighbour_saline_share_from_cl) <= $mixing_tolerance)
+                (cl_near > cl + cl_rcv and na_near >= na - na_rcv
+                 and na_near <= na + neighbour_hb_share * (154.0 - na) + na_rcv
+                 and abs(neighbour_hb_share - neighbour_saline_share_from_cl) <= $mixing_tolerance)
                 or (glucose_near > glucose + glucose_rcv
                     and abs(neighbour_hb_share - neighbour_glucose_share_from_na) <= $mixing_tolerance)
             ), false) as neighbour_looks_diluted
