@@ -26,39 +26,53 @@ analytes as (
             ('glucose', $glucose_cva_pct, $glucose_cvi_pct, $glucose_rate_per_hour, $glucose_max_change)
     ) as a(analyte, cva, cvi, rate, max_change)
 ),
--- only the keys and the value go through the window (the analyte's constants are joined back
--- after it: a window keeps every column it carries)
-long as (
+-- One pass over each patient's samples in time order (a sort of the records, not of one row per
+-- analyte): the neighbours one and two samples away on each side. A neighbour without the
+-- analyte leaves that side empty for it.
+neighbours as (
     select
         r.sample_id,
-        r.patient_key,
-        r.collected_at,
-        a.analyte,
-        case a.analyte
-            when 'hb' then r.hb_g_dl
-            when 'na' then r.na_mmol_l
-            when 'cl' then r.cl_mmol_l
-            when 'glucose' then r.glucose_mmol_l
-        end as value
+        r.hb_g_dl as hb, r.na_mmol_l as na, r.cl_mmol_l as cl, r.glucose_mmol_l as glucose,
+        lag(r.hb_g_dl) over w as hb_prev, lag(r.hb_g_dl, 2) over w as hb_prev2,
+        lead(r.hb_g_dl) over w as hb_next, lead(r.hb_g_dl, 2) over w as hb_next2,
+        lag(r.na_mmol_l) over w as na_prev, lag(r.na_mmol_l, 2) over w as na_prev2,
+        lead(r.na_mmol_l) over w as na_next, lead(r.na_mmol_l, 2) over w as na_next2,
+        lag(r.cl_mmol_l) over w as cl_prev, lag(r.cl_mmol_l, 2) over w as cl_prev2,
+        lead(r.cl_mmol_l) over w as cl_next, lead(r.cl_mmol_l, 2) over w as cl_next2,
+        lag(r.glucose_mmol_l) over w as glucose_prev, lag(r.glucose_mmol_l, 2) over w as glucose_prev2,
+        lead(r.glucose_mmol_l) over w as glucose_next, lead(r.glucose_mmol_l, 2) over w as glucose_next2,
+        epoch(r.collected_at - lag(r.collected_at) over w) / 3600.0 as hours_since_prev,
+        epoch(lag(r.collected_at) over w - lag(r.collected_at, 2) over w) / 3600.0 as hours_prev_to_prev2,
+        epoch(lead(r.collected_at) over w - r.collected_at) / 3600.0 as hours_to_next,
+        epoch(lead(r.collected_at, 2) over w - lead(r.collected_at) over w) / 3600.0 as hours_next_to_next2
     from records as r
     semi join patients as p on p.patient_key = r.patient_key
-    cross join analytes as a
     where r.collected_at is not null
+    window w as (partition by r.patient_key order by r.collected_at, r.sample_id)
+),
+-- the samples judged: those in scope (a rebuild judges every one without the join)
+judged as (
+    select * from neighbours where (select rebuild from scope_settings)
+    union all
+    select * from neighbours semi join scope_samples using (sample_id) where not (select rebuild from scope_settings)
 ),
 ordered as (
-    select
-        *,
-        lag(value) over w as prev_value,
-        lag(value, 2) over w as prev2_value,
-        lead(value) over w as next_value,
-        lead(value, 2) over w as next2_value,
-        epoch(collected_at - lag(collected_at) over w) / 3600.0 as hours_since_prev,
-        epoch(lag(collected_at) over w - lag(collected_at, 2) over w) / 3600.0 as hours_prev_to_prev2,
-        epoch(lead(collected_at) over w - collected_at) / 3600.0 as hours_to_next,
-        epoch(lead(collected_at, 2) over w - lead(collected_at) over w) / 3600.0 as hours_next_to_next2
-    from long
-    where value is not null
-    window w as (partition by patient_key, analyte order by collected_at, sample_id)
+    select sample_id, 'hb' as analyte, hb as value, hb_prev as prev_value, hb_prev2 as prev2_value,
+           hb_next as next_value, hb_next2 as next2_value,
+           hours_since_prev, hours_prev_to_prev2, hours_to_next, hours_next_to_next2
+    from judged where hb is not null
+    union all
+    select sample_id, 'na', na, na_prev, na_prev2, na_next, na_next2,
+           hours_since_prev, hours_prev_to_prev2, hours_to_next, hours_next_to_next2
+    from judged where na is not null
+    union all
+    select sample_id, 'cl', cl, cl_prev, cl_prev2, cl_next, cl_next2,
+           hours_since_prev, hours_prev_to_prev2, hours_to_next, hours_next_to_next2
+    from judged where cl is not null
+    union all
+    select sample_id, 'glucose', glucose, glucose_prev, glucose_prev2, glucose_next, glucose_next2,
+           hours_since_prev, hours_prev_to_prev2, hours_to_next, hours_next_to_next2
+    from judged where glucose is not null
 ),
 windowed as (
     select
@@ -75,7 +89,6 @@ windowed as (
             as hours_next_to_next2
     from ordered
     join analytes using (analyte)
-    semi join scope_samples using (sample_id)
 ),
 limits as (
 select
