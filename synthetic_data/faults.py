@@ -45,15 +45,17 @@ Fault types (how each lands; all arithmetic is the generator's own, in numpy):
 physical evidence on its own (``evidence.py``) - venous blood, air contamination, under-documented
 FiO2, pH transcription, wrong units and decimal slips. So air in a sample whose PO2 was already near
 150 mmHg, a unit error whose value lands in range, or a pH one hundredth off are not visible. Wrong
-blood in tube is visible when the record carries evidence, or when the sample is out of line with the
-patient on both sides - its previous and its next sample, both within 72 h, differ from it in the same
-direction by at least 2.0 g/dL Hb, 8 mmol/L Na or 8 mmol/L Cl (delta-check window and limits of
-domain-methods.md section 8, from memory there; Cl as Na, common practice) - or when Na or Cl differs by
-8 mmol/L from a sample taken within 12 h. A one-sided Hb change alone is not counted: a transfusion
-raises Hb and a bypass prime lowers it with sodium unchanged (``lookalikes.py``), so physics cannot
-tell them from wrong blood. A line-flush dilution is visible when the patient's nearest
-other sample within 72 h had an Hb higher by more than the reference change value of 8.56 % (Hb CVa
-1.5 %, CVi 2.7 %; domain-methods.md section 8, CVs from memory there) and, beside it, chloride rose
+blood in tube is visible when the record carries evidence; or when the sample jumps away from the
+patient and back - its previous and its next sample, both within 24 h, differ from it in the same
+direction by at least 2.0 g/dL Hb, 8 mmol/L Na or 8 mmol/L Cl while agreeing with each other within half
+that (delta-check limits and window of domain-methods.md section 8, "within 24 h", from memory there; Cl
+as Na, common practice); or when two independent analytes, Hb by 2.0 g/dL and Na or Cl by 8 mmol/L,
+differ from a sample taken within 12 h. One analyte changing on its own is not counted: a transfusion
+raises Hb, a bypass prime lowers it with sodium unchanged, saline raises chloride, a sodium correction
+moves sodium (``lookalikes.py``), so physics cannot tell a single-analyte change from wrong blood.
+A line-flush dilution is visible when the patient's nearest other sample within 72 h had an Hb higher
+by more than the reference change value of 8.56 % (Hb CVa 1.5 %, CVi 2.7 %; domain-methods.md
+section 8, CVs from memory there) and, beside it, chloride rose
 by at least 4.5 mmol/L (about the reference change value of chloride: CVa 1.0 %, CVi 1.2 %, from
 memory), sodium moved towards 154 by more than 2.38 % (the sodium reference change value) or glucose
 rose by at least 3 mmol/L and 50 %; or when the record carries evidence. Late analysis (the time
@@ -110,9 +112,11 @@ FAULTED_COLUMNS = (
 WBIT_HB_DELTA_G_DL = 2.0
 WBIT_NA_DELTA_MMOL_L = 8.0
 NEIGHBOUR_WINDOW_HOURS = 72.0
+EXCURSION_WINDOW_HOURS = 24.0
+"""A jump away and back counts when both neighbours are this close (WBIT-oriented limits "within 24 h")."""
 FAST_CHANGE_HOURS = 12.0
-"""Na or Cl moving 8 mmol/L within this time is faster than any look-alike moves them (sodium correction
-at most 9 mmol/L per 24 h; a bypass prime is balanced)."""
+"""Hb and Na or Cl moving together this fast is faster than any look-alike moves both (a transfusion or a
+bypass prime moves Hb alone; a sodium correction at most 9 mmol/L per 24 h moves Na alone)."""
 HB_RCV_PCT = 8.56
 NA_RCV_PCT = 2.38
 CL_RISE_MMOL_L = 4.5
@@ -603,12 +607,14 @@ def _ground_truth(
     near = (pl.col("near_h") <= NEIGHBOUR_WINDOW_HOURS).fill_null(False)
 
     def excursion(name: str, short: str, limit: float) -> pl.Expr:
-        """The value differs by at least ``limit`` from both the previous and the next sample within the
-        window, in the same direction: one sample out of line with the patient on both sides."""
+        """The value differs by at least ``limit`` from both the previous and the next sample within
+        ``EXCURSION_WINDOW_HOURS``, in the same direction, while those two agree within half the limit:
+        one sample away from the patient and back."""
         up = ((after(name) - pl.col(f"prev_{short}")) >= limit) & ((after(name) - pl.col(f"next_{short}")) >= limit)
         down = ((pl.col(f"prev_{short}") - after(name)) >= limit) & ((pl.col(f"next_{short}") - after(name)) >= limit)
-        both = (pl.col("prev_h") <= NEIGHBOUR_WINDOW_HOURS) & (pl.col("next_h") <= NEIGHBOUR_WINDOW_HOURS)
-        return (both & (up | down)).fill_null(False)
+        both = (pl.col("prev_h") <= EXCURSION_WINDOW_HOURS) & (pl.col("next_h") <= EXCURSION_WINDOW_HOURS)
+        back = (pl.col(f"prev_{short}") - pl.col(f"next_{short}")).abs() <= limit / 2
+        return (both & back & (up | down)).fill_null(False)
 
     def fast_change(name: str, short: str, limit: float) -> pl.Expr:
         """At least ``limit`` away from the nearest sample taken within ``FAST_CHANGE_HOURS``."""
@@ -620,8 +626,13 @@ def _ground_truth(
         excursion("hb_g_dl", "hb", WBIT_HB_DELTA_G_DL)
         | excursion("na_mmol_l", "na", WBIT_NA_DELTA_MMOL_L)
         | excursion("cl_mmol_l", "cl", WBIT_NA_DELTA_MMOL_L)
-        | fast_change("na_mmol_l", "na", WBIT_NA_DELTA_MMOL_L)
-        | fast_change("cl_mmol_l", "cl", WBIT_NA_DELTA_MMOL_L)
+        | (
+            fast_change("hb_g_dl", "hb", WBIT_HB_DELTA_G_DL)
+            & (
+                fast_change("na_mmol_l", "na", WBIT_NA_DELTA_MMOL_L)
+                | fast_change("cl_mmol_l", "cl", WBIT_NA_DELTA_MMOL_L)
+            )
+        )
     )
     hb_fall = (pl.col("nb_hb") - after("hb_g_dl")) > HB_RCV_PCT / 100.0 * pl.col("nb_hb")
     towards_saline = ((after("cl_mmol_l") - pl.col("nb_cl")) >= CL_RISE_MMOL_L) | (
