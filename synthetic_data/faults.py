@@ -148,17 +148,6 @@ def scale_fault_rates(total: float, base: dict[str, float] | None = None) -> dic
     return {k: (v * total / s if s else 0.0) for k, v in base.items()}
 
 
-def check_fault_rates(rates: dict[str, float]) -> dict[str, float]:
-    """Fill in missing fault types with 0 and reject unknown names or impossible rates."""
-    unknown = sorted(set(rates) - set(FAULT_TYPES))
-    if unknown:
-        raise ValueError(f"unknown fault types {unknown}; known: {list(FAULT_TYPES)}")
-    full = {k: float(rates.get(k, 0.0)) for k in FAULT_TYPES}
-    if any(v < 0 for v in full.values()) or sum(full.values()) > 0.5:
-        raise ValueError("fault rates must be >= 0 and add up to at most 0.5")
-    return full
-
-
 def assign_faults(rng: np.random.Generator, state: pl.DataFrame, rates: dict[str, float]) -> pl.DataFrame:
     """Choose the faulted samples (at most one fault each; never a look-alike) and the details of each.
 

@@ -9,7 +9,7 @@ from datetime import date
 import numpy as np
 import polars as pl
 
-from synthetic_data.faults import DEFAULT_FAULT_RATES, check_fault_rates, inject_faults
+from synthetic_data.faults import DEFAULT_FAULT_RATES, FAULT_TYPES, inject_faults
 from synthetic_data.forward_model import CANONICAL_COLUMNS, analyser_report, assemble_records, true_state
 from synthetic_data.hospital import (
     ANALYSER_SOURCE,
@@ -25,10 +25,22 @@ from synthetic_data.hospital import (
 from synthetic_data.lookalikes import (
     DEFAULT_LOOKALIKE_RATES,
     LOOKALIKE_KINDS,
-    check_lookalike_rates,
     draw_lookalikes,
     lookalike_rows,
 )
+
+
+def check_rates(rates: dict[str, float], known: tuple[str, ...], what: str) -> dict[str, float]:
+    """Shares of all samples per fault type or look-alike kind: missing names get 0; unknown names,
+    negative shares or shares adding up to more than a half are errors."""
+    unknown = sorted(set(rates) - set(known))
+    if unknown:
+        raise ValueError(f"unknown {what} {unknown}; known: {list(known)}")
+    full = {k: float(rates.get(k, 0.0)) for k in known}
+    if any(v < 0 for v in full.values()) or sum(full.values()) > 0.5:
+        raise ValueError(f"{what} rates must be >= 0 and add up to at most 0.5")
+    return full
+
 
 DEFAULT_START = date(2025, 1, 6)
 DEFAULT_DAYS = 60
@@ -94,8 +106,10 @@ def generate_demo(
         raise ValueError("days must be at least 1")
     if not 0.0 <= sao2_calculated_share <= 1.0:
         raise ValueError("sao2_calculated_share must be between 0 and 1")
-    rates = check_fault_rates(DEFAULT_FAULT_RATES if fault_rates is None else fault_rates)
-    kinds = check_lookalike_rates(DEFAULT_LOOKALIKE_RATES if lookalike_rates is None else lookalike_rates)
+    rates = check_rates(DEFAULT_FAULT_RATES if fault_rates is None else fault_rates, FAULT_TYPES, "fault types")
+    kinds = check_rates(
+        DEFAULT_LOOKALIKE_RATES if lookalike_rates is None else lookalike_rates, LOOKALIKE_KINDS, "look-alike kinds"
+    )
     hospital_rng, weather_rng, fault_rng, lookalike_rng, analyser_rng, id_rng = (
         np.random.default_rng(s) for s in np.random.SeedSequence(seed).spawn(6)
     )

@@ -110,17 +110,6 @@ HOST_UNITS: dict[str, tuple[tuple[Unit, float], ...]] = {
 }
 
 
-def check_lookalike_rates(rates: dict[str, float]) -> dict[str, float]:
-    """Fill in missing kinds with 0 and reject unknown names or impossible rates."""
-    unknown = sorted(set(rates) - set(LOOKALIKE_KINDS))
-    if unknown:
-        raise ValueError(f"unknown look-alike kinds {unknown}; known: {list(LOOKALIKE_KINDS)}")
-    full = {k: float(rates.get(k, 0.0)) for k in LOOKALIKE_KINDS}
-    if any(v < 0 for v in full.values()) or sum(full.values()) > 0.5:
-        raise ValueError("look-alike rates must be >= 0 and add up to at most 0.5")
-    return full
-
-
 def lookalike_rows(rows: int, rates: dict[str, float]) -> dict[str, int]:
     """Samples per kind: the rate times ``rows``, or 0 when fewer than one patient's minimum."""
     out: dict[str, int] = {}

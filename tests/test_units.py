@@ -169,18 +169,25 @@ def test_hb_factor_matches_common_practice(con: duckdb.DuckDBPyConnection) -> No
 
 
 LACTIC_ACID_G_PER_MOL = 90.08  # C3H6O3, domain-methods.md section 11 (common practice)
+GLUCOSE_G_PER_MOL = 180.156  # C6H12O6 (common practice; domain-methods.md section 11 gives mg/dL / 18.016)
 
 
-def test_lactate_to_mmol_l_by_unit(con: duckdb.DuckDBPyConnection) -> None:
+@pytest.mark.parametrize(
+    ("macro", "molar_mass_g_per_mol"),
+    [("lactate_to_mmol_l", LACTIC_ACID_G_PER_MOL), ("glucose_to_mmol_l", GLUCOSE_G_PER_MOL)],
+)
+def test_mass_concentration_macros_by_unit(
+    con: duckdb.DuckDBPyConnection, macro: str, molar_mass_g_per_mol: float
+) -> None:
     got = evaluate(
-        "lactate_to_mmol_l(x, u)",
+        f"{macro}(x, u)",
         connection=con,
         x=[2.0, 18.0, 18.0, None],
         u=["mmol/L", "mg/dL", "mg/L", "mg/dL"],
     )
     assert got[0] == 2.0
     # oracle: pint, mass concentration / molar mass -> amount concentration
-    via_pint = (UREG.Quantity(18.0, "mg/dL") / UREG.Quantity(LACTIC_ACID_G_PER_MOL, "g/mol")).to("mmol/L").magnitude
+    via_pint = (UREG.Quantity(18.0, "mg/dL") / UREG.Quantity(molar_mass_g_per_mol, "g/mol")).to("mmol/L").magnitude
     assert got[1] == pytest.approx(via_pint, rel=1e-9)
     assert got[2:] == [None, None]
 
@@ -190,22 +197,9 @@ def test_lactate_factor_matches_common_practice(con: duckdb.DuckDBPyConnection) 
     assert one(con, "lactate_to_mmol_l(1, 'mg/dL')") == pytest.approx(0.1110, abs=5e-5)
 
 
-GLUCOSE_G_PER_MOL = 180.156  # C6H12O6 (common practice; domain-methods.md section 11 gives mg/dL / 18.016)
-
-
-def test_glucose_to_mmol_l_by_unit(con: duckdb.DuckDBPyConnection) -> None:
-    got = evaluate(
-        "glucose_to_mmol_l(x, u)",
-        connection=con,
-        x=[5.5, 99.0, 99.0, None],
-        u=["mmol/L", "mg/dL", "g/L", "mg/dL"],
-    )
-    assert got[0] == 5.5
-    # oracle: pint, mass concentration / molar mass -> amount concentration
-    via_pint = (UREG.Quantity(99.0, "mg/dL") / UREG.Quantity(GLUCOSE_G_PER_MOL, "g/mol")).to("mmol/L").magnitude
-    assert got[1] == pytest.approx(via_pint, rel=1e-9)
-    assert got[1] == pytest.approx(99.0 / 18.016, rel=1e-4)  # domain-methods.md section 11
-    assert got[2:] == [None, None]
+def test_glucose_factor_matches_common_practice(con: duckdb.DuckDBPyConnection) -> None:
+    # glucose mg/dL / 18.016 = mmol/L: domain-methods.md section 11 (common practice)
+    assert one(con, "glucose_to_mmol_l(99, 'mg/dL')") == pytest.approx(99.0 / 18.016, rel=1e-4)
 
 
 def test_unit_macros_return_double_for_integer_input(con: duckdb.DuckDBPyConnection) -> None:

@@ -183,7 +183,6 @@ select
     max(value) filter (where analyte = 'glucose') as glucose,
     max(near_value) filter (where analyte = 'glucose') as glucose_near,
     max(near_rcv) filter (where analyte = 'glucose') as glucose_rcv,
-    bool_or(has_prev and has_next) as two_sided,
     -- a single stable analyte beyond its reference change value since the previous sample
     max(change_from_prev) filter (where analyte = 'hb' and changed_from_prev) as hb_change,
     max(hours_since_prev) filter (where analyte = 'hb' and changed_from_prev) as hb_hours,
