@@ -4,12 +4,16 @@
 [audit]
 period = "month"            # or "week" (ISO weeks, Monday first)
 history_periods = 24        # the latest periods with data that the tables cover
-complete_periods_only = true  # leave out the period still under way until it ends
+complete_periods_only = false # true: leave out the period still under way until it ends
+                              # (default: show it, labelled partial, so a first extract is not empty)
 chart_limits = "p_chart"    # or "laney": which limits the "beyond limits" signal uses
 sigma = 3.0                 # control limits at centre -/+ sigma standard errors
 shift_run = 8               # points in a row on one side of the centre line
 trend_run = 6               # points in a row each rising (or each falling)
 worklist_days = 31          # review worklist: flags on samples collected in the last 31 days
+funnel_overdispersion = "additive"  # or "multiplicative" or "none": how funnel limits allow for
+                            # between-unit variation beyond chance (Spiegelhalter 2005)
+winsorize_pct = 10          # z-scores winsorised at this percentile each side when estimating it
 ```
 
 Defaults and sources: limits at 3 sigma (Shewhart p-chart); a run of 8 on one side of the
@@ -31,6 +35,7 @@ from pipeline.errors import ConfigError
 
 PERIODS = ("month", "week")
 CHART_LIMITS = ("p_chart", "laney")
+OVERDISPERSION = ("additive", "multiplicative", "none")
 DEFAULT_HISTORY = {"month": 24, "week": 52}
 
 
@@ -38,12 +43,14 @@ DEFAULT_HISTORY = {"month": 24, "week": 52}
 class AuditSettings:
     period: str = "month"
     history_periods: int = 24
-    complete_periods_only: bool = True
+    complete_periods_only: bool = False
     chart_limits: str = "p_chart"
     sigma: float = 3.0
     shift_run: int = 8
     trend_run: int = 6
     worklist_days: int = 31
+    funnel_overdispersion: str = "additive"
+    winsorize_pct: float = 10.0
 
 
 def parse_audit_settings(raw: Any, source: Path | str = "site configuration") -> AuditSettings:
@@ -59,6 +66,8 @@ def parse_audit_settings(raw: Any, source: Path | str = "site configuration") ->
         "shift_run",
         "trend_run",
         "worklist_days",
+        "funnel_overdispersion",
+        "winsorize_pct",
     }
     unknown = set(raw) - known
     if unknown:
@@ -72,7 +81,7 @@ def parse_audit_settings(raw: Any, source: Path | str = "site configuration") ->
     if chart_limits not in CHART_LIMITS:
         raise ConfigError(f"{source}: [audit] chart_limits must be one of {', '.join(CHART_LIMITS)}")
     history = raw.get("history_periods", DEFAULT_HISTORY[period])
-    complete_only = raw.get("complete_periods_only", True)
+    complete_only = raw.get("complete_periods_only", False)
     if not isinstance(complete_only, bool):
         raise ConfigError(f"{source}: [audit] complete_periods_only must be true or false")
     sigma = raw.get("sigma", 3.0)
@@ -89,6 +98,12 @@ def parse_audit_settings(raw: Any, source: Path | str = "site configuration") ->
             raise ConfigError(f"{source}: [audit] {name} must be an integer of at least {low}")
     if not isinstance(sigma, (int, float)) or isinstance(sigma, bool) or not 0 < sigma <= 6:
         raise ConfigError(f"{source}: [audit] sigma must be a number above 0 and at most 6")
+    overdispersion = raw.get("funnel_overdispersion", "additive")
+    if overdispersion not in OVERDISPERSION:
+        raise ConfigError(f"{source}: [audit] funnel_overdispersion must be one of {', '.join(OVERDISPERSION)}")
+    winsorize = raw.get("winsorize_pct", 10)
+    if not isinstance(winsorize, (int, float)) or isinstance(winsorize, bool) or not 0 <= winsorize < 50:
+        raise ConfigError(f"{source}: [audit] winsorize_pct must be a number from 0 to below 50")
     return AuditSettings(
         period=period,
         history_periods=history,
@@ -98,4 +113,6 @@ def parse_audit_settings(raw: Any, source: Path | str = "site configuration") ->
         shift_run=shift_run,
         trend_run=trend_run,
         worklist_days=worklist_days,
+        funnel_overdispersion=overdispersion,
+        winsorize_pct=float(winsorize),
     )

@@ -51,6 +51,7 @@ class SiteConfig:
     barometric_pressure_mmhg: float | None = None
     keep_patient_id: bool = True
     small_cell_threshold: int = 11
+    internal_small_cell_threshold: int | None = None
     thresholds: dict[str, Any] = field(default_factory=dict)
     audit: AuditSettings = field(default_factory=AuditSettings)
     unit_types: dict[str, str] = field(default_factory=dict)
@@ -81,7 +82,7 @@ KNOWN_KEYS: dict[str, set[str]] = {
     "site": {"name", "altitude_m", "barometric_pressure_mmhg"},
     "store": {"path", "keep_patient_id"},
     "output": {"folder"},
-    "privacy": {"key_file", "small_cell_threshold"},
+    "privacy": {"key_file", "small_cell_threshold", "internal_small_cell_threshold"},
     "inputs": {"path", "profile", "pattern"},
     "thresholds": set(),  # checked against the rule catalogue by pipeline.rules.load_catalogue
     "audit": set(),  # checked by pipeline.audit_settings.parse_audit_settings
@@ -181,6 +182,14 @@ def load_config(path: Path | str, *, store: Path | None = None, output: Path | N
     threshold = privacy.get("small_cell_threshold", 11)
     if not isinstance(threshold, int) or threshold < 1:
         raise ConfigError(f"{path}: [privacy] small_cell_threshold must be a positive integer")
+    internal = privacy.get("internal_small_cell_threshold")
+    if internal is not None and (
+        not isinstance(internal, int) or isinstance(internal, bool) or not 1 <= internal <= threshold
+    ):
+        raise ConfigError(
+            f"{path}: [privacy] internal_small_cell_threshold must be an integer from 1 to small_cell_threshold "
+            f"({threshold}): it is the lower threshold for the hospital's own quality meetings"
+        )
     key_file = privacy.get("key_file")
     unit_types = _parse_unit_types(path, raw.get("unit_types", {}))
     oxygen_targets = _parse_oxygen_targets(path, raw.get("oxygen_targets", {}), unit_types)
@@ -195,6 +204,7 @@ def load_config(path: Path | str, *, store: Path | None = None, output: Path | N
         barometric_pressure_mmhg=float(pressure) if pressure is not None else None,
         keep_patient_id=bool(store_section.get("keep_patient_id", True)),
         small_cell_threshold=threshold,
+        internal_small_cell_threshold=internal,
         thresholds=dict(raw.get("thresholds", {})),
         audit=parse_audit_settings(raw.get("audit", {}), path),
         unit_types=unit_types,
