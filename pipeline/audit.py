@@ -106,6 +106,8 @@ def audit_parameters(config: SiteConfig, catalogue: Catalogue, run_id: str) -> d
         "shift_run": settings.shift_run,
         "trend_run": settings.trend_run,
         "chart_limits": settings.chart_limits,
+        "funnel_overdispersion": settings.funnel_overdispersion,
+        "winsorize_pct": settings.winsorize_pct,
         "run_id": run_id,
         "worklist_days": settings.worklist_days,
         "hypoxaemia_pao2_mmhg": catalogue.derive["hypoxaemia_pao2_mmhg"],

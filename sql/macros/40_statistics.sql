@@ -126,3 +126,106 @@ CREATE OR REPLACE TEMP MACRO laney_sigma_z(mean_moving_range) AS
 --   Status:  verified (policy text); the default threshold 11 follows it
 CREATE OR REPLACE TEMP MACRO is_small_cell(value, threshold) AS
     CAST(value AS DOUBLE) >= 1.0 AND CAST(value AS DOUBLE) < CAST(threshold AS DOUBLE);
+
+-- Funnel plots with over-dispersion (Spiegelhalter DJ 2005, "Handling over-dispersion of
+-- performance indicators", Qual Saf Health Care 14:347-351; details below from memory). Each
+-- unit i of a group of I comparable units has a proportion y_i = x_i / n_i; the group's centre
+-- is p0 and, under the binomial model alone, s_i^2 = p0 (1 - p0) / n_i. The z-scores
+-- z_i = (y_i - p0) / s_i are standardised_proportion(y_i, p0, n_i). When the units vary more
+-- than chance allows, the limits are widened, either by a factor (multiplicative) or by a
+-- between-unit variance (additive, random effects); the macros below hold those formulas.
+
+-- winsorised_count(units, pct)
+--   Formula: floor(pct / 100 * units): how many of `units` z-scores are pulled in at EACH end when
+--            winsorising at pct percent each side (the lowest ones set to the lowest value kept, the
+--            highest to the highest kept), so that a few extreme units cannot by themselves inflate
+--            the estimate of over-dispersion that then widens their own limits
+--   Units:   count, percent -> count
+--   Valid:   units >= 0 and 0 <= pct < 50 (NULL otherwise)
+--   Source:  Spiegelhalter 2005 (winsorising the z-scores, 10 % each side as his example; from
+--            memory); rounding down as scipy.stats.mstats.winsorize with inclusive limits
+--   Status:  verified against scipy.stats.mstats.winsorize (tests/test_funnel.py)
+CREATE OR REPLACE TEMP MACRO winsorised_count(units, pct) AS
+    CASE WHEN CAST(units AS DOUBLE) >= 0.0 AND CAST(pct AS DOUBLE) >= 0.0 AND CAST(pct AS DOUBLE) < 50.0 THEN
+        CAST(floor(CAST(pct AS DOUBLE) / 100.0 * CAST(units AS DOUBLE)) AS BIGINT)
+    END;
+
+-- funnel_weight(p0, n)
+--   Formula: w_i = 1 / s_i^2 = n_i / (p0 (1 - p0))   (inverse binomial variance around the centre)
+--   Units:   proportion, count -> 1 / proportion^2
+--   Valid:   0 < p0 < 1 and n > 0 (NULL otherwise)
+--   Source:  Spiegelhalter 2005 (from memory)
+--   Status:  verified (tests/test_funnel.py, with the DerSimonian-Laird oracle)
+CREATE OR REPLACE TEMP MACRO funnel_weight(p0, n) AS
+    CASE WHEN binomial_sigma(p0, n) > 0.0 THEN 1.0 / binomial_sigma(p0, n) ^ 2 END;
+
+-- overdispersion_phi(sum_z2, units)
+--   Formula: phi = sum z_i^2 / I   (z_i winsorised; about 1 when the binomial model fits)
+--   Units:   standard deviations^2, count -> dimensionless
+--   Valid:   units > 0 (NULL otherwise)
+--   Source:  Spiegelhalter 2005 (multiplicative over-dispersion factor; from memory)
+--   Status:  verified against scipy.stats.mstats.winsorize and statsmodels combine_effects
+--            (Q / I; tests/test_funnel.py)
+CREATE OR REPLACE TEMP MACRO overdispersion_phi(sum_z2, units) AS
+    CASE WHEN CAST(units AS DOUBLE) > 0.0 THEN CAST(sum_z2 AS DOUBLE) / CAST(units AS DOUBLE) END;
+
+-- overdispersion_tau2(sum_z2, units, sum_w, sum_w2)
+--   Formula: tau^2 = max(0, (I phi - (I - 1)) / (sum w_i - sum w_i^2 / sum w_i)), with I phi = sum z_i^2
+--            (z_i winsorised) and w_i = funnel_weight(p0, n_i): the between-unit variance, on the
+--            proportion scale, of an additive random-effects model
+--   Units:   standard deviations^2, count, weights -> proportion^2
+--   Valid:   units >= 2 and sum_w - sum_w2 / sum_w > 0 (NULL otherwise)
+--   Source:  Spiegelhalter 2005 (from memory); the DerSimonian R, Laird N 1986 (Control Clin Trials
+--            7:177) moment estimator with Q = sum z_i^2, its fixed-effect mean being p0 (citation
+--            from memory)
+--   Status:  verified against statsmodels combine_effects(method_re='dl') (tests/test_funnel.py)
+CREATE OR REPLACE TEMP MACRO overdispersion_tau2(sum_z2, units, sum_w, sum_w2) AS
+    CASE WHEN CAST(units AS DOUBLE) >= 2.0
+              AND CAST(sum_w AS DOUBLE) - CAST(sum_w2 AS DOUBLE) / CAST(sum_w AS DOUBLE) > 0.0 THEN
+        greatest(0.0, (CAST(sum_z2 AS DOUBLE) - (CAST(units AS DOUBLE) - 1.0))
+                      / (CAST(sum_w AS DOUBLE) - CAST(sum_w2 AS DOUBLE) / CAST(sum_w AS DOUBLE)))
+    END;
+
+-- funnel_sigma(p0, n, overdispersion := 'none', phi := 1.0, tau2 := 0.0)
+--   Formula: 'none'           s_i = sqrt(p0 (1 - p0) / n_i)           (binomial_sigma)
+--            'multiplicative' s_i * sqrt(max(phi, 1))                  (only ever widened)
+--            'additive'       sqrt(s_i^2 + tau^2)
+--   Units:   proportion, count, method, dimensionless, proportion^2 -> proportion
+--   Valid:   as binomial_sigma; phi (multiplicative) or tau2 >= 0 (additive) not NULL; another
+--            method -> NULL
+--   Source:  Spiegelhalter 2005 (from memory)
+--   Status:  verified against a hand-computed example (tests/test_funnel.py)
+CREATE OR REPLACE TEMP MACRO funnel_sigma(p0, n, overdispersion := 'none', phi := 1.0, tau2 := 0.0) AS
+    CASE overdispersion
+        WHEN 'none' THEN binomial_sigma(p0, n)
+        WHEN 'multiplicative' THEN
+            CASE WHEN phi IS NOT NULL THEN binomial_sigma(p0, n) * sqrt(greatest(CAST(phi AS DOUBLE), 1.0)) END
+        WHEN 'additive' THEN
+            CASE WHEN CAST(tau2 AS DOUBLE) >= 0.0 THEN sqrt(binomial_sigma(p0, n) ^ 2 + CAST(tau2 AS DOUBLE)) END
+    END;
+
+-- funnel_lower_limit(p0, n, z, overdispersion := 'none', phi := 1.0, tau2 := 0.0)
+--   Formula: p0 - z * funnel_sigma(p0, n, overdispersion, phi, tau2), at least 0. With 'none' the
+--            same as proportion_lower_limit(p0, n, z) (normal approximation to the binomial);
+--            z = 1.959963984540054 (95 %) or 3.090232306167813 (99.8 %)
+--   Units:   proportion, count, standard deviations, ... -> proportion
+--   Valid:   as funnel_sigma, z not NULL (NULL otherwise)
+--   Source:  Spiegelhalter 2005 (from memory); Spiegelhalter DJ 2005, Stat Med 24:1185 (funnel plots;
+--            citation from memory)
+--   Status:  verified against a hand-computed example and scipy.stats.norm (tests/test_funnel.py)
+CREATE OR REPLACE TEMP MACRO funnel_lower_limit(p0, n, z, overdispersion := 'none', phi := 1.0, tau2 := 0.0) AS
+    -- greatest() and least() skip NULLs in DuckDB, so an undefined sigma must give NULL, not the bound
+    CASE WHEN funnel_sigma(p0, n, overdispersion, phi, tau2) IS NOT NULL AND z IS NOT NULL THEN
+        greatest(0.0, CAST(p0 AS DOUBLE) - CAST(z AS DOUBLE) * funnel_sigma(p0, n, overdispersion, phi, tau2))
+    END;
+
+-- funnel_upper_limit(p0, n, z, overdispersion := 'none', phi := 1.0, tau2 := 0.0)
+--   Formula: p0 + z * funnel_sigma(p0, n, overdispersion, phi, tau2), at most 1 (see funnel_lower_limit)
+--   Units:   proportion, count, standard deviations, ... -> proportion
+--   Valid:   as funnel_sigma, z not NULL (NULL otherwise)
+--   Source:  Spiegelhalter 2005 (from memory)
+--   Status:  verified against a hand-computed example and scipy.stats.norm (tests/test_funnel.py)
+CREATE OR REPLACE TEMP MACRO funnel_upper_limit(p0, n, z, overdispersion := 'none', phi := 1.0, tau2 := 0.0) AS
+    CASE WHEN funnel_sigma(p0, n, overdispersion, phi, tau2) IS NOT NULL AND z IS NOT NULL THEN
+        least(1.0, CAST(p0 AS DOUBLE) + CAST(z AS DOUBLE) * funnel_sigma(p0, n, overdispersion, phi, tau2))
+    END;
