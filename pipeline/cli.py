@@ -445,13 +445,18 @@ def rules(config_path: Path | None, kind: str | None) -> None:
 
 @main.command()
 def fields() -> None:
-    """Print the canonical record: every field, its type and canonical unit."""
-    from pipeline.schema import FIELDS
+    """Print the canonical records: every field of a sample, then of an oxygen prescription
+    (the prescriptions feed), with its type and canonical unit."""
+    from pipeline.schema import RECORD_SPECS
 
-    for f in FIELDS:
-        unit = f.canonical_unit or ""
-        flag = " (required)" if f.required else ""
-        click.echo(f"{f.name:<28} {f.kind.value:<9} {unit:<8} {f.description}{flag}")
+    for number, spec in enumerate(RECORD_SPECS.values()):
+        if number:
+            click.echo("")
+        click.echo(f"# {spec.kind} ([profile] kind = \"{spec.kind}\"; one record per {spec.key_field})")
+        for f in spec.fields:
+            unit = f.canonical_unit or ""
+            flag = " (required)" if f.required else ""
+            click.echo(f"{f.name:<28} {f.kind.value:<9} {unit:<8} {f.description}{flag}")
 
 
 if __name__ == "__main__":

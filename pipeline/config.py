@@ -11,6 +11,7 @@ from typing import Any
 from pipeline.audit_settings import AuditSettings, parse_audit_settings
 from pipeline.errors import ConfigError
 from pipeline.profile import Profile, load_profile
+from pipeline.schema import RECORD_SPECS
 
 
 @dataclass(frozen=True)
@@ -18,6 +19,7 @@ class InputSource:
     path: Path  # a file or a folder
     profile: Profile
     pattern: str = "*"
+    kind: str = "samples"  # samples (blood gas results) or prescriptions (the oxygen prescriptions feed)
 
     def files(self) -> list[Path]:
         if self.path.is_file():
@@ -83,7 +85,7 @@ KNOWN_KEYS: dict[str, set[str]] = {
     "store": {"path", "keep_patient_id"},
     "output": {"folder"},
     "privacy": {"key_file", "small_cell_threshold", "internal_small_cell_threshold"},
-    "inputs": {"path", "profile", "pattern"},
+    "inputs": {"path", "profile", "pattern", "kind"},
     "thresholds": set(),  # checked against the rule catalogue by pipeline.rules.load_catalogue
     "audit": set(),  # checked by pipeline.audit_settings.parse_audit_settings
     "unit_types": set(),  # unit name = unit type; any unit name
@@ -165,11 +167,24 @@ def load_config(path: Path | str, *, store: Path | None = None, output: Path | N
         profile_path = _resolve(base, item["profile"], f"[[inputs]] {number} profile")
         if profile_path not in profiles:
             profiles[profile_path] = load_profile(profile_path)
+        kind = item.get("kind", "samples")
+        if kind not in RECORD_SPECS:
+            raise ConfigError(
+                f"{path}: [[inputs]] entry {number} kind = {kind!r}; expected one of {', '.join(RECORD_SPECS)}"
+            )
+        profile = profiles[profile_path]
+        if profile.kind != kind:
+            raise ConfigError(
+                f"{path}: [[inputs]] entry {number} is kind = {kind!r} but its profile {profile_path.name} "
+                f'maps {profile.kind}; set [profile] kind = "{kind}" in the profile or kind = "{profile.kind}" '
+                "in the input"
+            )
         inputs.append(
             InputSource(
                 path=_resolve(base, item["path"], f"[[inputs]] {number} path"),
-                profile=profiles[profile_path],
+                profile=profile,
                 pattern=str(item.get("pattern", "*")),
+                kind=kind,
             )
         )
     altitude = site.get("altitude_m")

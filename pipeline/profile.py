@@ -3,9 +3,13 @@
 A profile is a TOML file. It declares the dialect (delimiter, quote, decimal mark,
 encoding), the date-time format and time zone, which source column holds each canonical
 field, the unit of each measured column (fixed, or read per row from a unit column), and
-code maps for sample type and oxygen device. Nothing is guessed: ingestion checks the file
-against the profile and rejects the file when they disagree. See DEVELOPERS.md, "Adding a
-site profile".
+code maps for the code fields (sample type, oxygen device, collection method). Nothing is
+guessed: ingestion checks the file against the profile and rejects the file when they
+disagree. See DEVELOPERS.md, "Adding a site profile".
+
+``[profile] kind`` says which record the export holds: ``samples`` (blood gas results, the
+default) or ``prescriptions`` (the oxygen prescriptions feed); the profile maps that kind's
+canonical fields (``pipeline.schema.RECORD_SPECS``).
 """
 
 from __future__ import annotations
@@ -16,7 +20,7 @@ from pathlib import Path
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 from pipeline.errors import ConfigError
-from pipeline.schema import FIELDS_BY_NAME, OXYGEN_DEVICES, REQUIRED_FIELDS, SAMPLE_TYPES, UNIT_CHOICES, Kind
+from pipeline.schema import CODE_LISTS, RECORD_SPECS, UNIT_CHOICES, RecordSpec
 
 ENCODINGS = ("utf-8", "latin-1", "cp1252")
 FORMATS = ("csv", "parquet")
@@ -37,15 +41,28 @@ class Profile:
     columns: dict[str, str] = field(default_factory=dict)
     units: dict[str, str] = field(default_factory=dict)
     unit_columns: dict[str, str] = field(default_factory=dict)
-    sample_type_codes: dict[str, str] = field(default_factory=dict)
-    device_codes: dict[str, str] = field(default_factory=dict)
+    codes: dict[str, dict[str, str]] = field(default_factory=dict)  # field -> source code (casefolded) -> canonical
+    kind: str = "samples"
     true_values: tuple[str, ...] = ("1", "y", "yes", "true", "t")
     false_values: tuple[str, ...] = ("0", "n", "no", "false", "f")
     missing_values: tuple[str, ...] = ("", "-", "--", "n/a", "na", "null", "none")
 
+    @property
+    def record(self) -> RecordSpec:
+        """The kind of record this export holds: its fields, key and store tables."""
+        return RECORD_SPECS[self.kind]
+
+    @property
+    def sample_type_codes(self) -> dict[str, str]:
+        return self.codes.get("sample_type", {})
+
+    @property
+    def device_codes(self) -> dict[str, str]:
+        return self.codes.get("o2_device", {})
+
     def unit_of(self, canonical: str) -> str:
         """The declared unit of a canonical numeric field (its canonical unit by default)."""
-        spec = FIELDS_BY_NAME[canonical]
+        spec = self.record.fields_by_name[canonical]
         return self.units.get(canonical, spec.canonical_unit or "")
 
     @property
@@ -74,18 +91,33 @@ def load_profile(path: Path | str) -> Profile:
     columns = {str(k): str(v) for k, v in _table(raw, "columns", path).items()}
     units = {str(k): str(v) for k, v in _table(raw, "units", path).items()}
     unit_columns = {str(k): str(v) for k, v in _table(raw, "unit_columns", path).items()}
-    codes = _table(raw, "codes", path)
-    for code_list in ("sample_type", "o2_device"):
-        if not isinstance(codes.get(code_list, {}), dict):
-            raise ConfigError(f"{path}: [codes.{code_list}] must be a table")
-    sample_codes = {str(k).strip().casefold(): str(v) for k, v in codes.get("sample_type", {}).items()}
-    device_codes = {str(k).strip().casefold(): str(v) for k, v in codes.get("o2_device", {}).items()}
-
+    kind = str(head.get("kind", "samples"))
+    if kind not in RECORD_SPECS:
+        raise ConfigError(f"{path}: [profile] kind = {kind!r}; expected one of {', '.join(RECORD_SPECS)}")
+    record = RECORD_SPECS[kind]
+    fields_by_name = record.fields_by_name
+    codes_raw = _table(raw, "codes", path)
+    codes: dict[str, dict[str, str]] = {}
     problems: list[str] = []
-    unknown = sorted(set(columns) - set(FIELDS_BY_NAME))
+    for code_list, table in codes_raw.items():
+        if not isinstance(table, dict):
+            raise ConfigError(f"{path}: [codes.{code_list}] must be a table")
+        if code_list not in record.code_fields:
+            problems.append(
+                f"[codes.{code_list}] is not a code list of {kind} records; known: {', '.join(record.code_fields)}"
+            )
+            continue
+        codes[code_list] = {str(k).strip().casefold(): str(v) for k, v in table.items()}
+        allowed = CODE_LISTS[code_list]
+        bad = sorted({v for v in codes[code_list].values() if v not in allowed})
+        if bad:
+            noun = {"sample_type": "types", "o2_device": "devices"}.get(code_list, "codes")
+            problems.append(f"[codes.{code_list}] maps to unknown {noun} {bad}; allowed {list(allowed)}")
+
+    unknown = sorted(set(columns) - set(fields_by_name))
     if unknown:
-        problems.append(f"[columns] names unknown canonical fields: {', '.join(unknown)}")
-    missing = [f for f in REQUIRED_FIELDS if f not in columns]
+        problems.append(f"[columns] names unknown canonical fields of {kind} records: {', '.join(unknown)}")
+    missing = [f for f in record.required if f not in columns]
     if missing:
         problems.append(f"[columns] must map the required fields: {', '.join(missing)}")
     sources = list(columns.values()) + list(unit_columns.values())
@@ -94,18 +126,12 @@ def load_profile(path: Path | str) -> Profile:
     if dupes:
         problems.append(f"source columns used twice: {', '.join(dupes)}")
     for name, unit in {**units, **{k: "" for k in unit_columns}}.items():
-        spec = FIELDS_BY_NAME.get(name)
+        spec = fields_by_name.get(name)
         if spec is None or spec.unit_family is None:
             problems.append(f"[units]/[unit_columns] name a field without units: {name}")
         elif unit and unit not in UNIT_CHOICES[spec.unit_family]:
             choices = ", ".join(UNIT_CHOICES[spec.unit_family])
             problems.append(f"[units] {name} = {unit!r}; expected one of {choices}")
-    bad_types = sorted({v for v in sample_codes.values() if v not in SAMPLE_TYPES})
-    if bad_types:
-        problems.append(f"[codes.sample_type] maps to unknown types {bad_types}; allowed {list(SAMPLE_TYPES)}")
-    bad_devices = sorted({v for v in device_codes.values() if v not in OXYGEN_DEVICES})
-    if bad_devices:
-        problems.append(f"[codes.o2_device] maps to unknown devices {bad_devices}; allowed {list(OXYGEN_DEVICES)}")
 
     fmt = str(head.get("format", "csv"))
     if fmt not in FORMATS:
@@ -133,11 +159,8 @@ def load_profile(path: Path | str) -> Profile:
     except (ZoneInfoNotFoundError, ValueError):
         problems.append(f"timezone {timezone!r} is not an IANA time zone name (e.g. Europe/Berlin)")
     for name in columns:
-        spec = FIELDS_BY_NAME.get(name)
-        if spec is not None and spec.kind is Kind.CODE:
-            table = sample_codes if name == "sample_type" else device_codes
-            if not table:
-                problems.append(f"[codes.{name}] is needed because {name} is mapped")
+        if name in record.code_fields and not codes.get(name):
+            problems.append(f"[codes.{name}] is needed because {name} is mapped")
     if problems:
         raise ConfigError(f"{path}: " + "; ".join(problems))
 
@@ -155,6 +178,6 @@ def load_profile(path: Path | str) -> Profile:
         columns=columns,
         units=units,
         unit_columns=unit_columns,
-        sample_type_codes=sample_codes,
-        device_codes=device_codes,
+        codes=codes,
+        kind=kind,
     )

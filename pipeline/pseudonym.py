@@ -1,9 +1,15 @@
-"""Keyed pseudonyms for patient identifiers.
+"""Keyed pseudonyms for patient (and encounter and staff) identifiers.
 
 ``HMAC-SHA256(key, identifier)``, hex, truncated to 32 characters (128 bits). A keyed
 hash, unlike a plain hash, cannot be reversed by hashing every possible MRN; the key is
 kept outside the store (a file or an environment variable), so the store alone does not
 re-identify anyone. Pseudonyms made with different keys are never comparable.
+
+Other identifiers (encounter, operator) are pseudonymised with the same secret but under
+their own domain: the HMAC key is ``HMAC-SHA256(key, "abg-audit pseudonym domain <name>")``,
+a key derived per domain, so an encounter id and a patient id with the same text get
+unrelated pseudonyms and one cannot be matched against the other. The patient pseudonym
+stays the plain keyed hash, as it was before domains existed, so stored keys still link.
 """
 
 from __future__ import annotations
@@ -54,8 +60,15 @@ def key_id(key: bytes) -> str:
     return hmac.new(key, b"abg-audit pseudonym key id", hashlib.sha256).hexdigest()[:12]
 
 
-def pseudonym(key: bytes, identifier: str) -> str:
-    return _pseudonym(hmac.new(key, digestmod=hashlib.sha256), identifier)
+def domain_key(key: bytes, domain: str | None) -> bytes:
+    """The HMAC key for one kind of identifier; ``None`` is the patient domain (the key itself)."""
+    if domain is None:
+        return key
+    return hmac.new(key, f"abg-audit pseudonym domain {domain}".encode(), hashlib.sha256).digest()
+
+
+def pseudonym(key: bytes, identifier: str, domain: str | None = None) -> str:
+    return _pseudonym(hmac.new(domain_key(key, domain), digestmod=hashlib.sha256), identifier)
 
 
 def _pseudonym(keyed: hmac.HMAC, identifier: str) -> str:
@@ -65,13 +78,20 @@ def _pseudonym(keyed: hmac.HMAC, identifier: str) -> str:
     return digest.hexdigest()[:PSEUDONYM_CHARS]
 
 
-def add_patient_key(frame: pl.DataFrame, key: bytes, column: str = "patient_id") -> pl.DataFrame:
-    """Add ``patient_key``; each distinct identifier is hashed once."""
+def add_pseudonym(
+    frame: pl.DataFrame, key: bytes, column: str, output: str, domain: str | None = None
+) -> pl.DataFrame:
+    """Add the pseudonym column ``output`` of ``column``; each distinct identifier is hashed once."""
     if column not in frame.columns:
-        return frame.with_columns(pl.lit(None, dtype=pl.String).alias("patient_key"))
+        return frame.with_columns(pl.lit(None, dtype=pl.String).alias(output))
     distinct = frame.get_column(column).drop_nulls().unique()
-    keyed = hmac.new(key, digestmod=hashlib.sha256)
+    keyed = hmac.new(domain_key(key, domain), digestmod=hashlib.sha256)
     keys = pl.Series([_pseudonym(keyed, ident) for ident in distinct.to_list()], dtype=pl.String)
     return frame.with_columns(
-        pl.col(column).replace_strict(distinct, keys, default=None, return_dtype=pl.String).alias("patient_key")
+        pl.col(column).replace_strict(distinct, keys, default=None, return_dtype=pl.String).alias(output)
     )
+
+
+def add_patient_key(frame: pl.DataFrame, key: bytes, column: str = "patient_id") -> pl.DataFrame:
+    """Add ``patient_key``; each distinct identifier is hashed once."""
+    return add_pseudonym(frame, key, column, "patient_key")

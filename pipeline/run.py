@@ -404,7 +404,8 @@ def _run_stages(
 ) -> None:
     """Load each new file (one transaction each), then analyse, audit and publish."""
     for source, files in plan:
-        log.info(f"input {source.path} ({source.profile.name}): {len(files)} file(s)")
+        what = "input" if source.kind == "samples" else f"{source.kind} input"
+        log.info(f"{what} {source.path} ({source.profile.name}): {len(files)} file(s)")
         for number, path in enumerate(files, start=1):
             log.progress(f"[{number}/{len(files)}] {path.name}")
             before = stats.get(path)
@@ -414,6 +415,7 @@ def _run_stages(
                 outcome = FileOutcome(
                     path=path,
                     profile=source.profile.name,
+                    kind=source.kind,
                     sha256=seen[2],
                     size_bytes=before.st_size,
                     outcome="already_loaded",
@@ -483,8 +485,9 @@ def _log_file(log: Log, f: FileOutcome, number: int, count: int) -> None:
     elif f.outcome == "already_loaded":
         return  # counted once per input instead of one line per file
     else:
+        rows = "rows" if f.kind == "samples" else f"{f.kind} rows"
         log.info(
-            f"{where}: {f.rows_in} rows in = {f.rows_loaded} loaded + {f.rows_quarantined} quarantined + "
+            f"{where}: {f.rows_in} {rows} in = {f.rows_loaded} loaded + {f.rows_quarantined} quarantined + "
             f"{f.rows_duplicate} duplicate + {f.rows_superseded_in_file} superseded in file"
             + (f" ({f.corrections} corrections)" if f.corrections else ""),
             file=f.path.name,

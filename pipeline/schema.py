@@ -13,6 +13,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from enum import StrEnum
+from functools import cached_property
 
 import polars as pl
 
@@ -59,6 +60,17 @@ class Field:
 
 
 SAMPLE_TYPES = ("arterial", "venous", "mixed_venous", "capillary", "unknown")
+
+# How the blood was drawn; the sample type says what it is, this says where it came from
+# (an arterial line sample can be a flush-diluted one, a capillary one is not arterial).
+COLLECTION_METHODS = (
+    "arterial_puncture",
+    "arterial_line",
+    "capillary",
+    "venous_puncture",
+    "central_venous_line",
+    "unknown",
+)
 
 OXYGEN_DEVICES = (
     "room_air",
@@ -111,6 +123,12 @@ FIELDS: tuple[Field, ...] = (
     Field("mean_airway_pressure_cmh2o", Kind.NUMBER, "Mean airway pressure (ventilated).", "airway_pressure", 0, 100),
     Field("peep_cmh2o", Kind.NUMBER, "PEEP or CPAP level.", "airway_pressure", 0, 60),
     Field("hypercapnic_risk", Kind.BOOLEAN, "Patient documented at risk of hypercapnic respiratory failure."),
+    Field("encounter_id", Kind.TEXT, "Admission or episode identifier; pseudonymised to encounter_key."),
+    Field("target_spo2_low_pct", Kind.NUMBER, "Prescribed SpO2 target range, low end.", "saturation", 0, 100),
+    Field("target_spo2_high_pct", Kind.NUMBER, "Prescribed SpO2 target range, high end.", "saturation", 0, 100),
+    Field("o2_prescribed", Kind.BOOLEAN, "Oxygen prescribed at sampling, as charted on the sample."),
+    Field("collection_method", Kind.CODE, "How the sample was drawn (canonical code)."),
+    Field("operator_id", Kind.TEXT, "Person who collected or ran the sample; pseudonymised to operator_key."),
 )
 
 FIELDS_BY_NAME: dict[str, Field] = {f.name: f for f in FIELDS}
@@ -129,4 +147,118 @@ NUMBER_FIELDS: tuple[str, ...] = tuple(f.name for f in FIELDS if f.kind is Kind.
 # Columns added by ingestion to every stored record (provenance).
 PROVENANCE_COLUMNS: tuple[str, ...] = ("source_file", "source_row", "file_sha256", "run_id", "result_status")
 
+# Code lists of the CODE fields: each is mapped by the profile's [codes.<field>] table.
+CODE_LISTS: dict[str, tuple[str, ...]] = {
+    "sample_type": SAMPLE_TYPES,
+    "o2_device": OXYGEN_DEVICES,
+    "collection_method": COLLECTION_METHODS,
+}
+
+# Identifier columns stored as keyed pseudonyms: identifier -> (pseudonym column, domain).
+# The raw identifier is kept in the store only when the site keeps patient identifiers.
+# Domain None is the patient pseudonym (unchanged since the first release); other
+# identifiers are keyed by a key derived for their domain, so an encounter and a patient
+# with the same text never share a pseudonym (pipeline/pseudonym.py).
+PSEUDONYMISED: dict[str, tuple[str, str | None]] = {
+    "patient_id": ("patient_key", None),
+    "encounter_id": ("encounter_key", "encounter"),
+    "operator_id": ("operator_key", "operator"),
+}
+
 RESULT_STATUSES = ("reported", "haemolysed", "clotted", "cancelled", "see_comment", "insufficient_sample")
+
+
+# The oxygen prescriptions feed: one record per prescription (an order for oxygen with a
+# target range). Fields shared with the sample record are the same Field, so names, units
+# and hard limits cannot drift between the two.
+PRESCRIPTION_FIELDS: tuple[Field, ...] = (
+    Field("prescription_id", Kind.TEXT, "The source system's own oxygen order identifier.", required=True),
+    Field(
+        "patient_id",
+        Kind.TEXT,
+        "Patient identifier, the same as on the samples; pseudonymised to patient_key with the same key.",
+        required=True,
+    ),
+    FIELDS_BY_NAME["encounter_id"],
+    Field("unit", Kind.TEXT, "Ward where the oxygen was prescribed."),
+    Field("start_at", Kind.TIMESTAMP, "Prescription start, stored as UTC.", required=True),
+    Field("end_at", Kind.TIMESTAMP, "Prescription end, stored as UTC; empty means still active."),
+    FIELDS_BY_NAME["target_spo2_low_pct"],
+    FIELDS_BY_NAME["target_spo2_high_pct"],
+    Field("o2_device", Kind.CODE, "Prescribed oxygen device (canonical code)."),
+    Field("o2_flow_l_min", Kind.NUMBER, "Prescribed oxygen flow.", "flow", 0, 100),
+    Field("fio2", Kind.NUMBER, "Prescribed inspired oxygen fraction.", "fraction", 0, 1.0),
+    Field("prescriber_role", Kind.TEXT, "Role of the prescriber, e.g. doctor, nurse_practitioner (kept as is)."),
+)
+# A prescribed SpO2 target range must lie within this (percent) with low < high, else the
+# row is quarantined as TARGET_RANGE_INVALID (common practice: no oxygen target is set
+# below 50 %; the same bounds as [oxygen_targets] in the site configuration).
+TARGET_RANGE_PCT: tuple[float, float] = (50.0, 100.0)
+
+
+@dataclass(frozen=True)
+class RecordSpec:
+    """One kind of record a site delivers: its field catalogue, its key, its store tables
+    and its stage SQL. Reading, parsing, dialects, time zones, code maps, duplicates and
+    quarantine are the same code for every kind (pipeline/ingest/); only these differ."""
+
+    kind: str  # the input kind: [[inputs]] kind and [profile] kind
+    record_kind: str  # one record of it: quarantine.record_kind, merged_duplicates.record_kind
+    fields: tuple[Field, ...]
+    key_field: str  # one record per key; the same key with other values is a correction
+    table: str
+    superseded_table: str
+    convert_sql: str  # stage 1 (units, hard limits, row checks, content hash) -> stage_converted
+    merge_sql: str  # stage 3: into the kind's tables
+    unit_sanity_sql: str | None  # file-level unit medians (pipeline.ingest.load.UNIT_SANITY)
+    batch_contract: bool  # run the great-expectations batch contract (pipeline/contract.py)
+
+    @cached_property
+    def fields_by_name(self) -> dict[str, Field]:
+        return {f.name: f for f in self.fields}
+
+    @cached_property
+    def required(self) -> tuple[str, ...]:
+        return tuple(f.name for f in self.fields if f.required)
+
+    @cached_property
+    def unit_fields(self) -> tuple[str, ...]:
+        return tuple(f.name for f in self.fields if f.unit_family is not None)
+
+    @cached_property
+    def code_fields(self) -> tuple[str, ...]:
+        return tuple(f.name for f in self.fields if f.kind is Kind.CODE)
+
+
+SAMPLES = RecordSpec(
+    kind="samples",
+    record_kind="sample",
+    fields=FIELDS,
+    key_field="sample_id",
+    table="records",
+    superseded_table="superseded_records",
+    convert_sql="ingest/10_convert.sql",
+    merge_sql="ingest/40_merge.sql",
+    unit_sanity_sql="ingest/20_unit_sanity.sql",
+    batch_contract=True,
+)
+# The batch contract is the sample record's (analyte ranges, sample codes); a prescription
+# is checked by its row reasons (required fields, hard limits, TARGET_RANGE_INVALID,
+# END_BEFORE_START) and the whole-file checks shared with samples.
+PRESCRIPTIONS = RecordSpec(
+    kind="prescriptions",
+    record_kind="prescription",
+    fields=PRESCRIPTION_FIELDS,
+    key_field="prescription_id",
+    table="prescriptions",
+    superseded_table="superseded_prescriptions",
+    convert_sql="ingest/10_convert_prescriptions.sql",
+    merge_sql="ingest/40_merge_prescriptions.sql",
+    unit_sanity_sql="ingest/20_unit_sanity_prescriptions.sql",
+    batch_contract=False,
+)
+RECORD_SPECS: dict[str, RecordSpec] = {spec.kind: spec for spec in (SAMPLES, PRESCRIPTIONS)}
+# Every field of every kind, once: hard limits are per field name (store.field_limits).
+ALL_FIELDS: tuple[Field, ...] = tuple(
+    {f.name: f for spec in RECORD_SPECS.values() for f in spec.fields}.values()
+)

@@ -3,6 +3,15 @@
 read (text cells) -> parse (typed, reason codes) -> SQL: canonical units, hard limits,
 duplicates and corrections -> records / quarantine / superseded_records, plus the
 ledger row. Either all of that commits or none of it does.
+
+The same path loads every kind of record (``profile.record``, a ``RecordSpec`` of
+``pipeline.schema``): blood gas samples into ``records``, oxygen prescriptions into
+``prescriptions`` (corrections to ``superseded_prescriptions``). Per kind only the field
+catalogue, the key, the stage 1 and stage 3 SQL and the tables differ; reading, parsing,
+pseudonyms, duplicates, quarantine, reconciliation and the ledger are shared. The
+great-expectations batch contract runs for samples only (``RecordSpec.batch_contract``):
+a prescription's checks are its row reasons (required fields, hard limits,
+``TARGET_RANGE_INVALID``, ``END_BEFORE_START``) and the whole-file checks.
 """
 
 from __future__ import annotations
@@ -33,12 +42,12 @@ from pipeline.ingest.parse import (
 )
 from pipeline.ingest.read import ROW, ExportReader, ParquetExport, RawExport, open_export
 from pipeline.profile import Profile
-from pipeline.pseudonym import add_patient_key
-from pipeline.schema import FIELDS, FIELDS_BY_NAME, POLARS_TYPES, UNIT_CHOICES
+from pipeline.pseudonym import add_pseudonym
+from pipeline.schema import POLARS_TYPES, PSEUDONYMISED, SAMPLES, TARGET_RANGE_PCT, UNIT_CHOICES, RecordSpec
 from pipeline.sql_files import read_sql, run_sql
 from pipeline.testhooks import pause_point
 
-UNIT_FIELDS = tuple(f.name for f in FIELDS if f.unit_family is not None)
+UNIT_FIELDS = SAMPLES.unit_fields
 _STAGE_TABLES = ("stage_converted", "stage_repeats", "stage_set_aside", "stage_held")
 
 # Median of each field after conversion must fall here, or the declared unit is wrong for
@@ -66,6 +75,7 @@ class FileOutcome:
     sha256: str = ""
     size_bytes: int = 0
     outcome: str = "loaded"  # loaded, already_loaded, rejected
+    kind: str = "samples"  # the input kind: samples or prescriptions
     reason_code: str | None = None
     message: str | None = None
     rows_in: int = 0
@@ -93,15 +103,23 @@ def file_sha256(path: Path) -> str:
     return digest.hexdigest()
 
 
-def _stage_frame(values: pl.DataFrame, key: bytes, keep_patient_id: bool) -> pl.DataFrame:
-    """Every canonical column present (NULL where unmapped), plus per-row unit columns."""
-    frame = add_patient_key(values, key)
-    if not keep_patient_id and "patient_id" in frame.columns:
-        frame = frame.with_columns(pl.lit(None, dtype=pl.String).alias("patient_id"))
-    missing = [pl.lit(None, dtype=POLARS_TYPES[f.kind]).alias(f.name) for f in FIELDS if f.name not in frame.columns]
+def _stage_frame(values: pl.DataFrame, key: bytes, keep_patient_id: bool, record: RecordSpec) -> pl.DataFrame:
+    """Every canonical column of the kind present (NULL where unmapped), the pseudonym of
+    each identifier (raw identifiers dropped unless the site keeps them), plus per-row
+    unit columns."""
+    frame = values
+    for column, (output, domain) in PSEUDONYMISED.items():
+        if column not in record.fields_by_name:
+            continue
+        frame = add_pseudonym(frame, key, column, output, domain)
+        if not keep_patient_id and column in frame.columns:
+            frame = frame.with_columns(pl.lit(None, dtype=pl.String).alias(column))
+    missing = [
+        pl.lit(None, dtype=POLARS_TYPES[f.kind]).alias(f.name) for f in record.fields if f.name not in frame.columns
+    ]
     units = [
         pl.lit(None, dtype=pl.String).alias(f"{n}{UNIT_SUFFIX}")
-        for n in UNIT_FIELDS
+        for n in record.unit_fields
         if f"{n}{UNIT_SUFFIX}" not in frame.columns
     ]
     return frame.with_columns(missing + units)
@@ -114,7 +132,9 @@ def _check_units(
     reader: ExportReader | ParquetExport,
     plan: ColumnPlan,
 ) -> None:
-    medians = con.execute(read_sql("ingest/20_unit_sanity.sql")).fetchall()
+    if profile.record.unit_sanity_sql is None:
+        return
+    medians = con.execute(read_sql(profile.record.unit_sanity_sql)).fetchall()
     for field_name, count, median in medians:
         low, high = UNIT_SANITY[field_name]
         if count < 5 or median is None or low <= median <= high or field_name in profile.unit_columns:
@@ -123,7 +143,7 @@ def _check_units(
         source = profile.columns.get(field_name, field_name)
         raw_median = _raw_median(con, reader, plan, profile, field_name)
         hint = ""
-        family = FIELDS_BY_NAME[field_name].unit_family
+        family = profile.record.fields_by_name[field_name].unit_family
         for alternative in UNIT_CHOICES[family or ""]:
             if alternative == declared or raw_median is None or raw_median[0] is None:
                 continue
@@ -199,7 +219,7 @@ def _prepare(
         if batch.restart:
             tally.reset()
         parsed = parse_batch(batch, profile, plan, tally)
-        stage = _stage_frame(parsed.values, key, keep_patient_id)
+        stage = _stage_frame(parsed.values, key, keep_patient_id, profile.record)
         yield _Prepared(batch, parsed.notes, stage.to_arrow(compat_level=pl.CompatLevel.newest()))
 
 
@@ -249,7 +269,7 @@ def _stage_file(
     profile: Profile,
     key: bytes,
     keep_patient_id: bool,
-    unit_params: dict[str, str],
+    unit_params: dict[str, str | float],
 ) -> StagedFile:
     """Parse the file batch by batch into the temp table ``stage_converted`` (canonical units,
     hard limits, content hash per row); register ``stage_notes``. Memory stays bounded by
@@ -257,7 +277,7 @@ def _stage_file(
 
     Raises FileRejected for a fault of the whole file, after every batch was counted.
     """
-    convert = read_sql("ingest/10_convert.sql").strip().rstrip(";")
+    convert = read_sql(profile.record.convert_sql).strip().rstrip(";")
     used = con.extract_statements(convert)[0].named_parameters
     params = {k: v for k, v in unit_params.items() if k in used}
     tally = FailureTally(plan)
@@ -316,7 +336,8 @@ def ingest_file(
     keep_patient_id: bool = True,
 ) -> FileOutcome:
     """Load one file; never raises for a problem of the file itself (see ``outcome``)."""
-    result = FileOutcome(path=path, profile=profile.name)
+    record = profile.record
+    result = FileOutcome(path=path, profile=profile.name, kind=record.kind)
     try:
         result.size_bytes = path.stat().st_size
         result.sha256 = file_sha256(path)
@@ -335,7 +356,8 @@ def ingest_file(
         result.outcome, result.reason_code, result.message = "rejected", err.reason_code, str(err)
         return result
 
-    unit_params = {f"unit_{name}": profile.unit_of(name) for name in UNIT_FIELDS}
+    unit_params: dict[str, str | float] = {f"unit_{name}": profile.unit_of(name) for name in record.unit_fields}
+    unit_params |= {"target_min_pct": TARGET_RANGE_PCT[0], "target_max_pct": TARGET_RANGE_PCT[1]}
     names = {"run_id": run_id, "source_file": str(path), "file_sha256": result.sha256}
     contract: ContractOutcome | None = None
     in_transaction = False
@@ -352,14 +374,15 @@ def ingest_file(
         _check_units(con, path, profile, reader, plan)
         con.execute("begin transaction")
         in_transaction = True
-        contract = validate_stage(con, path, run_id, result.sha256)
-        keep_results(con, contract)
-        contract.raise_if_rejected()
+        if record.batch_contract:
+            contract = validate_stage(con, path, run_id, result.sha256)
+            keep_results(con, contract)
+            contract.raise_if_rejected()
         run_sql(con, "ingest/30_classify.sql")
-        run_sql(con, "ingest/40_merge.sql", **names)
+        run_sql(con, record.merge_sql, **names)
         counts = con.execute(read_sql("ingest/50_counts.sql")).fetchall()[0]
         _parsed, quarantined, dup_in_file, superseded, new, corrected, dup_store = counts
-        _quarantine_rows(con, staged.originals, staged.malformed, run_id, str(path), result.sha256)
+        _quarantine_rows(con, staged.originals, staged.malformed, run_id, str(path), result.sha256, record)
         result.rows_quarantined = quarantined + len(staged.malformed)
         result.rows_duplicate = dup_in_file + dup_store
         result.rows_superseded_in_file = superseded
@@ -368,7 +391,9 @@ def ingest_file(
         if not result.balanced:
             raise AssertionError(f"{path.name}: reconciliation failed {result}")
         con.execute(
-            "insert into ingested_files values (?, ?, ?, ?, ?, now()::timestamp, ?, ?, ?, ?, ?, ?, ?)",
+            "insert into ingested_files (file_sha256, source_path, profile, size_bytes, run_id, loaded_at, rows_in, "
+            "rows_loaded, rows_quarantined, rows_duplicate, rows_superseded_in_file, corrections, notes, kind) "
+            "values (?, ?, ?, ?, ?, now()::timestamp, ?, ?, ?, ?, ?, ?, ?, ?)",
             [
                 result.sha256,
                 str(path),
@@ -382,6 +407,7 @@ def ingest_file(
                 result.rows_superseded_in_file,
                 result.corrections,
                 "; ".join(result.notes),
+                record.kind,
             ],
         )
         pause_point("load")  # test-only: crash tests kill the run here, inside the file's transaction
@@ -419,10 +445,13 @@ def _quarantine_rows(
     run_id: str,
     source_file: str,
     sha256: str,
+    record: RecordSpec,
 ) -> None:
-    """Quarantine rows with the original cells as JSON, from the classified stage."""
+    """Quarantine rows with the original cells as JSON, from the classified stage.
+
+    ``record_id`` is the row's key whatever its kind; ``sample_id`` is filled for samples only."""
     bad = con.sql(
-        "select source_row, sample_id, reason_code, failed_columns from stage_set_aside "
+        "select source_row, record_id, reason_code, failed_columns from stage_set_aside "
         "where outcome = 'quarantined' order by source_row"
     ).pl()
     if bad.height:
@@ -433,14 +462,14 @@ def _quarantine_rows(
         extra = pl.DataFrame(
             {
                 "source_row": [m[0] for m in malformed],
-                "sample_id": [None] * len(malformed),
+                "record_id": [None] * len(malformed),
                 "reason_code": [m[1] for m in malformed],
                 "failed_columns": [None] * len(malformed),
                 "original_text": [json.dumps(m[2]) for m in malformed],
             },
             schema={
                 "source_row": pl.Int64,
-                "sample_id": pl.String,
+                "record_id": pl.String,
                 "reason_code": pl.String,
                 "failed_columns": pl.String,
                 "original_text": pl.String,
@@ -449,8 +478,13 @@ def _quarantine_rows(
         rows = pl.concat([rows.cast(extra.schema), extra])  # type: ignore[arg-type]
     if rows.height == 0:
         return
+    sample_id = pl.col("record_id") if record.key_field == "sample_id" else pl.lit(None, dtype=pl.String)
     rows = rows.with_columns(
-        pl.lit(run_id).alias("run_id"), pl.lit(source_file).alias("source_file"), pl.lit(sha256).alias("file_sha256")
+        pl.lit(run_id).alias("run_id"),
+        pl.lit(source_file).alias("source_file"),
+        pl.lit(sha256).alias("file_sha256"),
+        sample_id.alias("sample_id"),
+        pl.lit(record.record_kind).alias("record_kind"),
     )
     con.register("quarantine_frame", rows.to_arrow())
     try:

@@ -6,6 +6,9 @@ result (``haemolysed``): the value is then NULL and the text is kept as a result
 Values stay in the unit the profile declares; conversion to canonical units happens in
 SQL (``sql/ingest/``) with the unit macros, so each conversion factor has one home.
 
+The profile's record kind (``profile.record``: samples or prescriptions) gives the field
+catalogue and the required fields; everything else here is the same for every kind.
+
 A column where every non-empty cell fails (wrong date format, wrong decimal mark, an
 unmapped code list) is a fault of the whole file: ``FileRejected``, one message.
 """
@@ -24,7 +27,7 @@ import polars as pl
 from pipeline.errors import FileRejected
 from pipeline.ingest.read import ROW, RawExport
 from pipeline.profile import Profile
-from pipeline.schema import FIELDS_BY_NAME, REQUIRED_FIELDS, UNIT_CHOICES, Kind
+from pipeline.schema import UNIT_CHOICES, Kind
 
 REASON = "__reason"
 FAILED = "__failed"
@@ -78,7 +81,8 @@ SYSTEMATIC_MIN_CELLS = 3
 SYSTEMATIC_SHARE = 0.95
 SYSTEMATIC_MIN_CELLS_FOR_SHARE = 20
 _VALUE = "__value"  # the distinct texts of one column while they are parsed
-_IDENTIFIERS = frozenset({"sample_id", "patient_id"})  # nearly every cell differs: parsed cell by cell
+# Nearly every cell differs: parsed cell by cell.
+_IDENTIFIERS = frozenset({"sample_id", "patient_id", "prescription_id", "encounter_id"})
 FILE_REASON_FOR_CELL_REASON = {
     "DATE_UNPARSEABLE": "DATE_FORMAT_MISMATCH",
     "NUMBER_FORMAT": "DIALECT_MISMATCH",
@@ -183,7 +187,7 @@ def _date(name: str, source: pl.Expr, dtype: pl.DataType, profile: Profile) -> l
 
 
 def _code(name: str, source: pl.Expr, profile: Profile) -> list[pl.Expr]:
-    codes = profile.sample_type_codes if name == "sample_type" else profile.device_codes
+    codes = profile.codes.get(name, {})
     text = source.cast(pl.String).str.strip_chars()
     mapped = text.str.to_lowercase().replace_strict(codes, default=None, return_dtype=pl.String)
     fail = pl.when(_missing(text, profile)).then(None).when(mapped.is_null()).then(pl.lit("UNKNOWN_CODE"))
@@ -213,7 +217,7 @@ def _text(name: str, source: pl.Expr, profile: Profile) -> list[pl.Expr]:
 
 
 def _unit_column(name: str, source: pl.Expr, profile: Profile) -> list[pl.Expr]:
-    family = FIELDS_BY_NAME[name].unit_family
+    family = profile.record.fields_by_name[name].unit_family
     assert family is not None
     text = source.cast(pl.String).str.strip_chars()
     unit = text.str.to_lowercase().replace_strict(UNIT_SPELLINGS, default=None, return_dtype=pl.String)
@@ -243,7 +247,7 @@ def plan_columns(path: Path, header: list[str], profile: Profile) -> ColumnPlan:
         found = by_fold.get(source.strip().casefold())
         if found is not None:
             mapped[canonical] = found
-        elif canonical in REQUIRED_FIELDS:
+        elif canonical in profile.record.required:
             missing_required.append(f"{source!r} ({canonical})")
         else:
             missing_optional.append(canonical)
@@ -340,7 +344,7 @@ def parse_export(raw: RawExport, profile: Profile) -> ParsedExport:
 
 
 def _cell_exprs(canonical: str, source: pl.Expr, dtype: pl.DataType, profile: Profile) -> list[pl.Expr]:
-    spec = FIELDS_BY_NAME[canonical]
+    spec = profile.record.fields_by_name[canonical]
     if spec.kind is Kind.NUMBER:
         return _number(canonical, source, dtype, profile)
     if spec.kind is Kind.TIMESTAMP:
@@ -391,8 +395,9 @@ def _typed_cells(
     columns: list[tuple[str, Callable[[pl.Expr], list[pl.Expr]], bool]] = []
     number_fields: list[str] = []
     fallible: set[str] = set(plan.unit_sources.values())  # source columns whose cells can fail
+    fields = profile.record.fields_by_name
     for canonical, source in plan.mapped.items():
-        kind, dtype = FIELDS_BY_NAME[canonical].kind, schema[source]
+        kind, dtype = fields[canonical].kind, schema[source]
         if kind is Kind.NUMBER:
             number_fields.append(canonical)
         if kind is not Kind.TEXT:
@@ -446,13 +451,14 @@ def _typed_cells(
 def parse_batch(raw: RawExport, profile: Profile, plan: ColumnPlan, tally: FailureTally) -> ParsedExport:
     """Parse the cells of one batch of a file; failures are added to ``tally``."""
     typed, number_fields, non_empty = _typed_cells(raw.cells, plan, profile)
+    required = profile.record.required
 
     fail_columns = [c for c in typed.columns if c.endswith("__fail")]
     tally.add(typed, fail_columns, non_empty)
 
     required_missing = [
         pl.when(pl.col(f).is_null() & pl.col(f"{f}__fail").is_null()).then(pl.lit("MISSING_REQUIRED")).alias(f)
-        for f in REQUIRED_FIELDS
+        for f in required
     ]
     reasons = [
         pl.coalesce([pl.col(c) for c in fail_columns] + [e for e in required_missing]).alias(REASON),
@@ -463,7 +469,7 @@ def parse_batch(raw: RawExport, profile: Profile, plan: ColumnPlan, tally: Failu
             ]
             + [
                 pl.when(e.is_not_null()).then(pl.lit(f + ":MISSING_REQUIRED"))
-                for f, e in zip(REQUIRED_FIELDS, required_missing, strict=True)
+                for f, e in zip(required, required_missing, strict=True)
             ],
             separator="; ",
             ignore_nulls=True,
@@ -473,7 +479,7 @@ def parse_batch(raw: RawExport, profile: Profile, plan: ColumnPlan, tally: Failu
     failing = [c for c in fail_columns if typed.get_column(c).null_count() < typed.height]
     bad = pl.any_horizontal(
         [pl.col(c).is_not_null() for c in failing]
-        + [pl.col(f).is_null() & pl.col(f"{f}__fail").is_null() for f in REQUIRED_FIELDS]
+        + [pl.col(f).is_null() & pl.col(f"{f}__fail").is_null() for f in required]
     )
     where = typed.select(bad.arg_true()).to_series() if typed.height else pl.Series(dtype=pl.UInt32)
     explained = typed[where].select(reasons).with_columns(

@@ -8,11 +8,13 @@
 -- Hard limits: temp table field_limits (canonical units, pipeline/schema.py); a parsed row
 -- with any value outside them gets reason IMPLAUSIBLE and every such field, in name order,
 -- in failed_columns.
+-- record_id: the row's key under the name every record kind shares (30_classify.sql).
 -- Grain: one row per data record of the batch.
 with converted as (
     select
         __row as source_row,
         sample_id,
+        sample_id as record_id,
         patient_id,
         patient_key,
         unit,
@@ -48,6 +50,16 @@ with converted as (
         mean_airway_pressure_cmh2o,
         peep_cmh2o,
         hypercapnic_risk,
+        encounter_id,
+        encounter_key,
+        saturation_to_pct(target_spo2_low_pct, coalesce(target_spo2_low_pct__unit, $unit_target_spo2_low_pct))
+            as target_spo2_low_pct,
+        saturation_to_pct(target_spo2_high_pct, coalesce(target_spo2_high_pct__unit, $unit_target_spo2_high_pct))
+            as target_spo2_high_pct,
+        o2_prescribed,
+        collection_method,
+        operator_id,
+        operator_key,
         __status as result_status,
         __reason as parse_reason,
         __failed as parse_failed
@@ -97,6 +109,10 @@ limits as (
         max(hard_max) filter (where field = 'sao2_pct') as sao2_pct__max,
         max(hard_min) filter (where field = 'spo2_pct') as spo2_pct__min,
         max(hard_max) filter (where field = 'spo2_pct') as spo2_pct__max,
+        max(hard_min) filter (where field = 'target_spo2_low_pct') as target_spo2_low_pct__min,
+        max(hard_max) filter (where field = 'target_spo2_low_pct') as target_spo2_low_pct__max,
+        max(hard_min) filter (where field = 'target_spo2_high_pct') as target_spo2_high_pct__min,
+        max(hard_max) filter (where field = 'target_spo2_high_pct') as target_spo2_high_pct__max,
         max(hard_min) filter (where field = 'temperature_c') as temperature_c__min,
         max(hard_max) filter (where field = 'temperature_c') as temperature_c__max
     from field_limits
@@ -127,6 +143,8 @@ checked as (
                 case when c.ph < l.ph__min or c.ph > l.ph__max then 'ph:IMPLAUSIBLE' end,
                 case when c.sao2_pct < l.sao2_pct__min or c.sao2_pct > l.sao2_pct__max then 'sao2_pct:IMPLAUSIBLE' end,
                 case when c.spo2_pct < l.spo2_pct__min or c.spo2_pct > l.spo2_pct__max then 'spo2_pct:IMPLAUSIBLE' end,
+                case when c.target_spo2_high_pct < l.target_spo2_high_pct__min or c.target_spo2_high_pct > l.target_spo2_high_pct__max then 'target_spo2_high_pct:IMPLAUSIBLE' end,
+                case when c.target_spo2_low_pct < l.target_spo2_low_pct__min or c.target_spo2_low_pct > l.target_spo2_low_pct__max then 'target_spo2_low_pct:IMPLAUSIBLE' end,
                 case when c.temperature_c < l.temperature_c__min or c.temperature_c > l.temperature_c__max then 'temperature_c:IMPLAUSIBLE' end
             ), '')
         end as limits_failed
@@ -137,10 +155,25 @@ select
     * exclude (limits_failed),
     coalesce(parse_reason, case when limits_failed is not null then 'IMPLAUSIBLE' end) as reason_code,
     coalesce(parse_failed, limits_failed) as failed_columns,
-    hash(patient_id, unit, analyser_id, age_years, birth_date, collected_at, resulted_at,
-         sample_type, o2_device, o2_flow_l_min, fio2, barometric_pressure_mmhg, temperature_c,
-         ph, paco2_mmhg, pao2_mmhg, hco3_mmol_l, base_excess_mmol_l, sao2_pct,
-         sao2_is_calculated, spo2_pct, hb_g_dl, na_mmol_l, k_mmol_l, cl_mmol_l,
-         lactate_mmol_l, mean_airway_pressure_cmh2o, peep_cmh2o, hypercapnic_risk,
-         result_status, glucose_mmol_l, cohb_pct, methb_pct) as content_hash
+    -- Fields added later join the hash only when present, so a record without them keeps the
+    -- hash it had before they existed and a re-delivery is still a duplicate, not a correction.
+    -- Identifiers other than the patient's are hashed by pseudonym (the raw id may not be kept).
+    case
+        when encounter_key is null and target_spo2_low_pct is null and target_spo2_high_pct is null
+             and o2_prescribed is null and collection_method is null and operator_key is null
+        then hash(patient_id, unit, analyser_id, age_years, birth_date, collected_at, resulted_at,
+                  sample_type, o2_device, o2_flow_l_min, fio2, barometric_pressure_mmhg, temperature_c,
+                  ph, paco2_mmhg, pao2_mmhg, hco3_mmol_l, base_excess_mmol_l, sao2_pct,
+                  sao2_is_calculated, spo2_pct, hb_g_dl, na_mmol_l, k_mmol_l, cl_mmol_l,
+                  lactate_mmol_l, mean_airway_pressure_cmh2o, peep_cmh2o, hypercapnic_risk,
+                  result_status, glucose_mmol_l, cohb_pct, methb_pct)
+        else hash(patient_id, unit, analyser_id, age_years, birth_date, collected_at, resulted_at,
+                  sample_type, o2_device, o2_flow_l_min, fio2, barometric_pressure_mmhg, temperature_c,
+                  ph, paco2_mmhg, pao2_mmhg, hco3_mmol_l, base_excess_mmol_l, sao2_pct,
+                  sao2_is_calculated, spo2_pct, hb_g_dl, na_mmol_l, k_mmol_l, cl_mmol_l,
+                  lactate_mmol_l, mean_airway_pressure_cmh2o, peep_cmh2o, hypercapnic_risk,
+                  result_status, glucose_mmol_l, cohb_pct, methb_pct,
+                  encounter_key, target_spo2_low_pct, target_spo2_high_pct, o2_prescribed,
+                  collection_method, operator_key)
+    end as content_hash
 from checked;

@@ -65,12 +65,12 @@ where reason_code is null
   and source_row not in (select source_row from stage_set_aside)
   and source_row not in (select source_row from stage_held);
 
-insert into merged_duplicates
-select sample_id, $file_sha256, source_row, 'row in the same file', $run_id
+insert into merged_duplicates (sample_id, record_id, record_kind, file_sha256, source_row, duplicate_of, run_id)
+select sample_id, sample_id, 'sample', $file_sha256, source_row, 'row in the same file', $run_id
 from stage_set_aside
 where outcome = 'duplicate'
 union all
-select sample_id, $file_sha256, source_row, 'record already held', $run_id
+select sample_id, sample_id, 'sample', $file_sha256, source_row, 'record already held', $run_id
 from stage_held
 where same_values;
 

@@ -38,6 +38,14 @@ create table if not exists records (
     mean_airway_pressure_cmh2o double,
     peep_cmh2o double,
     hypercapnic_risk boolean,
+    encounter_id varchar,               -- raw admission/episode id; NULL when the site keeps no identifiers
+    encounter_key varchar,              -- keyed pseudonym of encounter_id (its own domain)
+    target_spo2_low_pct double,         -- prescribed SpO2 target range as charted on the sample
+    target_spo2_high_pct double,
+    o2_prescribed boolean,              -- oxygen prescribed at sampling, as charted on the sample
+    collection_method varchar,          -- arterial_puncture, arterial_line, capillary, venous_puncture, ...
+    operator_id varchar,                -- raw staff id; NULL when the site keeps no identifiers
+    operator_key varchar,               -- keyed pseudonym of operator_id (its own domain)
     result_status varchar,              -- reported, or a text result such as haemolysed
     content_hash ubigint,               -- hash of the values; tells a duplicate from a correction
     source_file varchar,
@@ -60,6 +68,53 @@ alter table records add column if not exists methb_pct double;
 alter table superseded_records add column if not exists glucose_mmol_l double;
 alter table superseded_records add column if not exists cohb_pct double;
 alter table superseded_records add column if not exists methb_pct double;
+alter table records add column if not exists encounter_id varchar;
+alter table records add column if not exists encounter_key varchar;
+alter table records add column if not exists target_spo2_low_pct double;
+alter table records add column if not exists target_spo2_high_pct double;
+alter table records add column if not exists o2_prescribed boolean;
+alter table records add column if not exists collection_method varchar;
+alter table records add column if not exists operator_id varchar;
+alter table records add column if not exists operator_key varchar;
+alter table superseded_records add column if not exists encounter_id varchar;
+alter table superseded_records add column if not exists encounter_key varchar;
+alter table superseded_records add column if not exists target_spo2_low_pct double;
+alter table superseded_records add column if not exists target_spo2_high_pct double;
+alter table superseded_records add column if not exists o2_prescribed boolean;
+alter table superseded_records add column if not exists collection_method varchar;
+alter table superseded_records add column if not exists operator_id varchar;
+alter table superseded_records add column if not exists operator_key varchar;
+
+-- The oxygen prescriptions feed ([[inputs]] kind = "prescriptions"): one row per
+-- prescription_id, the latest delivery. Loaded like samples: ledger, quarantine,
+-- duplicates, corrections (version + 1, the earlier version to superseded_prescriptions).
+create table if not exists prescriptions (
+    prescription_id varchar primary key, -- the source system's own order id
+    patient_id varchar,                 -- raw identifier; NULL when the site keeps none
+    patient_key varchar,                -- same pseudonym as records.patient_key for the same patient
+    encounter_id varchar,
+    encounter_key varchar,
+    unit varchar,
+    start_at timestamp,                 -- UTC
+    end_at timestamp,                   -- UTC; NULL = open (still active)
+    target_spo2_low_pct double,         -- percent; both ends within 50-100 and low < high when both present
+    target_spo2_high_pct double,
+    o2_device varchar,
+    o2_flow_l_min double,
+    fio2 double,                        -- fraction
+    prescriber_role varchar,
+    content_hash ubigint,
+    source_file varchar,
+    source_row bigint,
+    file_sha256 varchar,
+    run_id varchar,
+    version integer
+);
+
+create table if not exists superseded_prescriptions as
+    select *, null::varchar as superseded_by_file, null::bigint as superseded_by_row,
+           null::varchar as superseded_in_run
+    from prescriptions with no data;
 
 -- Every input row that could not become a record.
 create table if not exists quarantine (
@@ -72,6 +127,11 @@ create table if not exists quarantine (
     failed_columns varchar,             -- field:REASON pairs, every failing cell of the row
     original_text varchar               -- the row's cells as JSON (source header -> text)
 );
+-- Prescriptions are quarantined here too: record_kind says which feed, record_id holds the
+-- row's key (sample_id or prescription_id) for both; sample_id stays the sample's.
+alter table quarantine add column if not exists record_kind varchar default 'sample';
+alter table quarantine add column if not exists record_id varchar;
+update quarantine set record_id = sample_id where record_id is null and sample_id is not null;
 
 -- Input rows merged as duplicates of a record (identical values): counted, not stored twice.
 create table if not exists merged_duplicates (
@@ -81,6 +141,8 @@ create table if not exists merged_duplicates (
     duplicate_of varchar,               -- 'row in the same file' or 'record already held'
     run_id varchar
 );
+alter table merged_duplicates add column if not exists record_kind varchar default 'sample';
+alter table merged_duplicates add column if not exists record_id varchar;  -- prescription_id for prescriptions
 
 -- Qualified values (">600") and text results ("haemolysed") kept beside the record.
 create table if not exists record_value_notes (
@@ -108,6 +170,7 @@ create table if not exists ingested_files (
     corrections bigint,
     notes varchar
 );
+alter table ingested_files add column if not exists kind varchar default 'samples';  -- samples | prescriptions
 
 -- What happened to every file each run saw: loaded, already_loaded or rejected.
 create table if not exists file_events (
