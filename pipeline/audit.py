@@ -35,6 +35,7 @@ LAYER_TABLES = (
     "audit_unit_period_counts",
     "audit_unit_period_flags",
     "audit_unit_period_patients",
+    "audit_unit_period_episodes",
     "audit_layer_runs",
     "audit_layer_state",
 )
@@ -114,6 +115,14 @@ def audit_parameters(config: SiteConfig, catalogue: Catalogue, run_id: str) -> d
         "hypoxaemia_sat_pct": catalogue.derive["hypoxaemia_sat_pct"],
         "hyperoxaemia_pao2_mmhg": catalogue.derive["hyperoxaemia_pao2_mmhg"],
     }
+
+
+def store_unit_types(con: duckdb.DuckDBPyConnection, config: SiteConfig) -> None:
+    """The site's unit types (``[unit_types]``) as table ``site_unit_types``, read by the audit
+    cells: units are compared with the units of their own type."""
+    con.execute("create or replace table site_unit_types (unit varchar, unit_type varchar)")
+    if config.unit_types:
+        con.executemany("insert into site_unit_types values (?, ?)", sorted(config.unit_types.items()))
 
 
 def _existing_tables(con: duckdb.DuckDBPyConnection) -> set[str]:
@@ -239,13 +248,15 @@ def build_audit(
     run_id: str,
     *,
     incremental: bool = False,
+    threshold: int | None = None,
 ) -> bool:
     """Rebuild every audit table in one transaction (the new tables replace the old at commit).
 
     With ``incremental`` (a nightly run, after ``analyse``), the aggregate layer is updated
     for ``scope_samples`` only, when it is current: same period setting and layer SQL, and
     every earlier analysed run folded in. Otherwise, and by default, the layer is rebuilt from
-    every record. Returns True when the layer was updated incrementally.
+    every record. ``threshold`` replaces the site's small-cell threshold (the internal
+    audience, pipeline/audience.py). Returns True when the layer was updated incrementally.
     """
     missing = [t for t in _NEEDED if t not in _existing_tables(con)]
     if missing:
@@ -253,11 +264,14 @@ def build_audit(
             f"the store has no analysed records yet (missing {', '.join(missing)}); run the pipeline first"
         )
     params = audit_parameters(config, catalogue, run_id)
+    if threshold is not None:
+        params["k"] = threshold
     sha256 = layer_sha256(config)
     con.execute("begin transaction")
     try:
         if "rule_catalogue" not in _existing_tables(con):
             store_catalogue(con, catalogue)
+        store_unit_types(con, config)
         updated = incremental and _layer_current(con, sha256)
         run_sql(con, _LAYER_SCOPE if updated else _LAYER_RESET)
         run_sql(con, _LAYER_UPDATE, period=config.audit.period, layer_sha256=sha256)

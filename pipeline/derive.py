@@ -36,6 +36,7 @@ def derive(con: duckdb.DuckDBPyConnection, catalogue: Catalogue, config: SiteCon
     if con.execute("select rebuild from scope_settings").fetchall()[0][0]:
         con.execute("drop table if exists derived")
     store_unit_targets(con, config)
+    run_sql(con, "derive/05_prescription_link.sql")
     run_sql(
         con,
         "derive/10_derived.sql",

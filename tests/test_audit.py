@@ -567,17 +567,25 @@ def test_laney_p_prime_check_values(chart_store):
 
 @pytest.mark.parametrize(("limits", "prefix"), [("p_chart", ""), ("laney", "laney_")])
 def test_beyond_limits_uses_the_chosen_limits(chart_store, limits, prefix):
-    for points in charts(*chart_store, chart_limits=limits).values():
-        expected = [p["rate"] < p[f"{prefix}lower_limit"] or p["rate"] > p[f"{prefix}upper_limit"] for p in points]
+    by_unit = charts(*chart_store, chart_limits=limits)
+    for points in by_unit.values():
+        expected = [
+            None if p["partial"] else p["rate"] < p[f"{prefix}lower_limit"] or p["rate"] > p[f"{prefix}upper_limit"]
+            for p in points
+        ]
         assert [p["beyond_limits"] for p in points] == expected
+    assert by_unit["Shift"][-1]["partial"]  # the month under way is among the points, not judged
 
 
 def test_shift_rule_needs_the_configured_run_length(chart_store):
-    # 8 months at 0.20 then 2 at 0.02: centre 164/1000 = 0.164, so the first 8 points sit above it.
+    # 8 months at 0.20 then 2 at 0.02; the 10th (October 2024) is under way (the store's latest sample is on its
+    # 3rd day): not judged and out of the centre, 162/900 = 0.18, so the first 8 points sit above it.
     points = chart(*chart_store, "Shift")
-    assert [p["in_shift"] for p in points] == [True] * 8 + [False, False]
+    assert [p["partial"] for p in points] == [False] * 9 + [True]
+    assert {(p["centre"], p["centre_basis"]) for p in points} == {(pytest.approx(0.18), "complete periods")}
+    assert [p["in_shift"] for p in points] == [True] * 8 + [False, None]
     assert "shift" in points[0]["signals"]
-    assert [p["beyond_limits"] for p in points][-2:] == [True, True]  # 0.02 < LCL 0.164 - 3 x 0.037 = 0.053
+    assert [p["beyond_limits"] for p in points][-2:] == [True, None]  # 0.02 < LCL 0.18 - 3 x 0.0384 = 0.065
     assert not any(p["in_shift"] for p in chart(*chart_store, "Shift", shift_run=9))
 
 
@@ -588,21 +596,71 @@ def test_trend_rule_counts_points_not_steps(chart_store):
     assert not any(p["in_trend"] for p in chart(*chart_store, "Trend", trend_run=7))
 
 
+# Hand-counted: 3 months at 2 % and 7 at 14 % (n 100 each, January-October 2024), then November under way with 3
+# of 5 samples hypoxaemic. Complete periods: 104 / 1000 = 0.104; with November 107 / 1005.
+PARTIAL_X = [2, 2, 2] + [14] * 7 + [3]
+PARTIAL_N = [100] * 10 + [5]
+
+
+def test_partial_period_is_drawn_but_not_judged_nor_in_the_centre(tmp_path):
+    con = build_store(tmp_path, monthly_series("Ward P", PARTIAL_X, PARTIAL_N), audit_config(tmp_path, k=1))
+    points = chart(con, tmp_path, "Ward P")
+    assert [p["partial"] for p in points] == [False] * 10 + [True]
+    under_way = points[-1]
+    assert (under_way["period"], under_way["denominator"], under_way["rate"]) == ("2024-11", 5, pytest.approx(0.6))
+    # judged, it would breach its limits (UCL 0.104 + 3 x sqrt(0.104 x 0.896 / 5) = 0.514) and complete a run of
+    # 8 above the centre (the 7 months at 14 % and itself): its small n alone, so it is not judged
+    assert under_way["rate"] > under_way["upper_limit"]
+    assert [under_way[c] for c in ("beyond_limits", "in_shift", "in_trend", "signals")] == [None] * 4
+    assert not any(p["in_shift"] for p in points[:-1])
+    assert {(p["centre"], p["centre_basis"]) for p in points} == {(pytest.approx(0.104), "complete periods")}
+    # the complete months are charted exactly as when the month under way is left out
+    complete = chart(con, tmp_path, "Ward P", complete_periods_only=True)
+    columns = ("period", "rate", "centre", "lower_limit", "upper_limit", "laney_sigma_z", "signals", "in_trend")
+    assert [{c: p[c] for c in columns} for p in points[:-1]] == [{c: p[c] for c in columns} for p in complete]
+    assert not any(p["partial"] for p in complete)
+    con.close()
+
+
+def test_partial_period_with_hidden_counts_keeps_the_published_centre(tmp_path):
+    # k 5: November's 3 hypoxaemic samples (and the first three months' 2) are hidden. The complete periods' centre
+    # would be 107 - 3 over 1005 - 5: publishing it would give November's hidden 3 away. The centre is then the
+    # whole window's, as audit_rates publishes it, and says so; November is still not judged.
+    config = audit_config(tmp_path, k=5)
+    con = build_store(tmp_path, monthly_series("Ward P", PARTIAL_X, PARTIAL_N), config)
+    audit(con, config)
+    points = frame(con, "audit_control_chart", "measure = 'hypoxaemia' and unit = 'Ward P'").sort("period_start")
+    points = points.to_dicts()
+    assert points[-1]["partial"] and points[-1]["rate"] is None
+    whole = frame(con, "audit_rates", "measure = 'hypoxaemia' and unit = 'Ward P' and all_periods").to_dicts()[0]
+    assert whole["rate"] == pytest.approx(107 / 1005)
+    assert {(p["centre"], p["centre_basis"]) for p in points} == {
+        (whole["rate"], "all periods, the partial one included")
+    }
+    assert [p["beyond_limits"] for p in points][-1] is None
+    assert all(p["beyond_limits"] is not None for p in points if p["rate"] is not None and not p["partial"])
+    con.close()
+
+
 # --------------------------------------------------------------------------------------
 # Reporting window and settings
 # --------------------------------------------------------------------------------------
 
 
-def test_incomplete_latest_period_is_left_out(tmp_path):
+def test_incomplete_latest_period_is_shown_as_partial_or_left_out(tmp_path):
     rows = [
         record("JAN", collected_at=JAN, resulted_at=JAN + timedelta(minutes=5)),
         record("FEB", patient_id="P2", collected_at=FEB, resulted_at=FEB + timedelta(minutes=5)),
     ]
     config = audit_config(tmp_path, k=1)
     con = build_store(tmp_path, rows, config)
+    # by default the month under way (February: the latest sample is before its last day) is shown, marked
     audit(con, config)
+    shown = frame(con, "audit_rates", "measure = 'hypoxaemia' and all_units").select("period", "partial_period")
+    assert sorted(shown.rows()) == [("2026-01", False), ("2026-02", True), ("all periods", True)]
+    audit(con, audit_config(tmp_path, k=1, complete_periods_only=True))
     assert frame(con, "audit_volume", "not all_periods")["period"].unique().to_list() == ["2026-01"]
-    audit(con, audit_config(tmp_path, k=1, complete_periods_only=False, period="week"))
+    audit(con, audit_config(tmp_path, k=1, period="week"))
     assert sorted(frame(con, "audit_volume", "not all_periods")["period"].unique().to_list()) == [
         "2026-W03",
         "2026-W07",
@@ -675,6 +733,17 @@ RATE_COUNTS = {
     "above_target_on_oxygen": ("above_target_on_oxygen", "on_oxygen"),
     "hyperoxaemia_on_oxygen": ("hyperoxaemic_on_oxygen", "on_oxygen"),
     "aa_above_age_limit": ("aa_above_limit", "aa_assessed"),
+    "on_oxygen_prescribed": ("rx_active", "rx_known"),
+    "prescribed_target_documented": ("rx_with_target", "rx_known"),
+    "within_prescribed_target": ("rx_within_target", "rx_target_assessed"),
+    "above_prescribed_target": ("rx_above_target", "rx_target_assessed"),
+    "below_prescribed_target": ("rx_below_target", "rx_target_assessed"),
+    "oxygen_not_prescribed": ("rx_not_prescribed", "rx_known"),
+    "prescribed_target_disagrees_with_risk": ("rx_target_conflicts_risk", "rx_risk_documented"),
+    "episode_first_sample_hypoxaemic": ("episodes_first_hypoxaemic", "episodes"),
+    "episode_any_hypoxaemia": ("episodes_any_hypoxaemic", "episodes"),
+    "episode_any_above_target_on_oxygen": ("episodes_any_above_target", "episodes_on_oxygen"),
+    "episode_any_out_of_target_on_oxygen": ("episodes_any_out_of_target", "episodes_on_oxygen"),
 }
 
 
@@ -712,8 +781,19 @@ def published_lines(con: duckdb.DuckDBPyConnection) -> list[tuple[str, list[tupl
                 members.sort(key=lambda r: not r["all_periods"])
                 lines.append((f"{table}.{column} {name}", [(count_key(table, column, r), column, r) for r in members]))
             for name, members in by_col.items():  # one period across units; total: all units
-                members.sort(key=lambda r: not r["all_units"])
-                lines.append((f"{table}.{column} {name}", [(count_key(table, column, r), column, r) for r in members]))
+                typed = [r for r in members if r["all_units"] and r["unit_type"] is not None]
+                if not typed:
+                    members.sort(key=lambda r: not r["all_units"])
+                    lines.append(
+                        (f"{table}.{column} {name}", [(count_key(table, column, r), column, r) for r in members])
+                    )
+                    continue
+                # units within their type (total: all units of the type); types within the site
+                for t in typed:
+                    line = [t] + [r for r in members if not r["all_units"] and r["unit_type"] == t["unit_type"]]
+                    lines.append((f"{table}.{column} {name} {t['unit']}", [(count_key(table, column, r), column, r) for r in line]))
+                site = [r for r in members if r["all_units"] and r["unit_type"] is None]
+                lines.append((f"{table}.{column} {name} types", [(count_key(table, column, r), column, r) for r in site + typed]))
     volume = frame(con, "audit_volume").to_dicts()
     for r in volume:
         for parts in (
@@ -735,6 +815,15 @@ def published_lines(con: duckdb.DuckDBPyConnection) -> list[tuple[str, list[tupl
         split = [measures[m] for m in ("hypoxaemia", "undocumented_oxygen", "above_target_on_oxygen")]
         members = [(count_key("audit_rates", "denominator", r), "denominator", r) for r in split]
         lines.append((f"oxygen documentation split {key}", members))
+        # On oxygen with prescribing known = prescribed + not prescribed; with a prescribed target and a
+        # saturation = within + above + below.
+        for total, parts in (
+            ("on_oxygen_prescribed", ("on_oxygen_prescribed", "oxygen_not_prescribed")),
+            ("within_prescribed_target", ("below_prescribed_target", "within_prescribed_target", "above_prescribed_target")),
+        ):
+            members = [(count_key("audit_rates", "denominator", measures[total]), "denominator", measures[total])]
+            members += [(count_key("audit_rates", "numerator", measures[m]), "numerator", measures[m]) for m in parts]
+            lines.append((f"prescribing split {total} {key}", members))
     # Samples = labelled arterial or of unknown type (the FiO2/device documentation denominator) + excluded for
     # their sample type.
     for r in volume:
@@ -911,11 +1000,11 @@ def bridge_store() -> duckdb.DuckDBPyConnection:
     cells += [(None, p, sum(inner[(u, p)] for u in units), False) for p in periods]
     cells += [(None, None, sum(inner.values()), False)]
     con.execute(
-        "create temp table audit_cell (cell_id bigint, family varchar, unit varchar, period_start date, "
-        "value bigint, additive boolean, hidden boolean, hidden_reason varchar)"
+        "create temp table audit_cell (cell_id bigint, family varchar, unit varchar, unit_type varchar, "
+        "period_start date, value bigint, additive boolean, hidden boolean, hidden_reason varchar)"
     )
     con.executemany(
-        "insert into audit_cell values (?, 'samples', ?, ?, ?, true, ?, case when ? then 'small count' end)",
+        "insert into audit_cell values (?, 'samples', ?, null, ?, ?, true, ?, case when ? then 'small count' end)",
         [
             [i + 1, u, None if p is None else datetime(2026, p, 1).date(), v, h, h]
             for i, (u, p, v, h) in enumerate(cells)

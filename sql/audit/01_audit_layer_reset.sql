@@ -7,6 +7,7 @@ drop table if exists audit_sample_flag;
 drop table if exists audit_unit_period_counts;
 drop table if exists audit_unit_period_flags;
 drop table if exists audit_unit_period_patients;
+drop table if exists audit_unit_period_episodes;
 drop table if exists audit_layer_runs;
 drop table if exists audit_layer_state;
 

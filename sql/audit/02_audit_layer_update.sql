@@ -22,6 +22,17 @@
 --   audit_unit_period_flags     per (unit, period, rule): samples flagged.
 --   audit_unit_period_patients  per (unit, period): the distinct patient_key values, so that
 --                               patients over several periods or units are counted once.
+--   audit_unit_period_episodes  per (unit, period): episodes (an encounter, or a patient-day
+--                               where no encounter is exported: derived.episode_key) counted
+--                               once, in the unit and period of their first included adult
+--                               arterial sample with a target that applies; rebuilt from
+--                               audit_sample_fact every run (an episode's later samples
+--                               change its counts, and a grouping of the facts is cheap).
+-- Prescribing families (rx_*) count included adult arterial samples with a target that
+-- applies (oxygen_assessed) and supplemental oxygen documented (on_oxygen), by the
+-- prescription linked to them in the derive stage (derived.prescription_status); the
+-- hypercapnic-risk agreement counts such samples with a prescribed target whether on
+-- oxygen or not.
 -- A (unit, period) pair is re-aggregated only when one of its facts changed: a new sample,
 -- a corrected one (also in the pair it moved out of), or a changed flag or status.
 
@@ -44,8 +55,14 @@ with placed as (
         coalesce(d.on_supplemental_oxygen, false) as on_supplemental_oxygen,
         d.arterial_saturation_pct,
         d.target_high_pct,
+        d.target_low_pct,
         d.aa_gradient_excess_mmhg,
         d.pf_band,
+        d.episode_key,
+        d.prescription_status,
+        d.prescribed_target_position,
+        d.prescribed_target_conflicts_risk,
+        r.hypercapnic_risk,
         m.sample_id is not null as device_flagged
     from audit_layer_scope as sc
     join records as r on r.sample_id = sc.sample_id
@@ -116,7 +133,31 @@ select
     s.gas_exchange_assessed and s.pf_band = 'severe' as pf_severe,
     s.gas_exchange_assessed and s.pf_band = 'moderate' as pf_moderate,
     s.gas_exchange_assessed and s.pf_band = 'mild' as pf_mild,
-    s.gas_exchange_assessed and s.pf_band = 'none' as pf_above_300
+    s.gas_exchange_assessed and s.pf_band = 'none' as pf_above_300,
+    -- on oxygen, and whether a prescription (or its absence) is known for the sample
+    s.oxygen_assessed and s.oxygen_documented_on and s.prescription_status is not null
+        and s.prescription_status <> 'prescription_unknown' as rx_known,
+    s.oxygen_assessed and s.oxygen_documented_on
+        and s.prescription_status in ('prescribed', 'prescribed_without_target') as rx_active,
+    s.oxygen_assessed and s.oxygen_documented_on and s.prescription_status = 'not_prescribed' as rx_not_prescribed,
+    s.oxygen_assessed and s.oxygen_documented_on and s.prescription_status = 'prescribed' as rx_with_target,
+    s.oxygen_assessed and s.oxygen_documented_on and s.prescription_status = 'prescribed'
+        and s.prescribed_target_position is not null as rx_target_assessed,
+    s.oxygen_assessed and s.oxygen_documented_on and s.prescription_status = 'prescribed'
+        and s.prescribed_target_position = 'within' as rx_within_target,
+    s.oxygen_assessed and s.oxygen_documented_on and s.prescription_status = 'prescribed'
+        and s.prescribed_target_position = 'above' as rx_above_target,
+    s.oxygen_assessed and s.oxygen_documented_on and s.prescription_status = 'prescribed'
+        and s.prescribed_target_position = 'below' as rx_below_target,
+    s.oxygen_assessed and s.prescription_status = 'prescribed' and s.hypercapnic_risk is not null
+        as rx_risk_documented,
+    s.oxygen_assessed and s.prescription_status = 'prescribed' and s.hypercapnic_risk is not null
+        and coalesce(s.prescribed_target_conflicts_risk, false) as rx_target_conflicts_risk,
+    -- episode facts: the episode, and whether this sample is out of its target on oxygen
+    s.episode_key,
+    s.oxygen_assessed and s.oxygen_documented_on
+        and (s.arterial_saturation_pct > s.target_high_pct or s.arterial_saturation_pct < s.target_low_pct)
+        as out_of_target_on_oxygen
 from status as s;
 
 create or replace temp table audit_flag_now as
@@ -187,7 +228,17 @@ select
     count(*) filter (where f.pf_severe) as pf_severe,
     count(*) filter (where f.pf_moderate) as pf_moderate,
     count(*) filter (where f.pf_mild) as pf_mild,
-    count(*) filter (where f.pf_above_300) as pf_above_300
+    count(*) filter (where f.pf_above_300) as pf_above_300,
+    count(*) filter (where f.rx_known) as rx_known,
+    count(*) filter (where f.rx_active) as rx_active,
+    count(*) filter (where f.rx_not_prescribed) as rx_not_prescribed,
+    count(*) filter (where f.rx_with_target) as rx_with_target,
+    count(*) filter (where f.rx_target_assessed) as rx_target_assessed,
+    count(*) filter (where f.rx_within_target) as rx_within_target,
+    count(*) filter (where f.rx_above_target) as rx_above_target,
+    count(*) filter (where f.rx_below_target) as rx_below_target,
+    count(*) filter (where f.rx_risk_documented) as rx_risk_documented,
+    count(*) filter (where f.rx_target_conflicts_risk) as rx_target_conflicts_risk
 from audit_sample_fact as f
 semi join audit_touched as t on t.unit = f.unit and t.period_start = f.period_start
 group by f.unit, f.period_start;
@@ -217,6 +268,48 @@ insert into audit_unit_period_flags select * from audit_flags_fresh;
 delete from audit_unit_period_patients as c
 where exists (select 1 from audit_touched as t where t.unit = c.unit and t.period_start = c.period_start);
 insert into audit_unit_period_patients select * from audit_patients_fresh;
+
+-- Episodes, from every fact (see the header): each counted in the unit and period of its first
+-- assessed sample (ties: the lowest sample_id), with its first and any-sample outcomes.
+create or replace table audit_unit_period_episodes as
+with assessed as (
+    select
+        episode_key,
+        unit,
+        period_start,
+        collected_at,
+        sample_id,
+        hypoxaemic,
+        on_oxygen,
+        above_target_on_oxygen,
+        out_of_target_on_oxygen
+    from audit_sample_fact
+    where oxygen_assessed and episode_key is not null
+),
+episodes as (
+    select
+        episode_key,
+        arg_min(unit, (collected_at, sample_id)) as unit,
+        arg_min(period_start, (collected_at, sample_id)) as period_start,
+        arg_min(hypoxaemic, (collected_at, sample_id)) as first_hypoxaemic,
+        bool_or(hypoxaemic) as any_hypoxaemic,
+        bool_or(on_oxygen) as any_on_oxygen,
+        bool_or(above_target_on_oxygen) as any_above_target,
+        bool_or(out_of_target_on_oxygen) as any_out_of_target
+    from assessed
+    group by episode_key
+)
+select
+    unit,
+    period_start,
+    count(*) as episodes,
+    count(*) filter (where first_hypoxaemic) as episodes_first_hypoxaemic,
+    count(*) filter (where any_hypoxaemic) as episodes_any_hypoxaemic,
+    count(*) filter (where any_on_oxygen) as episodes_on_oxygen,
+    count(*) filter (where any_on_oxygen and any_above_target) as episodes_any_above_target,
+    count(*) filter (where any_on_oxygen and any_out_of_target) as episodes_any_out_of_target
+from episodes
+group by unit, period_start;
 
 drop view audit_counts_fresh;
 drop view audit_flags_fresh;

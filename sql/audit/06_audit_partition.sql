@@ -30,5 +30,14 @@ from (
         -- included adult samples with a target: supplemental oxygen documented, or not
         ('oxygen_documentation', 'oxygen_assessed', 'total'),
         ('oxygen_documentation', 'on_oxygen', 'part'),
-        ('oxygen_documentation', 'no_oxygen_documented', 'part')
+        ('oxygen_documentation', 'no_oxygen_documented', 'part'),
+        -- on oxygen with the prescription known: an active prescription, or none
+        ('prescription', 'rx_known', 'total'),
+        ('prescription', 'rx_active', 'part'),
+        ('prescription', 'rx_not_prescribed', 'part'),
+        -- on oxygen with a prescribed target and a saturation: below, within or above it
+        ('prescribed_target', 'rx_target_assessed', 'total'),
+        ('prescribed_target', 'rx_below_target', 'part'),
+        ('prescribed_target', 'rx_within_target', 'part'),
+        ('prescribed_target', 'rx_above_target', 'part')
 ) as p(partition_id, family, role);

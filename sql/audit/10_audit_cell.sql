@@ -1,22 +1,35 @@
 -- Every count the audit publishes, before and after small-cell suppression. A family is a
 -- set of samples (a count column of audit_unit_period_counts, or 'flag:<rule_id>', the samples
--- flagged by a data-quality or documentation rule) or 'patients' (distinct patient_key, not
--- additive: counted from audit_unit_period_patients). Only periods of audit_window count.
--- Grain: one row per (family, unit or all units, period or all periods) with any sample in the
--- reporting window; unit NULL = all units, period_start NULL = all periods.
+-- flagged by a data-quality or documentation rule), a set of episodes (the count columns of
+-- audit_unit_period_episodes, each episode in the unit and period of its first sample) or
+-- 'patients' (distinct patient_key, not additive: counted from audit_unit_period_patients).
+-- Only periods of audit_window count.
+-- Places: a unit; all units of one unit type (site_unit_types, from the site's [unit_types];
+-- a unit not listed is 'unassigned'), so that units are compared with units like them; and
+-- the whole site. The unit-type level is left out when every unit in the window has the same
+-- type (it would repeat the site's counts).
+-- Grain: one row per (family, place, period or all periods) with any sample in the reporting
+-- window: unit NULL and unit_type T = all units of type T; both NULL = the whole site;
+-- period_start NULL = all periods. unit_label names the place for people.
 -- hidden starts as the primary rule: a count 1..$k-1 is small (is_small_cell, CMS cell size
 -- suppression policy: no cell 1-10 shown or derivable), and a numerator whose denominator -
 -- numerator is small (audit_pair) is hidden too; 12_audit_complementary_step.sql then adds
 -- the complementary cells.
 create or replace temp table audit_cell as
-with windowed as (
-    select c.*
+with typed_units as (
+    select unit, any_value(unit_type) as unit_type from site_unit_types group by unit
+),
+windowed as (
+    select c.*, coalesce(t.unit_type, 'unassigned') as unit_type, e.* exclude (unit, period_start)
     from audit_unit_period_counts as c
     semi join audit_window as w on w.period_start = c.period_start
+    left join typed_units as t on t.unit = c.unit
+    left join audit_unit_period_episodes as e on e.unit = c.unit and e.period_start = c.period_start
 ),
 sums as (
     select
         case when grouping(unit) = 1 then null else unit end as unit,
+        case when grouping(unit_type) = 1 then null else unit_type end as unit_type,
         case when grouping(period_start) = 1 then null else period_start end as period_start,
         sum(c.samples) as samples,
         sum(c.samples_usable) as samples_usable,
@@ -45,30 +58,63 @@ sums as (
         sum(c.pf_severe) as pf_severe,
         sum(c.pf_moderate) as pf_moderate,
         sum(c.pf_mild) as pf_mild,
-        sum(c.pf_above_300) as pf_above_300
+        sum(c.pf_above_300) as pf_above_300,
+        sum(c.rx_known) as rx_known,
+        sum(c.rx_active) as rx_active,
+        sum(c.rx_not_prescribed) as rx_not_prescribed,
+        sum(c.rx_with_target) as rx_with_target,
+        sum(c.rx_target_assessed) as rx_target_assessed,
+        sum(c.rx_within_target) as rx_within_target,
+        sum(c.rx_above_target) as rx_above_target,
+        sum(c.rx_below_target) as rx_below_target,
+        sum(c.rx_risk_documented) as rx_risk_documented,
+        sum(c.rx_target_conflicts_risk) as rx_target_conflicts_risk,
+        coalesce(sum(c.episodes), 0) as episodes,
+        coalesce(sum(c.episodes_first_hypoxaemic), 0) as episodes_first_hypoxaemic,
+        coalesce(sum(c.episodes_any_hypoxaemic), 0) as episodes_any_hypoxaemic,
+        coalesce(sum(c.episodes_on_oxygen), 0) as episodes_on_oxygen,
+        coalesce(sum(c.episodes_any_above_target), 0) as episodes_any_above_target,
+        coalesce(sum(c.episodes_any_out_of_target), 0) as episodes_any_out_of_target
     from windowed as c
-    group by grouping sets ((unit, period_start), (unit), (period_start), ())
+    group by grouping sets (
+        (unit_type, unit, period_start), (unit_type, unit), (unit_type, period_start), (unit_type), (period_start), ()
+    )
 ),
 patient_counts as (
     select
-        case when grouping(unit) = 1 then null else unit end as unit,
-        case when grouping(period_start) = 1 then null else period_start end as period_start,
-        count(distinct patient_key) as patients
-    from audit_unit_period_patients as p
+        case when grouping(p.unit) = 1 then null else p.unit end as unit,
+        case when grouping(unit_type) = 1 then null else unit_type end as unit_type,
+        case when grouping(p.period_start) = 1 then null else p.period_start end as period_start,
+        count(distinct p.patient_key) as patients
+    from (
+        select p.*, coalesce(t.unit_type, 'unassigned') as unit_type
+        from audit_unit_period_patients as p
+        left join typed_units as t on t.unit = p.unit
+    ) as p
     semi join audit_window as w on w.period_start = p.period_start
-    group by grouping sets ((unit, period_start), (unit), (period_start), ())
+    group by grouping sets (
+        (unit_type, p.unit, p.period_start), (unit_type, p.unit), (unit_type, p.period_start), (unit_type),
+        (p.period_start), ()
+    )
+),
+-- the unit-type level only when the window holds more than one type
+type_level as (
+    select count(distinct unit_type) > 1 as shown from windowed
 ),
 grouped as (
     select s.*, pc.patients
     from sums as s
     left join patient_counts as pc
         on pc.unit is not distinct from s.unit
+       and pc.unit_type is not distinct from s.unit_type
        and pc.period_start is not distinct from s.period_start
+    where s.unit is not null or s.unit_type is null or (select shown from type_level)
 ),
 sample_cells as (
     select
         f.family,
         g.unit,
+        g.unit_type,
         g.period_start,
         -- an empty window still has its all-units, all-periods row: zero, not NULL
         coalesce(case f.family
@@ -101,6 +147,22 @@ sample_cells as (
             when 'pf_moderate' then g.pf_moderate
             when 'pf_mild' then g.pf_mild
             when 'pf_above_300' then g.pf_above_300
+            when 'rx_known' then g.rx_known
+            when 'rx_active' then g.rx_active
+            when 'rx_not_prescribed' then g.rx_not_prescribed
+            when 'rx_with_target' then g.rx_with_target
+            when 'rx_target_assessed' then g.rx_target_assessed
+            when 'rx_within_target' then g.rx_within_target
+            when 'rx_above_target' then g.rx_above_target
+            when 'rx_below_target' then g.rx_below_target
+            when 'rx_risk_documented' then g.rx_risk_documented
+            when 'rx_target_conflicts_risk' then g.rx_target_conflicts_risk
+            when 'episodes' then g.episodes
+            when 'episodes_first_hypoxaemic' then g.episodes_first_hypoxaemic
+            when 'episodes_any_hypoxaemic' then g.episodes_any_hypoxaemic
+            when 'episodes_on_oxygen' then g.episodes_on_oxygen
+            when 'episodes_any_above_target' then g.episodes_any_above_target
+            when 'episodes_any_out_of_target' then g.episodes_any_out_of_target
         end, 0) as value
     from grouped as g
     cross join (
@@ -133,23 +195,48 @@ sample_cells as (
         ('pf_severe'),
         ('pf_moderate'),
         ('pf_mild'),
-        ('pf_above_300')
+        ('pf_above_300'),
+        ('rx_known'),
+        ('rx_active'),
+        ('rx_not_prescribed'),
+        ('rx_with_target'),
+        ('rx_target_assessed'),
+        ('rx_within_target'),
+        ('rx_above_target'),
+        ('rx_below_target'),
+        ('rx_risk_documented'),
+        ('rx_target_conflicts_risk'),
+        ('episodes'),
+        ('episodes_first_hypoxaemic'),
+        ('episodes_any_hypoxaemic'),
+        ('episodes_on_oxygen'),
+        ('episodes_any_above_target'),
+        ('episodes_any_out_of_target')
     ) as f(family)
 ),
 flag_counts as (
     select
         f.rule_id,
         case when grouping(f.unit) = 1 then null else f.unit end as unit,
+        case when grouping(unit_type) = 1 then null else unit_type end as unit_type,
         case when grouping(f.period_start) = 1 then null else f.period_start end as period_start,
         sum(f.flagged) as value
-    from audit_unit_period_flags as f
+    from (
+        select f.*, coalesce(t.unit_type, 'unassigned') as unit_type
+        from audit_unit_period_flags as f
+        left join typed_units as t on t.unit = f.unit
+    ) as f
     semi join audit_window as w on w.period_start = f.period_start
-    group by f.rule_id, grouping sets ((f.unit, f.period_start), (f.unit), (f.period_start), ())
+    group by f.rule_id, grouping sets (
+        (unit_type, f.unit, f.period_start), (unit_type, f.unit), (unit_type, f.period_start), (unit_type),
+        (f.period_start), ()
+    )
 ),
 flag_cells as (
     select
         'flag:' || c.rule_id as family,
         g.unit,
+        g.unit_type,
         g.period_start,
         coalesce(fc.value, 0) as value
     from grouped as g
@@ -157,18 +244,20 @@ flag_cells as (
     left join flag_counts as fc
         on fc.rule_id = c.rule_id
        and fc.unit is not distinct from g.unit
+       and fc.unit_type is not distinct from g.unit_type
        and fc.period_start is not distinct from g.period_start
 ),
 counted as (
-    select family, unit, period_start, value from sample_cells
+    select family, unit, unit_type, period_start, value from sample_cells
     union all
-    select family, unit, period_start, value from flag_cells
+    select family, unit, unit_type, period_start, value from flag_cells
 ),
 remainders as (
     -- numerators whose remainder (denominator - numerator) is small
     select
         x.family,
         x.unit,
+        x.unit_type,
         x.period_start,
         max(case when is_small_cell(n.value - x.value, $k) then 1 else 0 end) = 1 as small_remainder
     from audit_pair as p
@@ -176,13 +265,22 @@ remainders as (
     join counted as n
         on n.family = p.denominator_family
        and n.unit is not distinct from x.unit
+       and n.unit_type is not distinct from x.unit_type
        and n.period_start is not distinct from x.period_start
-    group by x.family, x.unit, x.period_start
+    group by x.family, x.unit, x.unit_type, x.period_start
 )
 select
-    row_number() over (order by c.family, c.unit nulls last, c.period_start nulls last) as cell_id,
+    row_number() over (
+        order by c.family, c.unit_type nulls last, c.unit nulls last, c.period_start nulls last
+    ) as cell_id,
     c.family,
     c.unit,
+    c.unit_type,
+    case
+        when c.unit is not null then c.unit
+        when c.unit_type is not null then 'All ' || replace(c.unit_type, '_', ' ') || ' units'
+        else 'All units'
+    end as unit_label,
     c.period_start,
     cast(c.value as bigint) as value,
     c.family <> 'patients' as additive,
@@ -195,4 +293,5 @@ from counted as c
 left join remainders as r
     on r.family = c.family
    and r.unit is not distinct from c.unit
+   and r.unit_type is not distinct from c.unit_type
    and r.period_start is not distinct from c.period_start;

@@ -1,5 +1,7 @@
 -- Labels of the reporting periods: 'YYYY-MM' for months, ISO 'YYYY-Www' for weeks, and
 -- 'all periods' for the whole reporting window (period_start NULL).
+-- partial: the period is still under way (audit_window); the all-periods row is partial when
+-- the window holds a partial period.
 -- Grain: one row per period of audit_cell, plus the all-periods row.
 create or replace temp table audit_period as
 select
@@ -12,5 +14,9 @@ select
         else
             cast(extract(year from period_start) as varchar) || '-'
             || lpad(cast(extract(month from period_start) as varchar), 2, '0')
-    end as period
+    end as period,
+    case
+        when period_start is null then coalesce((select bool_or(partial) from audit_window), false)
+        else coalesce((select w.partial from audit_window as w where w.period_start = p.period_start), false)
+    end as partial
 from (select distinct period_start from audit_cell) as p;

@@ -1,12 +1,15 @@
 -- Published: sample and patient volume per unit and period, with the audit status split
 -- (usable and caution samples are included in oxygenation rates; excluded ones are split by
 -- reason: a sample type other than arterial, or a data-quality flag that excludes them).
+-- Places as in audit_rates (a unit, all units of a type, all units).
 -- Grain: one row per unit (or all units) and period (or all periods) with any sample in the
 -- reporting window. Suppressed counts are NULL and named in suppressed_columns.
 create or replace table audit_volume as
 with pivoted as (
     select
         unit,
+        unit_type,
+        any_value(unit_label) as unit_label,
         period_start,
         max(case when family = 'samples' then value end) as samples,
         max(case when family = 'samples' and hidden then 1 else 0 end) = 1 as samples_hidden,
@@ -23,10 +26,11 @@ with pivoted as (
         max(case when family = 'excluded_data_quality' then value end) as excluded_data_quality,
         max(case when family = 'excluded_data_quality' and hidden then 1 else 0 end) = 1 as excluded_data_quality_hidden
     from audit_cell
-    group by unit, period_start
+    group by unit, unit_type, period_start
 )
 select
-    coalesce(v.unit, 'All units') as unit,
+    v.unit_label as unit,
+    v.unit_type,
     v.unit is null as all_units,
     p.period,
     v.period_start,
@@ -49,4 +53,4 @@ select
     ), '') as suppressed_columns
 from pivoted as v
 join audit_period as p on p.period_start is not distinct from v.period_start
-order by all_units, unit, all_periods, v.period_start;
+order by all_units, v.unit_type nulls last, unit, all_periods, v.period_start;

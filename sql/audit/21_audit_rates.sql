@@ -2,7 +2,11 @@
 -- the Wilson 95 % interval (wilson_lower / wilson_upper), and the measure's definition (numerator
 -- and denominator in words). A rate, and its interval, is shown
 -- only when both of its counts are; rate NULL with nothing suppressed means no denominator.
--- Grain: one row per measure, unit (or all units) and period (or all periods).
+-- question and level from audit_measure; unit_type is the unit's type (NULL for the site row);
+-- a row for all units of one type is labelled 'All <type> units'. partial_period: the period
+-- is still under way (audit_window), so its counts are incomplete.
+-- Grain: one row per measure, place (unit, all units of a type, or all units) and period (or
+-- all periods).
 create or replace table audit_rates as
 select
     m.sort_order,
@@ -10,11 +14,15 @@ select
     m.title,
     m.basis,
     m.definition,
-    coalesce(x.unit, 'All units') as unit,
+    m.question,
+    m.level,
+    x.unit_label as unit,
+    x.unit_type,
     x.unit is null as all_units,
     p.period,
     x.period_start,
     x.period_start is null as all_periods,
+    p.partial as partial_period,
     case when not x.hidden then x.value end as numerator,
     case when not n.hidden then n.value end as denominator,
     case when not x.hidden and not n.hidden and n.value > 0 then cast(x.value as double) / n.value end as rate,
@@ -30,6 +38,7 @@ join audit_cell as x on x.family = m.numerator_family
 join audit_cell as n
     on n.family = m.denominator_family
    and n.unit is not distinct from x.unit
+   and n.unit_type is not distinct from x.unit_type
    and n.period_start is not distinct from x.period_start
 join audit_period as p on p.period_start is not distinct from x.period_start
-order by m.sort_order, all_units, unit, all_periods, x.period_start;
+order by m.sort_order, all_units, x.unit_type nulls last, unit, all_periods, x.period_start;

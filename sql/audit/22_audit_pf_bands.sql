@@ -2,13 +2,15 @@
 -- among included samples with a P/F ratio, per unit and period, each with its share and
 -- Wilson 95 % interval. A band is an oxygenation category, not a diagnosis: the Berlin
 -- definition also needs PEEP or CPAP >= 5 cmH2O and acute bilateral lung injury.
+-- Places as in audit_rates (a unit, all units of a type, all units).
 -- Grain: one row per band, unit (or all units) and period (or all periods).
 create or replace table audit_pf_bands as
 select
     b.sort_order,
     b.band,
     b.title,
-    coalesce(x.unit, 'All units') as unit,
+    x.unit_label as unit,
+    x.unit_type,
     x.unit is null as all_units,
     p.period,
     x.period_start,
@@ -34,6 +36,7 @@ join audit_cell as x on x.family = b.family
 join audit_cell as n
     on n.family = 'pf_assessed'
    and n.unit is not distinct from x.unit
+   and n.unit_type is not distinct from x.unit_type
    and n.period_start is not distinct from x.period_start
 join audit_period as p on p.period_start is not distinct from x.period_start
-order by all_units, unit, all_periods, x.period_start, b.sort_order;
+order by all_units, x.unit_type nulls last, unit, all_periods, x.period_start, b.sort_order;

@@ -1,12 +1,14 @@
 -- Published: share of samples flagged by each data-quality or documentation rule, per unit and period, with
 -- the Wilson 95 % interval; the denominator is every sample in the unit and period.
+-- Places as in audit_rates (a unit, all units of a type, all units).
 -- Grain: one row per data-quality or documentation rule, unit (or all units) and period (or all periods).
 create or replace table audit_flag_rates as
 select
     c.rule_id,
     c.title as rule_title,
     c.severity as default_severity,
-    coalesce(x.unit, 'All units') as unit,
+    x.unit_label as unit,
+    x.unit_type,
     x.unit is null as all_units,
     p.period,
     x.period_start,
@@ -26,7 +28,8 @@ join audit_cell as x on x.family = 'flag:' || c.rule_id
 join audit_cell as n
     on n.family = 'samples'
    and n.unit is not distinct from x.unit
+   and n.unit_type is not distinct from x.unit_type
    and n.period_start is not distinct from x.period_start
 join audit_period as p on p.period_start is not distinct from x.period_start
 where c.kind in ('data_quality', 'documentation')
-order by c.rule_id, all_units, unit, all_periods, x.period_start;
+order by c.rule_id, all_units, x.unit_type nulls last, unit, all_periods, x.period_start;

@@ -4,12 +4,15 @@
 -- neonates. Children and neonates are outside the adult oxygenation rates: the adult targets,
 -- the adult A-a formula and the saturation curve check do not apply to them.
 -- adults + age_unknown + children + neonates = samples (a partition, 06_audit_partition.sql).
+-- Places as in audit_rates (a unit, all units of a type, all units).
 -- Grain: one row per unit (or all units) and period (or all periods) with any sample in the
 -- reporting window. Suppressed counts are NULL and named in suppressed_columns.
 create or replace table audit_age_groups as
 with pivoted as (
     select
         unit,
+        unit_type,
+        any_value(unit_label) as unit_label,
         period_start,
         max(case when family = 'samples' then value end) as samples,
         max(case when family = 'samples' and hidden then 1 else 0 end) = 1 as samples_hidden,
@@ -23,10 +26,11 @@ with pivoted as (
         max(case when family = 'age_neonate' and hidden then 1 else 0 end) = 1 as neonates_hidden
     from audit_cell
     where family in ('samples', 'age_adult', 'age_unknown', 'age_child', 'age_neonate')
-    group by unit, period_start
+    group by unit, unit_type, period_start
 )
 select
-    coalesce(v.unit, 'All units') as unit,
+    v.unit_label as unit,
+    v.unit_type,
     v.unit is null as all_units,
     p.period,
     v.period_start,
@@ -45,4 +49,4 @@ select
     ), '') as suppressed_columns
 from pivoted as v
 join audit_period as p on p.period_start is not distinct from v.period_start
-order by all_units, unit, all_periods, v.period_start;
+order by all_units, v.unit_type nulls last, unit, all_periods, v.period_start;

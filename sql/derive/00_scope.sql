@@ -1,7 +1,11 @@
 -- The samples whose derived metrics, flags and audit status must be (re)computed.
 -- Incremental: samples loaded or corrected by this run - or by an earlier run that was
 -- killed before its analysis committed (runs.analysed_at still NULL) - plus every sample
--- of the same patients (the delta check compares a sample with its neighbours in time).
+-- of the same patients (the delta check compares a sample with its neighbours in time), and
+-- every sample of the patients whose oxygen prescriptions this run loaded or corrected (the
+-- prescription linked to a sample may change). The first delivery of a prescriptions feed
+-- puts every sample in scope: from then on a sample with no active prescription counts as
+-- not prescribed rather than unknown (sql/derive/05_prescription_link.sql).
 -- Rebuild ($rebuild = true): every sample in the store.
 create or replace temp table scope_runs as
 select run_id from runs where analysed_at is null or run_id = $run_id;
@@ -14,7 +18,12 @@ where $rebuild
    or patient_key in (
        select patient_key from records
        where run_id in (select run_id from scope_runs) and patient_key is not null
-   );
+       union all
+       select patient_key from prescriptions
+       where run_id in (select run_id from scope_runs) and patient_key is not null
+   )
+   or (exists (select 1 from prescriptions where run_id in (select run_id from scope_runs))
+       and not exists (select 1 from prescriptions where run_id not in (select run_id from scope_runs)));
 
 -- Whether this is a rebuild, for stages that keep their own incremental state
 -- (analyser_patient_median_shift keeps its complete blocks).

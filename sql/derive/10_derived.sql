@@ -18,6 +18,9 @@
 --   $dyshaemoglobin_max_pct           COHb + MetHb above which a saturation is not read on the curve
 -- Temp table unit_oxygen_targets (unit, unit_type, target_low_pct, target_high_pct, assessed): a
 -- site's target range per unit type (pipeline/derive.py fills it from the site configuration).
+-- Temp table prescription_link (05_prescription_link.sql): the prescription active at collection.
+-- Episodes: an encounter (encounter_key), else the patient's calendar day of collection (UTC),
+-- else the sample alone (no patient identifier).
 create or replace temp table derived_batch as
 with base as (
     select
@@ -44,6 +47,23 @@ with base as (
         r.cohb_pct,
         r.methb_pct,
         r.o2_flow_l_min,
+        r.encounter_key,
+        case
+            when r.encounter_key is not null then 'encounter:' || r.encounter_key
+            when r.patient_key is not null and r.collected_at is not null
+                then 'patient_day:' || r.patient_key || '/' || cast(cast(r.collected_at as date) as varchar)
+            else 'sample:' || r.sample_id
+        end as episode_key,
+        case
+            when r.encounter_key is not null then 'encounter'
+            when r.patient_key is not null and r.collected_at is not null then 'patient_day'
+            else 'sample'
+        end as episode_basis,
+        x.prescription_id,
+        x.prescription_source,
+        x.prescription_status,
+        x.prescribed_target_low_pct,
+        x.prescribed_target_high_pct,
         coalesce(r.sample_type, 'unknown') in ('arterial', 'unknown') as is_arterial_or_unknown,
         -- Age: the exported age, else from the birth date at collection (365.25-day years).
         coalesce(r.age_years, date_diff('day', r.birth_date, cast(r.collected_at as date)) / 365.25)
@@ -77,6 +97,7 @@ with base as (
     from records as r
     join scope_samples as s using (sample_id)
     left join unit_oxygen_targets as u on u.unit = r.unit
+    left join prescription_link as x on x.sample_id = r.sample_id
 ),
 aged as (
     select
@@ -164,10 +185,12 @@ metrics as (
         case when sao2_pct is not null and not coalesce(sao2_is_calculated, false)
                  then functional_saturation_pct(sao2_pct, cohb_pct, methb_pct)
              when age_group <> 'neonate' then predicted_sao2_pct end as arterial_saturation_pct,
-        -- The target range, chosen before any status: documented hypercapnic risk, else a PaCO2 above
-        -- normal (both BTS 88-92 %), else the unit type's setting, else the standard 94-98 %. Children
-        -- and neonates have no adult target; a unit type may have none.
+        -- The target range, chosen before any status: the prescribed range (any age), else documented
+        -- hypercapnic risk, else a PaCO2 above normal (both BTS 88-92 %), else the unit type's setting,
+        -- else the standard 94-98 %. Without a prescribed range, children and neonates have no adult
+        -- target, and a unit type may have none.
         case
+            when prescribed_target_low_pct is not null and prescribed_target_high_pct is not null then 'prescription'
             when age_group in ('neonate', 'child') and unit_target_low_pct is null then null
             when not unit_assessed then null
             when coalesce(hypercapnic_risk, false) then 'hypercapnic_risk'
@@ -181,12 +204,14 @@ status as (
     select
         *,
         case target_source
+            when 'prescription' then prescribed_target_low_pct
             when 'hypercapnic_risk' then $hypercapnic_target_low
             when 'paco2_above_normal' then $hypercapnic_target_low
             when 'unit_type' then unit_target_low_pct
             when 'standard' then $target_low
         end as target_low_pct,
         case target_source
+            when 'prescription' then prescribed_target_high_pct
             when 'hypercapnic_risk' then $hypercapnic_target_high
             when 'paco2_above_normal' then $hypercapnic_target_high
             when 'unit_type' then unit_target_high_pct
@@ -244,6 +269,29 @@ select
     target_low_pct,
     target_high_pct,
     case when is_arterial_or_unknown then arterial_saturation_pct end as arterial_saturation_pct,
+    encounter_key,
+    episode_key,
+    episode_basis,
+    prescription_id,
+    prescription_source,
+    prescription_status,
+    prescribed_target_low_pct,
+    prescribed_target_high_pct,
+    -- the arterial saturation against the prescribed range (ends inside)
+    case
+        when not is_arterial_or_unknown or arterial_saturation_pct is null or prescribed_target_low_pct is null then null
+        when arterial_saturation_pct < prescribed_target_low_pct then 'below'
+        when arterial_saturation_pct > prescribed_target_high_pct then 'above'
+        else 'within'
+    end as prescribed_target_position,
+    -- a prescribed range that does not fit the documented hypercapnic risk: above the 88-92 % range
+    -- for a patient at risk, or within it for a patient documented not at risk (BTS guideline
+    -- ranges; local policy may differ, so this is a question for review, not an error)
+    case
+        when prescribed_target_high_pct is null or hypercapnic_risk is null then null
+        when hypercapnic_risk then prescribed_target_high_pct > $hypercapnic_target_high
+        else prescribed_target_high_pct <= $hypercapnic_target_high
+    end as prescribed_target_conflicts_risk,
     -- The status follows the target chosen above; hypoxaemia is below that target and below the
     -- respiratory-failure limits, so a patient inside the 88-92 % target is in target.
     case
