@@ -791,9 +791,11 @@ def published_lines(con: duckdb.DuckDBPyConnection) -> list[tuple[str, list[tupl
                 # units within their type (total: all units of the type); types within the site
                 for t in typed:
                     line = [t] + [r for r in members if not r["all_units"] and r["unit_type"] == t["unit_type"]]
-                    lines.append((f"{table}.{column} {name} {t['unit']}", [(count_key(table, column, r), column, r) for r in line]))
+                    keyed = [(count_key(table, column, r), column, r) for r in line]
+                    lines.append((f"{table}.{column} {name} {t['unit']}", keyed))
                 site = [r for r in members if r["all_units"] and r["unit_type"] is None]
-                lines.append((f"{table}.{column} {name} types", [(count_key(table, column, r), column, r) for r in site + typed]))
+                keyed = [(count_key(table, column, r), column, r) for r in site + typed]
+                lines.append((f"{table}.{column} {name} types", keyed))
     volume = frame(con, "audit_volume").to_dicts()
     for r in volume:
         for parts in (
@@ -819,7 +821,10 @@ def published_lines(con: duckdb.DuckDBPyConnection) -> list[tuple[str, list[tupl
         # saturation = within + above + below.
         for total, parts in (
             ("on_oxygen_prescribed", ("on_oxygen_prescribed", "oxygen_not_prescribed")),
-            ("within_prescribed_target", ("below_prescribed_target", "within_prescribed_target", "above_prescribed_target")),
+            (
+                "within_prescribed_target",
+                ("below_prescribed_target", "within_prescribed_target", "above_prescribed_target"),
+            ),
         ):
             members = [(count_key("audit_rates", "denominator", measures[total]), "denominator", measures[total])]
             members += [(count_key("audit_rates", "numerator", measures[m]), "numerator", measures[m]) for m in parts]

@@ -32,7 +32,9 @@ def record(sample_id: str, **changes: Any) -> dict[str, Any]:
     return {**row, "resulted_at": row["collected_at"] + timedelta(minutes=10)}
 
 
-def add_prescription(con: duckdb.DuckDBPyConnection, prescription_id: str, patient: str, start: datetime, **fields: Any) -> None:
+def add_prescription(
+    con: duckdb.DuckDBPyConnection, prescription_id: str, patient: str, start: datetime, **fields: Any
+) -> None:
     values = {
         "prescription_id": prescription_id,
         "patient_id": patient,
@@ -63,7 +65,9 @@ def link_store(tmp_path, rows: list[dict[str, Any]], prescriptions: list[tuple],
         add_prescription(con, rx_id, patient, start, **fields)
     for row in rows:
         if row.get("encounter_key"):
-            con.execute("update records set encounter_key = ? where sample_id = ?", [row["encounter_key"], row["sample_id"]])
+            con.execute(
+                "update records set encounter_key = ? where sample_id = ?", [row["encounter_key"], row["sample_id"]]
+            )
     run_sql(con, "derive/00_scope.sql", run_id="t1", rebuild=True)
     derive(con, load_catalogue(None), site_config(tmp_path, **config))
     return con
@@ -83,8 +87,12 @@ ON_OXYGEN = {"o2_device": "venturi_mask", "fio2": 0.28, "spo2_pct": None}
 def test_each_sample_links_to_the_prescription_active_at_collection(tmp_path):
     prescriptions = [
         # P1: 94-98 % from 08:00 to 12:00, replaced at 11:00 by an open-ended 88-92 % (overlap 11-12)
-        ("RX1", "P1", at(8), {"end_at": at(12), "target_spo2_low_pct": 94.0, "target_spo2_high_pct": 98.0,
-                              "encounter_key": "E1"}),
+        (
+            "RX1",
+            "P1",
+            at(8),
+            {"end_at": at(12), "target_spo2_low_pct": 94.0, "target_spo2_high_pct": 98.0, "encounter_key": "E1"},
+        ),
         ("RX2", "P1", at(11), {"target_spo2_low_pct": 88.0, "target_spo2_high_pct": 92.0, "encounter_key": "E1"}),
         # P2: oxygen prescribed 06:00-10:00 without a target range; the feed covers from 06:00
         ("RX3", "P2", at(6), {"end_at": at(10)}),
@@ -100,8 +108,14 @@ def test_each_sample_links_to_the_prescription_active_at_collection(tmp_path):
         record("AFTER_END", patient_id="P2", collected_at=at(10), **ON_OXYGEN),
         record("NONE_HELD", patient_id="P3", collected_at=at(9), **ON_OXYGEN),
         record("BEFORE_FEED", patient_id="P3", collected_at=at(5), **ON_OXYGEN),
-        record("CHARTED_ON_SAMPLE", patient_id="P4", collected_at=at(4), target_spo2_low_pct=92.0,
-               target_spo2_high_pct=96.0, **ON_OXYGEN),
+        record(
+            "CHARTED_ON_SAMPLE",
+            patient_id="P4",
+            collected_at=at(4),
+            target_spo2_low_pct=92.0,
+            target_spo2_high_pct=96.0,
+            **ON_OXYGEN,
+        ),
         record("CHARTED_NOT_PRESCRIBED", patient_id="P5", collected_at=at(4), o2_prescribed=False, **ON_OXYGEN),
     ]
     con = link_store(tmp_path, rows, prescriptions)
@@ -142,7 +156,9 @@ def test_without_a_feed_prescribing_is_unknown(tmp_path):
         (90.0, None, 94.0, 98.0, "within", None),
     ],
 )
-def test_position_against_the_prescribed_range_and_agreement_with_risk(tmp_path, pao2, risk, low, high, position, conflict):
+def test_position_against_the_prescribed_range_and_agreement_with_risk(
+    tmp_path, pao2, risk, low, high, position, conflict
+):
     rows = [record("S1", collected_at=at(9), pao2_mmhg=pao2, sao2_pct=None, hypercapnic_risk=risk, **ON_OXYGEN)]
     prescriptions = [("RX", "P1", at(0), {"target_spo2_low_pct": low, "target_spo2_high_pct": high})]
     con = link_store(tmp_path, rows, prescriptions)
@@ -218,10 +234,17 @@ def test_prescribing_measures_per_sample(tmp_path):
     ]
     con = build_store(tmp_path, rows, config)
     con.execute("delete from prescriptions")
-    add_prescription(con, "RX1", con.execute("select patient_key from records where sample_id = 'A'").fetchone()[0],
-                     at(8), target_spo2_low_pct=94.0, target_spo2_high_pct=98.0)
-    add_prescription(con, "RX2", con.execute("select patient_key from records where sample_id = 'C'").fetchone()[0],
-                     at(8))
+    add_prescription(
+        con,
+        "RX1",
+        con.execute("select patient_key from records where sample_id = 'A'").fetchone()[0],
+        at(8),
+        target_spo2_low_pct=94.0,
+        target_spo2_high_pct=98.0,
+    )
+    add_prescription(
+        con, "RX2", con.execute("select patient_key from records where sample_id = 'C'").fetchone()[0], at(8)
+    )
     from pipeline.derive import derive
     from pipeline.rules import load_catalogue
     from pipeline.sql_files import run_sql
