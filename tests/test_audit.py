@@ -539,8 +539,9 @@ def chart_store(tmp_path_factory) -> tuple[duckdb.DuckDBPyConnection, Path]:
 
 
 def charts(con: duckdb.DuckDBPyConnection, tmp: Path, **settings: Any) -> dict[str, list[dict[str, Any]]]:
-    """Rebuild the audit with these settings; the hypoxaemia p-chart points of every unit, in period order."""
-    audit(con, audit_config(tmp, k=1, complete_periods_only=False, **settings))
+    """Rebuild the audit with these settings (the period under way shown unless they say otherwise); the
+    hypoxaemia p-chart points of every unit, in period order."""
+    audit(con, audit_config(tmp, k=1, **{"complete_periods_only": False, **settings}))
     points = frame(con, "audit_control_chart", "measure = 'hypoxaemia'").sort("period_start").to_dicts()
     by_unit: dict[str, list[dict[str, Any]]] = {}
     for p in points:
@@ -582,7 +583,8 @@ def test_shift_rule_needs_the_configured_run_length(chart_store):
     # 3rd day): not judged and out of the centre, 162/900 = 0.18, so the first 8 points sit above it.
     points = chart(*chart_store, "Shift")
     assert [p["partial"] for p in points] == [False] * 9 + [True]
-    assert {(p["centre"], p["centre_basis"]) for p in points} == {(pytest.approx(0.18), "complete periods")}
+    assert [p["centre"] for p in points] == pytest.approx([0.18] * 10)
+    assert {p["centre_basis"] for p in points} == {"complete periods"}
     assert [p["in_shift"] for p in points] == [True] * 8 + [False, None]
     assert "shift" in points[0]["signals"]
     assert [p["beyond_limits"] for p in points][-2:] == [True, None]  # 0.02 < LCL 0.18 - 3 x 0.0384 = 0.065
@@ -613,7 +615,8 @@ def test_partial_period_is_drawn_but_not_judged_nor_in_the_centre(tmp_path):
     assert under_way["rate"] > under_way["upper_limit"]
     assert [under_way[c] for c in ("beyond_limits", "in_shift", "in_trend", "signals")] == [None] * 4
     assert not any(p["in_shift"] for p in points[:-1])
-    assert {(p["centre"], p["centre_basis"]) for p in points} == {(pytest.approx(0.104), "complete periods")}
+    assert [p["centre"] for p in points] == pytest.approx([0.104] * 11)
+    assert {p["centre_basis"] for p in points} == {"complete periods"}
     # the complete months are charted exactly as when the month under way is left out
     complete = chart(con, tmp_path, "Ward P", complete_periods_only=True)
     columns = ("period", "rate", "centre", "lower_limit", "upper_limit", "laney_sigma_z", "signals", "in_trend")
