@@ -349,3 +349,153 @@ def test_quarantine_and_logs_never_hold_the_pseudonym_key(store, tmp_path, minim
     keys = [r[0] for r in store.execute("select patient_key from records").fetchall()]
     assert all(len(k) == 32 and KEY.decode() not in k for k in keys)
     assert len(set(keys)) == 2
+
+
+# --------------------------------------------------------------------------------------
+# Fields added for the prescribing audit: encounter, target range, o2_prescribed,
+# collection method, operator
+# --------------------------------------------------------------------------------------
+
+NEW_FIELDS_HEADER = HEADER.rstrip("\n") + ",enc,tlow,thigh,o2rx,method,op\n"
+
+
+def new_fields_profile(folder: Path, codes: bool = True) -> Path:
+    """The minimal test profile plus the new sample fields, targets charted as fractions."""
+    text = (FIXTURES / "profiles" / "minimal.toml").read_text(encoding="utf-8")
+    text = text.replace(
+        'hco3_mmol_l = "hco3"\n',
+        'hco3_mmol_l = "hco3"\nencounter_id = "enc"\ntarget_spo2_low_pct = "tlow"\n'
+        'target_spo2_high_pct = "thigh"\no2_prescribed = "o2rx"\ncollection_method = "method"\n'
+        'operator_id = "op"\n',
+    )
+    text = text.replace('fio2 = "fraction"\n', 'fio2 = "fraction"\ntarget_spo2_low_pct = "fraction"\n'
+                        'target_spo2_high_pct = "fraction"\n')
+    if codes:
+        text += '\n[codes.collection_method]\n"ART" = "arterial_puncture"\n"LINE" = "arterial_line"\n'
+    path = folder / "new_fields.toml"
+    path.write_text(text, encoding="utf-8")
+    return path
+
+
+def new_fields_rows() -> str:
+    """Hand-counted: S1, S2 and S5 load; S3 (unmapped method "XX") and S4 (o2_prescribed
+    "maybe") are quarantined. rows in 5 = loaded 3 + quarantined 2."""
+    base = good_rows(5).splitlines()
+    extra = [
+        ",E1,0.88,0.92,Y,ART,OP-1",
+        ",E1,0.94,0.98,N,LINE,OP-2",
+        ",E2,0.94,0.98,Y,XX,OP-1",
+        ",E2,0.94,0.98,maybe,ART,OP-1",
+        ",,,,,,",
+    ]
+    return "".join(row + cells + "\n" for row, cells in zip(base, extra, strict=True))
+
+
+def test_new_sample_fields_parse_convert_code_map_and_pseudonymise(store, tmp_path):
+    profile = load_profile(new_fields_profile(tmp_path))
+    f = load(store, tmp_path, NEW_FIELDS_HEADER + new_fields_rows(), profile)
+    assert (f.rows_in, f.rows_loaded, f.rows_quarantined) == (5, 3, 2)  # hand-counted
+    assert reasons(store) == [(3, "UNKNOWN_CODE"), (4, "INVALID_BOOLEAN")]
+    failed = store.execute("select failed_columns from quarantine order by source_row").fetchall()
+    assert failed == [("collection_method:UNKNOWN_CODE",), ("o2_prescribed:INVALID_BOOLEAN",)]
+    rows = store.execute(
+        "select sample_id, encounter_id, encounter_key, target_spo2_low_pct, target_spo2_high_pct, o2_prescribed, "
+        "collection_method, operator_id, operator_key from records order by sample_id"
+    ).fetchall()
+    s1, s2, s5 = rows
+    # Oracle: pint, a fraction of 0.88 is 88 percent.
+    assert s1[3] == pytest.approx(ureg.Quantity(0.88, "dimensionless").to("percent").magnitude)
+    assert s1[4] == pytest.approx(ureg.Quantity(0.92, "dimensionless").to("percent").magnitude)
+    assert (s1[5], s1[6], s2[5], s2[6]) == (True, "arterial_puncture", False, "arterial_line")
+    assert (s1[1], s1[7]) == ("E1", "OP-1")  # raw ids kept, as patient_id is (keep_patient_id defaults to true)
+    # Same encounter, same key; different operators, different keys; none shows the raw id.
+    assert s1[2] == s2[2] and s1[8] != s2[8]
+    assert all(len(k) == 32 and "E1" not in k and "OP" not in k for k in (s1[2], s1[8], s2[8]))
+    assert s5[1:] == (None,) * 8  # unmapped cells stay NULL, the record loads
+
+
+def test_new_identifiers_are_not_stored_raw_when_the_site_keeps_none(store, tmp_path):
+    profile = load_profile(new_fields_profile(tmp_path))
+    path = tmp_path / "export.csv"
+    path.write_text(NEW_FIELDS_HEADER + new_fields_rows(), encoding="utf-8")
+    f = ingest_file(store, path, profile, "r1", KEY, keep_patient_id=False)
+    assert f.rows_loaded == 3
+    counts = store.execute(
+        "select count(patient_id), count(encounter_id), count(operator_id), count(encounter_key), count(operator_key) "
+        "from records"
+    ).fetchall()
+    assert counts == [(0, 0, 0, 2, 2)]  # S5 has neither; hand-counted
+
+
+def test_collection_method_needs_its_code_map(tmp_path):
+    from pipeline.errors import ConfigError
+
+    with pytest.raises(ConfigError, match=r"\[codes.collection_method\] is needed"):
+        load_profile(new_fields_profile(tmp_path, codes=False))
+
+
+def test_a_sample_without_the_new_fields_keeps_its_content_hash(store, tmp_path, minimal):
+    """A store loaded before the new fields existed must see a re-delivery of the same
+    values as a duplicate, not a correction: the hash of a record that carries none of them
+    is the earlier formula (copied here from the release before the fields)."""
+    load(store, tmp_path, HEADER + good_rows(3), minimal)
+    mismatched = store.execute(
+        """
+        select count(*) from records
+        where content_hash <> hash(patient_id, unit, analyser_id, age_years, birth_date, collected_at, resulted_at,
+             sample_type, o2_device, o2_flow_l_min, fio2, barometric_pressure_mmhg, temperature_c,
+             ph, paco2_mmhg, pao2_mmhg, hco3_mmol_l, base_excess_mmol_l, sao2_pct,
+             sao2_is_calculated, spo2_pct, hb_g_dl, na_mmol_l, k_mmol_l, cl_mmol_l,
+             lactate_mmol_l, mean_airway_pressure_cmh2o, peep_cmh2o, hypercapnic_risk,
+             result_status, glucose_mmol_l, cohb_pct, methb_pct)
+        """
+    ).fetchall()
+    assert mismatched == [(0,)]
+    # The same samples delivered again with a collection method: a correction of each.
+    profile = load_profile(new_fields_profile(tmp_path))
+    rows = "".join(row + ",,,,,ART,\n" for row in good_rows(3).splitlines())
+    f = load(store, tmp_path, NEW_FIELDS_HEADER + rows, profile, name="b.csv")
+    assert (f.rows_loaded, f.corrections) == (3, 3)
+    assert store.execute("select count(*) from superseded_records").fetchall() == [(3,)]
+
+
+def test_an_old_store_gains_the_new_columns(tmp_path):
+    """A store made before the prescribing fields: opening it adds every new column (NULL,
+    or the kind 'sample' for earlier quarantine rows) and it loads both kinds afterwards."""
+    path = tmp_path / "old.duckdb"
+    con = open_store(path)
+    con.execute("insert into quarantine (run_id, sample_id, reason_code) values ('r0', 'S-OLD', 'NOT_A_NUMBER')")
+    new_record_columns = ("encounter_id", "encounter_key", "target_spo2_low_pct", "target_spo2_high_pct",
+                          "o2_prescribed", "collection_method", "operator_id", "operator_key")
+    dropped = {
+        "records": new_record_columns,
+        "superseded_records": new_record_columns,
+        "quarantine": ("record_kind", "record_id"),
+        "merged_duplicates": ("record_kind", "record_id"),
+        "ingested_files": ("kind",),
+    }
+    for table, columns in dropped.items():
+        for column in columns:
+            con.execute(f"alter table {table} drop column {column}")
+    con.execute("drop table superseded_prescriptions")
+    con.execute("drop table prescriptions")
+    con.close()
+
+    con = open_store(path)
+    try:
+        present = {
+            (t, c) for t, c in con.execute("select table_name, column_name from information_schema.columns").fetchall()
+        }
+        for table, columns in dropped.items():
+            for column in columns:
+                assert (table, column) in present, (table, column)
+        assert ("prescriptions", "prescription_id") in present and ("superseded_prescriptions", "version") in present
+        old = con.execute("select record_kind, record_id from quarantine where sample_id = 'S-OLD'").fetchall()
+        assert old == [("sample", "S-OLD")]
+        profile = load_profile(new_fields_profile(tmp_path))
+        f = load(con, tmp_path, NEW_FIELDS_HEADER + new_fields_rows(), profile)
+        assert f.rows_loaded == 3
+        kinds = con.execute("select distinct kind from ingested_files").fetchall()
+        assert kinds == [("samples",)]
+    finally:
+        con.close()

@@ -8,7 +8,7 @@ import pytest
 from click.testing import CliRunner
 
 from pipeline.cli import main
-from pipeline.schema import FIELDS, Kind
+from pipeline.schema import FIELDS, PRESCRIPTION_FIELDS, Kind
 from pipeline.store import open_store
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -57,3 +57,49 @@ def test_readme_states_the_caution_and_two_setup_commands():
     assert readme.count("python3 -m venv .venv && .venv/bin/pip install") == 2
     ci = (ROOT / ".ci" / "run").read_text(encoding="utf-8")
     assert ".venv/bin/python -m pytest -n 2 -q" in readme and ".venv/bin/python -m pytest -n 2 -q" in ci
+
+
+def test_prescriptions_table_has_every_prescription_field_with_its_type(tmp_path):
+    con = open_store(tmp_path / "s.duckdb")
+    for table in ("prescriptions", "superseded_prescriptions"):
+        columns = dict(con.execute("select column_name, data_type from information_schema.columns "
+                                   "where table_name = ?", [table]).fetchall())
+        for field in PRESCRIPTION_FIELDS:
+            assert columns.get(field.name) == DUCKDB_TYPES[field.kind], (table, field.name)
+        for pseudonym in ("patient_key", "encounter_key"):
+            assert columns.get(pseudonym) == "VARCHAR"
+
+
+def test_fields_shared_by_samples_and_prescriptions_have_one_definition():
+    # Hard limits are per field name (the store's field_limits, built from FIELDS): a field a
+    # prescription shares with a sample must have the sample's kind, unit family and limits.
+    samples = {f.name: f for f in FIELDS}
+    for field in PRESCRIPTION_FIELDS:
+        if field.name in samples:
+            shared = samples[field.name]
+            assert (field.kind, field.unit_family, field.hard_min, field.hard_max) == (
+                shared.kind,
+                shared.unit_family,
+                shared.hard_min,
+                shared.hard_max,
+            ), field.name
+        else:
+            assert field.hard_min is None and field.hard_max is None, field.name
+
+
+def test_canonical_record_doc_lists_every_prescription_field_and_reason():
+    text = (ROOT / "docs" / "canonical-record.md").read_text(encoding="utf-8")
+    section = text.split("## Prescriptions feed", 1)[1]
+    for field in PRESCRIPTION_FIELDS:
+        assert f"`{field.name}`" in section, field.name
+    for reason in ("TARGET_RANGE_INVALID", "END_BEFORE_START"):
+        assert f"`{reason}`" in section
+
+
+def test_fields_command_lists_both_record_kinds():
+    output = CliRunner().invoke(main, ["fields"]).output
+    samples, prescriptions = output.split("# prescriptions", 1)
+    for field in FIELDS:
+        assert f"\n{field.name} " in samples, field.name
+    for field in PRESCRIPTION_FIELDS:
+        assert f"\n{field.name} " in prescriptions, field.name
