@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import dataclasses
 from collections.abc import Iterable
+from datetime import datetime, timedelta
 from typing import Any
 
 import duckdb
@@ -23,6 +24,8 @@ from scipy.stats.mstats import winsorize
 from statsmodels.stats.meta_analysis import combine_effects
 
 from pipeline.sql_files import install_macros, run_sql
+from tests.audit_store import audit, audit_config, build_store, frame
+from tests.rule_harness import record
 
 Z95 = float(norm.ppf(0.975))
 Z998 = float(norm.ppf(0.999))
@@ -419,3 +422,70 @@ def test_a_hidden_denominator_hides_the_units_limits():
     assert curve[0]["volume"] == pytest.approx(
         min(u.n for u in SPREAD if u.name not in ("Ward C", "Ward K")) / 2, abs=1
     )
+
+
+# --------------------------------------------------------------------------------------
+# Through the audit stage
+# --------------------------------------------------------------------------------------
+
+
+def samples(units: list[Unit], start: datetime) -> list[dict[str, Any]]:
+    """Room-air samples, one patient each: x of each unit's n hypoxaemic (PaO2 55 mmHg, no saturation), the rest in
+    target (PaO2 90 mmHg, SaO2 96.9 %), all in one complete month."""
+    rows = []
+    for u in units:
+        for i in range(u.n):
+            hypo = i < u.x
+            when = start + timedelta(minutes=5 * len(rows))
+            rows.append(
+                record(
+                    f"{u.name}-{i}",
+                    unit=u.name,
+                    patient_id=f"{u.name}-{i}",
+                    collected_at=when,
+                    resulted_at=when + timedelta(minutes=10),
+                    pao2_mmhg=55.0 if hypo else 90.0,
+                    sao2_pct=None if hypo else 96.9,
+                    spo2_pct=None if hypo else 97.0,
+                )
+            )
+    return rows
+
+
+def test_audit_stage_compares_units_within_their_configured_types(tmp_path):
+    # Six wards (invented counts) and two intensive care units from the site's [unit_types]; the last sample is in
+    # the next month so that January is complete. Oracles as above: statsmodels DerSimonian-Laird for the wards,
+    # the 5-unit minimum for intensive care; the centre lines are the type rows audit_rates publishes.
+    wards = [Unit(f"Ward {c}", "ward", x, n) for c, (x, n) in zip("ABCDEF", [(6, 60), (20, 80), (3, 50),
+             (25, 90), (9, 70), (2, 40)], strict=True)]  # fmt: skip
+    icus = [Unit("Heron ICU", "critical_care", 30, 70), Unit("Kite ICU", "critical_care", 22, 60)]
+    rows = samples(wards + icus, datetime(2026, 1, 5, 8, 0)) + samples(
+        [Unit("Ward A", "ward", 0, 1)], datetime(2026, 2, 2, 8, 0)
+    )
+    rows[-1]["sample_id"] = rows[-1]["patient_id"] = "FEB-1"
+    config = dataclasses.replace(
+        audit_config(tmp_path, k=1, complete_periods_only=True),
+        unit_types={u.name: u.unit_type for u in wards + icus},
+    )
+    con = build_store(tmp_path, rows, config)
+    audit(con, config)
+    funnel = {r["unit"]: r for r in frame(con, "audit_funnel", "measure = 'hypoxaemia'").to_dicts()}
+    assert {name: (r["numerator"], r["denominator"]) for name, r in funnel.items()} == {
+        u.name: (u.x, u.n) for u in wards + icus
+    }  # hand-counted fixture reaches the funnel intact
+    type_rates = {
+        r["unit_type"]: r["rate"]
+        for r in frame(con, "audit_rates", "measure = 'hypoxaemia' and all_units and all_periods").to_dicts()
+    }
+    assert funnel["Ward A"]["overall_rate"] == pytest.approx(type_rates["ward"]) == pytest.approx(65 / 390)
+    assert funnel["Heron ICU"]["overall_rate"] == pytest.approx(type_rates["critical_care"])
+    dl = dersimonian_laird(wards)
+    ward = funnel["Ward B"]
+    assert (ward["overdispersion"], ward["units_in_type"], ward["units_in_estimate"]) == ("additive", 6, 6)
+    assert ward["phi"] == pytest.approx(dl.q / 6, rel=1e-9)
+    assert ward["tau2"] == pytest.approx(max(0.0, dl.tau2), rel=1e-9) and ward["tau2"] > 0
+    icu = funnel["Kite ICU"]
+    assert (icu["overdispersion"], icu["phi"], icu["units_in_type"]) == ("none", None, 2)
+    curve = frame(con, "audit_funnel_curve", "measure = 'hypoxaemia'")
+    assert set(curve["unit_type"].to_list()) == {"ward", "critical_care"}
+    con.close()
