@@ -216,3 +216,129 @@ def test_key_problems_are_configuration_errors_that_never_show_the_key(tmp_path,
     assert line.startswith("error: ") and "pseudonym key" in line and len(line.splitlines()) == 1
     assert secret not in outcome.output
     assert not load_config(config_path).store_path.exists()  # refused before the store was touched
+
+
+# --------------------------------------------------------------------------------------
+# Encounter and operator identifiers, and the oxygen prescriptions feed
+# --------------------------------------------------------------------------------------
+
+STAFF_AND_PRESCRIPTION_COLUMNS = {
+    ("records", "patient_id"),
+    ("records", "encounter_id"),
+    ("records", "operator_id"),
+    ("superseded_records", "patient_id"),
+    ("superseded_records", "encounter_id"),
+    ("superseded_records", "operator_id"),
+    ("prescriptions", "patient_id"),
+    ("prescriptions", "encounter_id"),
+    ("superseded_prescriptions", "patient_id"),
+    ("superseded_prescriptions", "encounter_id"),
+    ("quarantine", "original_text"),
+}
+PRESCRIPTION_PROFILE = """\
+[profile]
+name = "canary_prescriptions"
+kind = "prescriptions"
+datetime_format = "%Y-%m-%d %H:%M"
+timezone = "Europe/London"
+
+[columns]
+prescription_id = "order"
+patient_id = "mrn"
+encounter_id = "encounter"
+unit = "ward"
+start_at = "start"
+end_at = "end"
+target_spo2_low_pct = "low"
+target_spo2_high_pct = "high"
+o2_device = "device"
+
+[codes.o2_device]
+"NC" = "nasal_cannula"
+"""
+
+
+def make_staff_site(root: Path, *, keep_patient_id: bool = True) -> Path:
+    """The nightly test site whose samples also carry encounter and operator canaries, plus a
+    prescriptions feed with canary patients and encounters: rows that load, rows that are
+    quarantined (a bad date, an invalid target range), a correction, and a rejected file."""
+    config = make_site(root, days=1, patient=canary, keep_patient_id=keep_patient_id, rejected_file=False)
+    profile = root / "profile.toml"
+    text = profile.read_text(encoding="utf-8").replace(
+        'hco3_mmol_l = "hco3"\n', 'hco3_mmol_l = "hco3"\nencounter_id = "enc"\noperator_id = "op"\n'
+    )
+    profile.write_text(text, encoding="utf-8")
+    # The day's file gains the two columns (the site's profile now maps them).
+    day = root / "exports" / "day01.csv"
+    lines = day.read_text(encoding="utf-8").splitlines()
+    rows = [lines[0] + ",enc,op"] + [
+        f"{line},{CANARY}-EN{n % 4},{CANARY}-OP{n % 3}" for n, line in enumerate(lines[1:], start=1)
+    ]
+    day.write_text("\n".join(rows) + "\n", encoding="utf-8")
+    (root / "rx_profile.toml").write_text(PRESCRIPTION_PROFILE, encoding="utf-8")
+    rx = root / "exports"  # beside the samples, told apart by the inputs' patterns
+    header = "order,mrn,encounter,ward,start,end,low,high,device\n"
+    (rx / "rx1.csv").write_text(
+        header
+        + f"RX1,{canary(101)},{CANARY}-EN1,W1,2026-03-01 08:00,,94,98,NC\n"
+        + f"RX2,{canary(102)},{CANARY}-EN2,W1,2026-03-01 0x:00,,94,98,NC\n"
+        + f"RX3,{canary(103)},{CANARY}-EN3,W2,2026-03-01 08:00,,98,94,NC\n",
+        encoding="utf-8",
+    )
+    (rx / "rx2.csv").write_text(  # RX1 now ends: a correction
+        header + f"RX1,{canary(101)},{CANARY}-EN1,W1,2026-03-01 08:00,2026-03-02 08:00,94,98,NC\n", encoding="utf-8"
+    )
+    (rx / "rx3_rejected.csv").write_text(  # no start column: the whole file is rejected
+        header.replace(",start,", ",begins,") + f"RX9,{canary(109)},{CANARY}-EN9,W1,2026-03-01 08:00,,94,98,NC\n",
+        encoding="utf-8",
+    )
+    config.write_text(
+        config.read_text(encoding="utf-8").replace('pattern = "*.csv"', 'pattern = "day*.csv"')
+        + '\n[[inputs]]\npath = "exports"\nprofile = "rx_profile.toml"\npattern = "rx*.csv"\nkind = "prescriptions"\n',
+        encoding="utf-8",
+    )
+    return config
+
+
+def test_encounter_operator_and_prescription_identifiers_stay_in_the_protected_store(tmp_path):
+    root = tmp_path / "staff"
+    config_path = make_staff_site(root)
+    config = load_config(config_path)
+    stream = io.StringIO()
+    result = run_pipeline(config, Log("json", stream=stream))
+    outcomes = sorted((f.kind, f.path.name, f.outcome) for f in result.files)
+    assert outcomes == [
+        ("prescriptions", "rx1.csv", "loaded"),
+        ("prescriptions", "rx2.csv", "loaded"),
+        ("prescriptions", "rx3_rejected.csv", "rejected"),
+        ("samples", "day01.csv", "loaded"),
+    ]
+    con = duckdb.connect(str(config.store_path), read_only=True)
+    try:
+        held = con.execute(
+            "select count(*), count(encounter_id), count(operator_id), count(distinct operator_key) from records"
+        ).fetchall()
+        rx = con.execute("select count(*) from prescriptions").fetchall()
+        rx_old = con.execute("select count(*) from superseded_prescriptions").fetchall()
+        rx_quarantined = con.execute("select count(*) from quarantine where record_kind = 'prescription'").fetchall()
+    finally:
+        con.close()
+    # Hand-counted: 30 sample rows load (3 fail), each with an encounter and one of 3 operators;
+    # RX1 loads and is corrected by rx2.csv, RX2 (bad date) and RX3 (98-94) are quarantined.
+    assert held == [(30, 30, 30, 3)]
+    assert (rx, rx_old, rx_quarantined) == ([(1,)], [(1,)], [(2,)])
+    assert CANARY not in stream.getvalue()
+    assert leaks_in_files(root, config.store_path) == []
+    found = leaks_in_store(config.store_path)
+    assert found - STAFF_AND_PRESCRIPTION_COLUMNS == set()
+    assert {("records", "operator_id"), ("prescriptions", "encounter_id"), ("quarantine", "original_text")} <= found
+
+
+def test_site_that_keeps_no_identifier_stores_no_encounter_operator_or_prescription_identifier(tmp_path):
+    root = tmp_path / "staff"
+    config = load_config(make_staff_site(root, keep_patient_id=False))
+    stream = io.StringIO()
+    run_pipeline(config, Log("json", stream=stream))
+    assert CANARY not in stream.getvalue()
+    assert leaks_in_files(root, config.store_path) == []
+    assert leaks_in_store(config.store_path) == {("quarantine", "original_text")}
