@@ -36,6 +36,7 @@ LAYER_TABLES = (
     "audit_unit_period_flags",
     "audit_unit_period_patients",
     "audit_unit_period_episodes",
+    "audit_unit_period_age_bands",
     "audit_layer_runs",
     "audit_layer_state",
 )
@@ -43,6 +44,7 @@ LAYER_TABLES = (
 _WORK_FILES = (
     "audit/08_audit_window.sql",
     "audit/05_audit_measure.sql",
+    "audit/06_audit_age_band_family.sql",
     "audit/06_audit_partition.sql",
     "audit/07_audit_pair.sql",
     "audit/10_audit_cell.sql",
@@ -57,6 +59,7 @@ _PUBLISH_FILES = (
     "audit/22_audit_pf_bands.sql",
     "audit/23_audit_flag_rates.sql",
     "audit/24_audit_age_groups.sql",
+    "audit/25_audit_age_band_rates.sql",
     "audit/30_audit_control_chart.sql",
     "audit/40_audit_funnel.sql",
     "audit/41_audit_funnel_curve.sql",
@@ -67,6 +70,8 @@ _PUBLISH_FILES = (
 _TEMP_TABLES = (
     "audit_window",
     "audit_measure",
+    "audit_age_band_family",
+    "audit_age_band_rate",
     "audit_partition",
     "audit_pair",
     "audit_cell",
@@ -82,6 +87,7 @@ PUBLISHED_TABLES = (
     "audit_pf_bands",
     "audit_flag_rates",
     "audit_age_groups",
+    "audit_age_band_rates",
     "audit_control_chart",
     "audit_funnel",
     "audit_funnel_curve",

@@ -694,6 +694,7 @@ COUNT_COLUMNS = {
         "excluded_data_quality",
     ],
     "audit_rates": ["numerator", "denominator"],
+    "audit_age_band_rates": ["numerator", "denominator"],
     "audit_pf_bands": ["samples_in_band", "samples_with_pf"],
     "audit_flag_rates": ["flagged_samples", "samples"],
     "audit_age_groups": ["samples", "adults", "age_unknown", "children", "neonates"],
@@ -702,12 +703,14 @@ COUNT_COLUMNS = {
 }
 PAIRS = {
     "audit_rates": ("numerator", "denominator"),
+    "audit_age_band_rates": ("numerator", "denominator"),
     "audit_pf_bands": ("samples_in_band", "samples_with_pf"),
     "audit_flag_rates": ("flagged_samples", "samples"),
     "audit_funnel": ("numerator", "denominator"),
 }
 DERIVED = {
     "audit_rates": ["rate", "ci_low", "ci_high"],
+    "audit_age_band_rates": ["rate", "ci_low", "ci_high"],
     "audit_pf_bands": ["share", "ci_low", "ci_high"],
     "audit_flag_rates": ["rate", "ci_low", "ci_high"],
     "audit_funnel": ["rate", "position"],
@@ -715,6 +718,7 @@ DERIVED = {
 GROUP = {
     "audit_volume": [],
     "audit_rates": ["measure"],
+    "audit_age_band_rates": ["measure", "age_band"],
     "audit_pf_bands": ["band"],
     "audit_flag_rates": ["rule_id"],
     "audit_age_groups": [],
@@ -756,6 +760,8 @@ def count_key(table: str, column: str, r: dict[str, Any]) -> tuple[str, str, str
     rate denominator) is one unknown to a reader, not several."""
     if table == "audit_rates":
         what = RATE_COUNTS[r["measure"]][0 if column == "numerator" else 1]
+    elif table == "audit_age_band_rates":  # the same count of one adult age band
+        what = RATE_COUNTS[r["measure"]][0 if column == "numerator" else 1] + "@" + r["age_band"]
     elif table == "audit_pf_bands":
         what = f"pf band {r['band']}" if column == "samples_in_band" else "pf_assessed"
     elif table == "audit_flag_rates":
@@ -842,6 +848,17 @@ def published_lines(con: duckdb.DuckDBPyConnection) -> list[tuple[str, list[tupl
             (count_key("audit_volume", "excluded_sample_type", r), "excluded_sample_type", r),
         ]
         lines.append((f"sample type split {r['unit']} {r['period']}", members))
+    # A rate's numerator (denominator) is the sum of its age bands' numerators (denominators).
+    rates_by_key = {(r["measure"], r["unit"], r["period"]): r for r in frame(con, "audit_rates").to_dicts()}
+    age_bands: dict[tuple, list] = {}
+    for r in frame(con, "audit_age_band_rates").to_dicts():
+        age_bands.setdefault((r["measure"], r["unit"], r["period"]), []).append(r)
+    for key, members in age_bands.items():
+        for column in ("numerator", "denominator"):
+            total = rates_by_key[key]
+            line = [(count_key("audit_rates", column, total), column, total)]
+            line += [(count_key("audit_age_band_rates", column, r), column, r) for r in members]
+            lines.append((f"age bands {column} {key}", line))
     bands = frame(con, "audit_pf_bands").to_dicts()
     by_cell: dict[tuple, list] = {}
     for r in bands:

@@ -283,3 +283,29 @@ def test_unit_types_get_their_own_rows(tmp_path):
         ("All ward units", "ward"): (0, 1),
         ("All units", None): (1, 3),
     }
+
+
+def test_rates_by_adult_age_band(tmp_path):
+    config = audit_config(tmp_path, k=1)
+    rows = [
+        record("Y1", patient_id="P1", age_years=30.0, **HYPOXAEMIC, **ON_OXYGEN),
+        record("Y2", patient_id="P2", age_years=44.9, **WITHIN, **ON_OXYGEN),
+        record("M1", patient_id="P3", age_years=45.0, **ABOVE, **ON_OXYGEN),
+        record("O1", patient_id="P4", age_years=85.0, **HYPOXAEMIC, **ROOM_AIR),
+        record("U1", patient_id="P5", age_years=None, **WITHIN, **ON_OXYGEN),
+        record("C1", patient_id="P6", age_years=10.0, **HYPOXAEMIC, **ON_OXYGEN),  # a child: in no adult band
+    ]
+    con = build_store(tmp_path, rows, config)
+    audit(con, config)
+    got = frame(con, "audit_age_band_rates", "unit = 'All units' and all_periods")
+    table = {(r["measure"], r["age_band"]): (r["numerator"], r["denominator"]) for r in got.to_dicts()}
+    # hand-counted: under 45 = Y1 (hypoxaemic) + Y2; 45-64 = M1 (above target on oxygen); 80 and over = O1 on air
+    assert table[("hypoxaemia", "under 45")] == (1, 2)
+    assert table[("hypoxaemia", "45-64")] == (0, 1)
+    assert table[("hypoxaemia", "65-79")] == (0, 0)
+    assert table[("hypoxaemia", "80 and over")] == (1, 1)
+    assert table[("hypoxaemia", "age unknown")] == (0, 1)
+    assert table[("above_target_on_oxygen", "45-64")] == (1, 1)
+    assert table[("above_target_on_oxygen", "80 and over")] == (0, 0)
+    overall = rates(con, "sample")["hypoxaemia"]
+    assert overall == (2, 5)  # the bands add up to the adult rate; the child is outside it

@@ -22,6 +22,9 @@
 --   audit_unit_period_flags     per (unit, period, rule): samples flagged.
 --   audit_unit_period_patients  per (unit, period): the distinct patient_key values, so that
 --                               patients over several periods or units are counted once.
+--   audit_unit_period_age_bands per (unit, period, adult age band): the oxygenation and
+--                               prescribing families that are also published by age band
+--                               (audit_age_band_rates), so units are compared band by band.
 --   audit_unit_period_episodes  per (unit, period): episodes (an encounter, or a patient-day
 --                               where no encounter is exported: derived.episode_key) counted
 --                               once, in the unit and period of their first included adult
@@ -59,6 +62,7 @@ with placed as (
         d.aa_gradient_excess_mmhg,
         d.pf_band,
         d.episode_key,
+        d.age_years_used,
         d.prescription_status,
         d.prescribed_target_position,
         d.prescribed_target_conflicts_risk,
@@ -157,7 +161,16 @@ select
     s.episode_key,
     s.oxygen_assessed and s.oxygen_documented_on
         and (s.arterial_saturation_pct > s.target_high_pct or s.arterial_saturation_pct < s.target_low_pct)
-        as out_of_target_on_oxygen
+        as out_of_target_on_oxygen,
+    -- adult age bands (common practice in audit tables; 'age unknown' holds the adults without an age)
+    case
+        when s.age_group = 'unknown' then 'age unknown'
+        when s.age_group <> 'adult' then null
+        when s.age_years_used < 45 then 'under 45'
+        when s.age_years_used < 65 then '45-64'
+        when s.age_years_used < 80 then '65-79'
+        else '80 and over'
+    end as age_band
 from status as s;
 
 create or replace temp table audit_flag_now as
@@ -249,6 +262,22 @@ from audit_sample_flag as f
 semi join audit_touched as t on t.unit = f.unit and t.period_start = f.period_start
 group by f.unit, f.period_start, f.rule_id;
 
+create or replace temp view audit_age_bands_fresh as
+select
+    f.unit,
+    f.period_start,
+    f.age_band,
+    count(*) filter (where f.oxygen_assessed) as oxygen_assessed,
+    count(*) filter (where f.hypoxaemic) as hypoxaemic,
+    count(*) filter (where f.on_oxygen) as on_oxygen,
+    count(*) filter (where f.above_target_on_oxygen) as above_target_on_oxygen,
+    count(*) filter (where f.rx_target_assessed) as rx_target_assessed,
+    count(*) filter (where f.rx_within_target) as rx_within_target
+from audit_sample_fact as f
+semi join audit_touched as t on t.unit = f.unit and t.period_start = f.period_start
+where f.age_band is not null
+group by f.unit, f.period_start, f.age_band;
+
 create or replace temp view audit_patients_fresh as
 select distinct f.unit, f.period_start, f.patient_key
 from audit_sample_fact as f
@@ -258,6 +287,7 @@ where f.patient_key is not null;
 create table if not exists audit_unit_period_counts as select * from audit_counts_fresh with no data;
 create table if not exists audit_unit_period_flags as select * from audit_flags_fresh with no data;
 create table if not exists audit_unit_period_patients as select * from audit_patients_fresh with no data;
+create table if not exists audit_unit_period_age_bands as select * from audit_age_bands_fresh with no data;
 
 delete from audit_unit_period_counts as c
 where exists (select 1 from audit_touched as t where t.unit = c.unit and t.period_start = c.period_start);
@@ -268,6 +298,9 @@ insert into audit_unit_period_flags select * from audit_flags_fresh;
 delete from audit_unit_period_patients as c
 where exists (select 1 from audit_touched as t where t.unit = c.unit and t.period_start = c.period_start);
 insert into audit_unit_period_patients select * from audit_patients_fresh;
+delete from audit_unit_period_age_bands as c
+where exists (select 1 from audit_touched as t where t.unit = c.unit and t.period_start = c.period_start);
+insert into audit_unit_period_age_bands select * from audit_age_bands_fresh;
 
 -- Episodes, from every fact (see the header): each counted in the unit and period of its first
 -- assessed sample (ties: the lowest sample_id), with its first and any-sample outcomes.
@@ -314,6 +347,7 @@ group by unit, period_start;
 drop view audit_counts_fresh;
 drop view audit_flags_fresh;
 drop view audit_patients_fresh;
+drop view audit_age_bands_fresh;
 drop table audit_fact_now;
 drop table audit_flag_now;
 drop table audit_touched;

@@ -4,7 +4,7 @@
 -- (A rate's numerator and denominator are related through audit_pair instead.)
 -- Grain: one row per (partition, family).
 create or replace temp table audit_partition as
-select *
+select partition_id, family, role
 from (
     values
         ('audit_status', 'samples', 'total'),
@@ -40,4 +40,9 @@ from (
         ('prescribed_target', 'rx_below_target', 'part'),
         ('prescribed_target', 'rx_within_target', 'part'),
         ('prescribed_target', 'rx_above_target', 'part')
-) as p(partition_id, family, role);
+) as p(partition_id, family, role)
+union all
+-- each family published by adult age band is the sum of its bands (audit_age_band_family)
+select 'age_band:' || base_family, base_family, 'total' from audit_age_band_family group by base_family
+union all
+select 'age_band:' || base_family, family, 'part' from audit_age_band_family;

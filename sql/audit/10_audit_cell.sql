@@ -247,10 +247,57 @@ flag_cells as (
        and fc.unit_type is not distinct from g.unit_type
        and fc.period_start is not distinct from g.period_start
 ),
+-- Adult age bands: '<family>@<band>' for the families of audit_unit_period_age_bands, so that
+-- audit_age_band_rates can compare like with like; the bands of a family add up to it
+-- (06_audit_partition.sql).
+band_counts as (
+    select
+        b.family || '@' || b.age_band as family,
+        case when grouping(b.unit) = 1 then null else b.unit end as unit,
+        case when grouping(unit_type) = 1 then null else unit_type end as unit_type,
+        case when grouping(b.period_start) = 1 then null else b.period_start end as period_start,
+        sum(b.value) as value
+    from (
+        select a.unit, a.period_start, a.age_band, coalesce(t.unit_type, 'unassigned') as unit_type, v.family, v.value
+        from audit_unit_period_age_bands as a
+        left join typed_units as t on t.unit = a.unit
+        cross join lateral (
+            values
+                ('oxygen_assessed', a.oxygen_assessed),
+                ('hypoxaemic', a.hypoxaemic),
+                ('on_oxygen', a.on_oxygen),
+                ('above_target_on_oxygen', a.above_target_on_oxygen),
+                ('rx_target_assessed', a.rx_target_assessed),
+                ('rx_within_target', a.rx_within_target)
+        ) as v(family, value)
+    ) as b
+    semi join audit_window as w on w.period_start = b.period_start
+    group by b.family, b.age_band, grouping sets (
+        (unit_type, b.unit, b.period_start), (unit_type, b.unit), (unit_type, b.period_start), (unit_type),
+        (b.period_start), ()
+    )
+),
+band_cells as (
+    select
+        f.family,
+        g.unit,
+        g.unit_type,
+        g.period_start,
+        coalesce(bc.value, 0) as value
+    from grouped as g
+    cross join (select family from audit_age_band_family) as f
+    left join band_counts as bc
+        on bc.family = f.family
+       and bc.unit is not distinct from g.unit
+       and bc.unit_type is not distinct from g.unit_type
+       and bc.period_start is not distinct from g.period_start
+),
 counted as (
     select family, unit, unit_type, period_start, value from sample_cells
     union all
     select family, unit, unit_type, period_start, value from flag_cells
+    union all
+    select family, unit, unit_type, period_start, value from band_cells
 ),
 remainders as (
     -- numerators whose remainder (denominator - numerator) is small
