@@ -67,6 +67,8 @@ def build_parser() -> argparse.ArgumentParser:
             "  parquet/export_YYYY-MM-DD.parquet    Parquet (profiles/demo_parquet.toml)\n"
             "  ground_truth.parquet, ground_truth.csv   injected faults\n"
             "  lookalikes.parquet, lookalikes.csv       clinical look-alikes (real patients, no fault)\n"
+            "  prescriptions/prescriptions_YYYY-MM-DD.csv  oxygen prescriptions, weekly (demo_prescriptions.toml)\n"
+            "  prescriptions_truth.parquet/.csv, oxygen_truth.parquet   prescribing and oxygen truth\n"
             "  README.txt\n\n"
             f"Fault types and their default shares of all samples (total {DEFAULT_TOTAL:.3f}):\n"
             f"{fault_lines}\n\n"
@@ -152,6 +154,8 @@ def main(argv: list[str] | None = None) -> int:
             truth,
             args.out,
             lookalikes=demo.lookalikes,
+            prescriptions=demo.prescriptions,
+            oxygen=demo.oxygen,
             single_file=args.single_file,
             provenance={
                 "seed": args.seed,
@@ -167,7 +171,7 @@ def main(argv: list[str] | None = None) -> int:
 
     print(
         f"{canonical.height} records from {SITE_NAME} (invented), {truth.height} with an injected fault, "
-        f"{demo.lookalikes.height} clinical look-alikes"
+        f"{demo.lookalikes.height} clinical look-alikes, {demo.prescriptions.height} oxygen prescriptions"
     )
     for source, files in written.items():
         print(f"  {source:<9} {len(files):>4} file(s) in {args.out / source}")

@@ -10,7 +10,8 @@ canonical column hit), ``value_before`` and ``value_after`` (canonical units), `
 Fault types (how each lands; all arithmetic is the generator's own, in numpy):
 
 - ``venous_as_arterial``: the syringe holds the patient's venous blood (forward model step 6) but
-  is labelled arterial; PO2 and the saturation fall, PCO2 and HCO3 rise; SpO2 stays the patient's.
+  is labelled arterial (a puncture that missed the artery: never an arterial-line sample); PO2 and
+  the saturation fall, PCO2 and HCO3 rise; SpO2 stays the patient's.
 - ``air_contamination``: PO2 pulled 30-80 % of the way to the PO2 of room air (0.2095 x (PB -
   PH2O at 22 C), about 155 mmHg), PCO2 down by 0.4 times that share, HCO3 down 3 % of it.
 - ``fio2_under_documented``: the patient is on a nasal cannula or a simple, Venturi or reservoir
@@ -35,7 +36,8 @@ Fault types (how each lands; all arithmetic is the generator's own, in numpy):
   canonical record. ``value_before`` is the first-sent value.
 - ``text_result``: one measured cell holds text instead of a number: "haemolysed" (K), "clotted"
   (PO2) or "see comment" (lactate). CSV sources only; the canonical value is NULL.
-- ``line_flush_dilution``: an arterial-line sample mixed with 10-40 % of the line's flush fluid:
+- ``line_flush_dilution``: an arterial-line sample (collection method ``arterial_line``) mixed
+  with 10-40 % of the line's flush fluid:
   0.9 % saline (Na 154, Cl 154 mmol/L; no Hb, K, glucose, HCO3 or CO2; PO2 that of room air) in 80 %
   of cases, 5 % glucose (278 mmol/L glucose, no electrolytes) in 20 %. Every analyte mixes linearly
   (COHb and MetHb are fractions of Hb, so they stay); pH follows from the diluted HCO3 and PCO2; the
@@ -169,12 +171,15 @@ def assign_faults(rng: np.random.Generator, state: pl.DataFrame, rates: dict[str
         .fill_null(False)
         .alias("bounded_device"),
         pl.col("source").is_in(["eu_style", "us_style"]).alias("csv_source"),
+        (pl.col("collection_method") == "arterial_line").fill_null(False).alias("line"),
     )
     taken = ~masks["ordinary"].to_numpy()
     eligible: dict[str, np.ndarray] = {
-        "venous_as_arterial": masks["arterial"].to_numpy(),
+        # venous blood in an "arterial" syringe is a missed artery at a puncture, never the line's
+        "venous_as_arterial": (masks["arterial"] & ~masks["line"]).to_numpy(),
         "air_contamination": masks["arterial"].to_numpy(),
-        "line_flush_dilution": masks["arterial"].to_numpy(),
+        # a flush can only dilute what an arterial line gives
+        "line_flush_dilution": (masks["arterial"] & masks["line"]).to_numpy(),
         "fio2_under_documented": masks["on_oxygen_charted"].to_numpy(),
         "fio2_device_mismatch": masks["bounded_device"].to_numpy(),
         "text_result": masks["csv_source"].to_numpy(),

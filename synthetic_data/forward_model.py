@@ -52,8 +52,12 @@ import polars as pl
 from pipeline.schema import FIELDS  # the canonical column list only; no formula comes from the pipeline
 from synthetic_data import devices as dev
 from synthetic_data import physics as phys
+from synthetic_data import titration
+from synthetic_data.hospital import UNIT_TYPES
 
 CANONICAL_COLUMNS: tuple[str, ...] = tuple(f.name for f in FIELDS)
+HIGH_FLOW_UNIT_TYPES = ("critical_care", "emergency")
+"""Unit types where a patient the device cannot oxygenate is moved to high-flow nasal oxygen (invented)."""
 
 REPORTED = (
     "ph",
@@ -133,18 +137,55 @@ def true_state(draws: pl.DataFrame, altitude_m: float, rng: np.random.Generator)
     shunt = _np(draws, "shunt")
     av_diff = _np(draws, "av_diff")
 
-    # 1-2. pressure and inspired oxygen
+    # 1. pressure; the patient's blood and lungs at body temperature
     pb = np.round(phys.standard_pressure_mmhg(altitude_m) + _np(draws, "pb_offset"), 1)
-    fio2_true = dev.delivered_fio2(device, flow, fio2_set, _np(draws, "u_breathing"), _np(draws, "u_venturi"))
-    fio2_charted = dev.charted_fio2(device, flow, fio2_set)
-
-    # 3-4. the patient at body temperature
     ph2o = phys.water_vapour_pressure_mmhg(t)
-    pao2_alveolar = phys.alveolar_po2_mmhg(fio2_true, paco2, pb, ph2o, _np(draws, "rq"))
     ph = phys.ph_from_hco3(paco2, hco3)
     hb_available = hb * (1.0 - (cohb + methb) / 100.0)
     p50 = phys.p50_mmhg(p50_std, ph, paco2, t)
     gradient = _np(draws, "vq_factor") * (1.0 + 0.12 * _np(draws, "age_exact"))
+    rq = _np(draws, "rq")
+    u_breathing = _np(draws, "u_breathing")
+    u_venturi = _np(draws, "u_venturi")
+
+    # 1b. oxygen titrated towards the target in force (titration.py); look-alikes and room air are not
+    if "aim_spo2" in draws.columns:
+        sat_aim = titration.aimed_saturation(
+            _np(draws, "aim_spo2"),
+            _np(draws, "oximeter_bias"),
+            _np(draws, "oximeter_extra"),
+            cohb,
+            methb,
+            _np(draws, "u_drift"),
+        )
+        need = titration.required_fio2(sat_aim, p50, hb_available, t, shunt, av_diff, gradient, paco2, pb, ph2o, rq)
+        device, flow, fio2_set = titration.set_devices(
+            device,
+            flow,
+            fio2_set,
+            need,
+            u_breathing,
+            u_venturi,
+            _np(draws, "u_wean"),
+            (draws.get_column("aim_position") == "above").fill_null(False).to_numpy(),
+            draws.get_column("unit").replace_strict(UNIT_TYPES, default="ward").is_in(HIGH_FLOW_UNIT_TYPES).to_numpy(),
+        )
+        moved = device != draws.get_column("device_idx").to_numpy()
+        draws = draws.with_columns(
+            # a patient moved to another device leaves the old one's airway pressure behind
+            pl.when(pl.Series(moved)).then(None).otherwise(pl.col("peep_cmh2o")).alias("peep_cmh2o"),
+            pl.Series("device_idx", device),
+            pl.Series(dev.DEVICES, dtype=pl.String).gather(device).alias("true_device"),
+            pl.Series("flow", flow).fill_nan(None),
+            pl.Series("fio2_set", fio2_set).fill_nan(None),
+        )
+
+    # 2. inspired oxygen
+    fio2_true = dev.delivered_fio2(device, flow, fio2_set, u_breathing, u_venturi)
+    fio2_charted = dev.charted_fio2(device, flow, fio2_set)
+
+    # 3-4. acid-base and oxygenation at body temperature
+    pao2_alveolar = phys.alveolar_po2_mmhg(fio2_true, paco2, pb, ph2o, rq)
     pao2 = _arterial_po2(pao2_alveolar, gradient, shunt, av_diff, hb_available, p50, t)
     target = np.where(
         np.isnan(_np(draws, "sat_target")), _np(draws, "pao2_target"), phys.hill_po2(_np(draws, "sat_target"), p50)

@@ -1,5 +1,6 @@
 """``generate()``: the demo data set as canonical records plus the ground truth of its faults;
-``generate_demo()``: the same plus the truth file of its clinical look-alikes."""
+``generate_demo()``: the same plus the truth file of its clinical look-alikes, the oxygen prescriptions
+feed and the oxygen truth of every sample."""
 
 from __future__ import annotations
 
@@ -13,8 +14,10 @@ from synthetic_data.faults import DEFAULT_FAULT_RATES, FAULT_TYPES, inject_fault
 from synthetic_data.forward_model import CANONICAL_COLUMNS, analyser_report, assemble_records, true_state
 from synthetic_data.hospital import (
     ANALYSER_SOURCE,
+    N_STAFF,
     SITE_ALTITUDE_M,
     SOURCES,
+    UNIT_TYPES,
     UNITS,
     concat_draws,
     draw_patients,
@@ -28,6 +31,8 @@ from synthetic_data.lookalikes import (
     draw_lookalikes,
     lookalike_rows,
 )
+from synthetic_data.prescribing import complete_prescriptions, draw_prescriptions, link_samples
+from synthetic_data.titration import draw_aims
 
 
 def check_rates(rates: dict[str, float], known: tuple[str, ...], what: str) -> dict[str, float]:
@@ -52,13 +57,44 @@ LOOKALIKE_SCHEMA: dict[str, pl.DataType] = {
 }
 
 
+O2_PRESCRIBED_UNCHARTED_SHARE = 0.05
+"""Share of samples whose chart does not say whether oxygen was prescribed (invented)."""
+OXYGEN_TRUTH_SCHEMA: dict[str, pl.DataType] = {
+    "sample_id": pl.String(),
+    "patient_id": pl.String(),
+    "encounter_id": pl.String(),
+    "unit": pl.String(),
+    "unit_type": pl.String(),
+    "lookalike": pl.Boolean(),
+    "adult": pl.Boolean(),
+    "arterial": pl.Boolean(),
+    "on_oxygen": pl.Boolean(),
+    "hypercapnic_risk": pl.Boolean(),
+    "prescription_id": pl.String(),
+    "prescribed_low_pct": pl.Float64(),
+    "prescribed_high_pct": pl.Float64(),
+    "titrate_basis": pl.String(),
+    "titrate_low_pct": pl.Float64(),
+    "titrate_high_pct": pl.Float64(),
+    "aim_position": pl.String(),
+    "sat_pct": pl.Float64(),
+    "pao2_mmhg": pl.Float64(),
+}
+"""Per sample, the generator's oxygen truth: who, where, on oxygen or not (the device really used), the
+prescription in force by the generator's own link, the target the staff titrated to, the aim, and the
+patient's functional arterial saturation and PaO2 at body temperature (``sat_pct``, ``pao2_mmhg``)."""
+
+
 @dataclass(frozen=True)
 class DemoData:
-    """One generated demo set: canonical records, the injected faults and the clinical look-alikes."""
+    """One generated demo set: canonical records, the injected faults, the clinical look-alikes, the oxygen
+    prescriptions feed (``prescribing.PRESCRIPTION_SCHEMA``) and the oxygen truth of each sample."""
 
     records: pl.DataFrame
     faults: pl.DataFrame
     lookalikes: pl.DataFrame
+    prescriptions: pl.DataFrame
+    oxygen: pl.DataFrame
 
 
 def source_of(sample_id: pl.Expr) -> pl.Expr:
@@ -110,8 +146,8 @@ def generate_demo(
     kinds = check_rates(
         DEFAULT_LOOKALIKE_RATES if lookalike_rates is None else lookalike_rates, LOOKALIKE_KINDS, "look-alike kinds"
     )
-    hospital_rng, weather_rng, fault_rng, lookalike_rng, analyser_rng, id_rng = (
-        np.random.default_rng(s) for s in np.random.SeedSequence(seed).spawn(6)
+    hospital_rng, weather_rng, fault_rng, lookalike_rng, analyser_rng, id_rng, rx_rng, aim_rng = (
+        np.random.default_rng(s) for s in np.random.SeedSequence(seed).spawn(8)
     )
 
     per_kind = lookalike_rows(rows, kinds)
@@ -126,12 +162,47 @@ def generate_demo(
     del ordinary, special
     n_patients = int(draws["patient_idx"].max()) + 1
     patient_ids = id_rng.choice(9_000_000, size=n_patients, replace=False) + 1_000_000
-    frame = to_frame(draws, start_date, patient_ids)
+    encounter_ids = id_rng.choice(90_000_000, size=2 * n_patients, replace=False) + 10_000_000
+    staff_ids = id_rng.choice(90_000, size=N_STAFF, replace=False) + 10_000
+    frame = to_frame(draws, start_date, patient_ids, encounter_ids, staff_ids)
     del draws
     frame = _label(frame).join(weather_by_day(weather_rng, days), on="day", how="left", maintain_order="left")
 
+    # oxygen prescriptions, the one in force at each sample, and the oxygen titrated to its target
+    prescriptions = draw_prescriptions(rx_rng, frame)
+    frame = frame.join(link_samples(frame, prescriptions), on="_row", how="left", maintain_order="left")
+    frame = draw_aims(aim_rng, frame).with_columns(
+        pl.col("rx_low").alias("target_spo2_low_pct"),
+        pl.col("rx_high").alias("target_spo2_high_pct"),
+        pl.when(pl.Series(rx_rng.random(frame.height) >= O2_PRESCRIBED_UNCHARTED_SHARE))
+        .then(pl.col("prescription_id").is_not_null())
+        .alias("o2_prescribed"),
+    )
+
     state = true_state(frame, SITE_ALTITUDE_M, analyser_rng)
     del frame
+    prescriptions = complete_prescriptions(prescriptions, state)
+    oxygen = state.select(
+        "sample_id",
+        "patient_id",
+        "encounter_id",
+        "unit",
+        pl.col("unit").replace_strict(UNIT_TYPES, default=None, return_dtype=pl.String).alias("unit_type"),
+        (pl.col("lookalike_idx") >= 0).alias("lookalike"),
+        (pl.col("age_exact") >= 18.0).alias("adult"),
+        (pl.col("sample_type") == "arterial").alias("arterial"),
+        (pl.col("true_device") != "room_air").alias("on_oxygen"),
+        "hypercapnic_risk",
+        "prescription_id",
+        pl.col("rx_low").alias("prescribed_low_pct"),
+        pl.col("rx_high").alias("prescribed_high_pct"),
+        pl.when(pl.col("titrate_low").is_not_null()).then(pl.col("titrate_basis")).alias("titrate_basis"),
+        pl.col("titrate_low").alias("titrate_low_pct"),
+        pl.col("titrate_high").alias("titrate_high_pct"),
+        "aim_position",
+        (100.0 * pl.col("sat_true")).alias("sat_pct"),
+        pl.col("pao2_true").alias("pao2_mmhg"),
+    ).cast(OXYGEN_TRUTH_SCHEMA)
     records = assemble_records(state, analyser_report(state))
     records, truth = inject_faults(fault_rng, state, records, rates)
     lookalikes = (
@@ -145,7 +216,7 @@ def generate_demo(
         )
         .cast(LOOKALIKE_SCHEMA)
     )
-    return DemoData(records.select(CANONICAL_COLUMNS), truth, lookalikes)
+    return DemoData(records.select(CANONICAL_COLUMNS), truth, lookalikes, prescriptions, oxygen)
 
 
 def generate(

@@ -70,6 +70,19 @@ ANALYSERS: tuple[str, ...] = tuple(ANALYSER_SOURCE)
 
 SAMPLE_TYPES = ("arterial", "venous", "unknown")
 """Sample-type labels the generator writes (index = ``sample_type_idx``)."""
+COLLECTION_METHODS = (
+    "arterial_puncture",
+    "arterial_line",
+    "capillary",
+    "venous_puncture",
+    "central_venous_line",
+    "unknown",
+)
+"""How the blood was drawn, as the contract's code list (index = ``collection_method_idx``)."""
+COLLECTION_METHOD_MISSING_SHARE = 0.03
+"""Share of samples whose collection method is not charted (invented)."""
+READMISSION_MIN_DAYS = 6.0
+"""A second admission needs a stay long enough for a discharge and a return (invented)."""
 
 
 @dataclass(frozen=True)
@@ -96,6 +109,14 @@ class Unit:
     severe_devices: dict[str, float]
     ventilated_paco2: bool = False
     age_range: tuple[float, float] = (18.02, 98.0)
+    unit_type: str = "ward"
+    """The kind of unit the audit compares it with (the site configuration's ``[unit_types]``)."""
+    readmission_share: float = 0.0
+    """Share of patients with a stay of at least ``READMISSION_MIN_DAYS`` admitted twice (invented)."""
+    arterial_line_share: float = 0.0
+    """Share of patients with an arterial line for their stay: their arterial samples come from it (invented)."""
+    staff: int = 20
+    """Staff who take and run blood gases on the unit (invented pool size)."""
 
 
 UNITS: tuple[Unit, ...] = (
@@ -133,6 +154,10 @@ UNITS: tuple[Unit, ...] = (
             "reservoir_mask": 0.05,
         },
         ventilated_paco2=True,
+        unit_type="critical_care",
+        readmission_share=0.03,
+        arterial_line_share=0.85,
+        staff=48,
     ),
     Unit(
         name="Kestrel Emergency Department",
@@ -161,12 +186,16 @@ UNITS: tuple[Unit, ...] = (
             "nasal_cannula": 0.10,
             "invasive_ventilation": 0.05,
         },
+        unit_type="emergency",
+        readmission_share=0.04,
+        arterial_line_share=0.03,
+        staff=36,
     ),
     Unit(
         name="Curlew Respiratory Ward",
         kind="respiratory_ward",
         sample_share=0.18,
-        samples_per_patient=4.0,
+        samples_per_patient=3.0,
         episode_days=(2.0, 42.0),
         age_mean=70,
         age_sd=11,
@@ -187,12 +216,16 @@ UNITS: tuple[Unit, ...] = (
             "nasal_cannula": 0.15,
             "simple_mask": 0.05,
         },
+        unit_type="ward",
+        readmission_share=0.18,
+        arterial_line_share=0.0,
+        staff=22,
     ),
     Unit(
         name="Plover General Medical Ward",
         kind="medical_ward",
         sample_share=0.14,
-        samples_per_patient=2.5,
+        samples_per_patient=2.0,
         episode_days=(1.0, 21.0),
         age_mean=72,
         age_sd=14,
@@ -212,12 +245,16 @@ UNITS: tuple[Unit, ...] = (
             "venturi_mask": 0.20,
             "reservoir_mask": 0.15,
         },
+        unit_type="ward",
+        readmission_share=0.1,
+        arterial_line_share=0.0,
+        staff=24,
     ),
     Unit(
         name="Sandpiper Surgical Ward",
         kind="surgical_ward",
         sample_share=0.08,
-        samples_per_patient=2.0,
+        samples_per_patient=1.6,
         episode_days=(1.0, 14.0),
         age_mean=64,
         age_sd=15,
@@ -237,6 +274,10 @@ UNITS: tuple[Unit, ...] = (
             "tracheostomy_mask": 0.15,
             "reservoir_mask": 0.20,
         },
+        unit_type="ward",
+        readmission_share=0.05,
+        arterial_line_share=0.02,
+        staff=20,
     ),
 )
 """The units whose patients make up the ordinary (non-look-alike) records, by ``sample_share``."""
@@ -261,6 +302,10 @@ CARDIAC_UNIT = Unit(
     mild_devices={"invasive_ventilation": 1.0},
     severe_devices={"invasive_ventilation": 1.0},
     ventilated_paco2=True,
+    unit_type="critical_care",
+    readmission_share=0.0,
+    arterial_line_share=1.0,
+    staff=16,
 )
 NEONATAL_UNIT = Unit(
     name="Dunlin Neonatal Unit",
@@ -282,6 +327,10 @@ NEONATAL_UNIT = Unit(
     mild_devices={"room_air": 0.40, "high_flow_nasal": 0.30, "cpap": 0.30},
     severe_devices={"cpap": 0.40, "invasive_ventilation": 0.40, "high_flow_nasal": 0.20},
     age_range=(0.0, 20.0 / 365.25),
+    unit_type="neonatal",
+    readmission_share=0.0,
+    arterial_line_share=0.6,
+    staff=18,
 )
 PAEDIATRIC_UNIT = Unit(
     name="Puffin Paediatric Ward",
@@ -303,9 +352,18 @@ PAEDIATRIC_UNIT = Unit(
     mild_devices={"room_air": 0.70, "nasal_cannula": 0.20, "simple_mask": 0.10},
     severe_devices={"nasal_cannula": 0.40, "high_flow_nasal": 0.35, "simple_mask": 0.25},
     age_range=(1.02, 15.9),
+    unit_type="paediatric",
+    readmission_share=0.04,
+    arterial_line_share=0.0,
+    staff=16,
 )
 ALL_UNITS: tuple[Unit, ...] = (*UNITS, CARDIAC_UNIT, NEONATAL_UNIT, PAEDIATRIC_UNIT)
 """Every unit of the hospital; ``unit_idx`` in the draws indexes this tuple."""
+UNIT_TYPES: dict[str, str] = {u.name: u.unit_type for u in ALL_UNITS}
+"""Unit name -> unit type: the demo site configuration's ``[unit_types]`` is written from this."""
+STAFF_OFFSET = np.cumsum([0, *(u.staff for u in ALL_UNITS)])[:-1]
+"""First staff number of each unit: staff are numbered across the hospital, unit by unit."""
+N_STAFF = sum(u.staff for u in ALL_UNITS)
 
 
 def unit_index(unit: Unit) -> int:
@@ -424,6 +482,11 @@ def draw_patients(
     lo = np.array([u.episode_days[0] for u in ALL_UNITS])[unit_idx]
     hi = np.array([u.episode_days[1] for u in ALL_UNITS])[unit_idx]
     episode = np.minimum(lo + (hi - lo) * rng.random(n_pat) ** 1.5, float(days))
+    # a patient with a long enough window and at least two samples may have been discharged and come back
+    readmitted = (
+        (rng.random(n_pat) < per_unit_value("readmission_share")) & (episode >= READMISSION_MIN_DAYS) & (counts >= 2)
+    )
+    arterial_line = rng.random(n_pat) < per_unit_value("arterial_line_share")
     episode_start = rng.random(n_pat) * np.maximum(days - episode, 0.0)
     # birth date: the (continuous) age before the episode start
     birth_ordinal = (
@@ -450,6 +513,8 @@ def draw_patients(
         "pigmented": pigmented,
         "episode_start": episode_start,
         "episode_days": episode,
+        "readmitted": readmitted,
+        "arterial_line": arterial_line,
         "n_samples": counts,
     }
     return patients, np.repeat(np.arange(n_pat, dtype=np.int64), counts)
@@ -481,8 +546,13 @@ def draw_samples(
     def per_unit_value(attr: str) -> np.ndarray:
         return np.array([getattr(u, attr) for u in ALL_UNITS], dtype=np.float64)[unit_idx]
 
-    # --- when: collection day within the episode, time of day with a morning-round bump
-    day_offset = pat("episode_start") + rng.random(n) * pat("episode_days")
+    # --- when: collection day within the episode, time of day with a morning-round bump. A readmitted
+    # patient's window holds two admissions: the first 35 % of it, a gap, and the last 35 %.
+    u_when = rng.random(n)
+    readmitted = pat("readmitted")
+    second_admission = readmitted & (u_when >= 0.5)
+    u_when = np.where(readmitted, np.where(second_admission, 0.65 + (u_when - 0.5) * 0.7, u_when * 0.7), u_when)
+    day_offset = pat("episode_start") + u_when * pat("episode_days")
     day = np.minimum(np.floor(day_offset), days - 1)
     minute_of_day = np.where(
         rng.random(n) < 0.3,
@@ -559,6 +629,20 @@ def draw_samples(
     sample_type_idx = (rng.random(n) < per_unit_value("venous_share")).astype(np.int64)  # 0 arterial, 1 venous
     sample_type_idx[rng.random(n) < 0.003] = 2  # label missing: unknown
 
+    # --- how the blood was drawn: from the patient's arterial line if there is one, else a puncture; venous
+    # samples on a unit with lines half from a central line (invented); a few methods not charted
+    method = np.where(pat("arterial_line"), 1, 0)
+    venous_method = np.where(pat("arterial_line") & (rng.random(n) < 0.5), 4, 3)
+    method = np.where(sample_type_idx == 1, venous_method, method)
+    method = np.where((sample_type_idx == 2) & (rng.random(n) < 0.5), 5, method)
+    method = np.where(rng.random(n) < COLLECTION_METHOD_MISSING_SHARE, -1, method)
+
+    # --- who took it: one of the unit's staff; a few take most of the samples (invented skew)
+    staff = np.array([u.staff for u in ALL_UNITS])[unit_idx]
+    operator_idx = STAFF_OFFSET[unit_idx] + np.minimum(np.floor(staff * rng.random(n) ** 1.6), staff - 1).astype(
+        np.int64
+    )
+
     # --- acid-base at body temperature: PaCO2 around the patient's chronic value, bicarbonate compensated
     chronic = pat("chronic_paco2")
     acute = rng.normal(0, 4.5, n) + np.where(rng.random(n) < 0.08, rng.normal(-8, 3, n), 0.0)
@@ -583,6 +667,10 @@ def draw_samples(
         "unit_idx": unit_idx,
         "analyser_idx": analyser_idx,
         "collected_min": collected_min,
+        "admission_no": second_admission.astype(np.int64),
+        "arterial_line": pat("arterial_line"),
+        "collection_method_idx": method.astype(np.int64),
+        "operator_idx": operator_idx,
         "turnaround_min": turnaround.astype(np.int64),
         "birth_ordinal": pat("birth_ordinal"),
         "age_at_start": pat("age"),
@@ -643,17 +731,36 @@ def concat_draws(parts: Sequence[Draws]) -> Draws:
     return out
 
 
-def to_frame(draws: Draws, start: date, patient_ids: npt.NDArray[np.int64]) -> pl.DataFrame:
+def to_frame(
+    draws: Draws,
+    start: date,
+    patient_ids: npt.NDArray[np.int64],
+    encounter_ids: npt.NDArray[np.int64],
+    staff_ids: npt.NDArray[np.int64],
+) -> pl.DataFrame:
     """The draws as one polars frame with the label columns spelled out and the times as datetimes.
 
-    ``patient_ids`` holds one invented 7-digit number per patient (``patient_idx``).
+    ``patient_ids`` holds one invented 7-digit number per patient (``patient_idx``), ``encounter_ids``
+    one invented 8-digit number per admission (``2 x patient_idx + admission_no``), ``staff_ids`` one
+    invented 5-digit number per member of staff (``operator_idx``).
     """
     n = draws["patient_idx"].size
     plain = {
         k: v
         for k, v in draws.items()
-        if k not in ("unit_idx", "analyser_idx", "sample_type_idx", "device_idx", "birth_ordinal", "lookalike_detail")
+        if k
+        not in (
+            "unit_idx",
+            "analyser_idx",
+            "sample_type_idx",
+            "device_idx",
+            "birth_ordinal",
+            "lookalike_detail",
+            "collection_method_idx",
+            "operator_idx",
+        )
     }
+    method = draws["collection_method_idx"]
     frame = pl.DataFrame(plain).with_columns(
         pl.Series("_row", np.arange(n, dtype=np.int64)),
         pl.Series([u.name for u in ALL_UNITS], dtype=pl.String).gather(draws["unit_idx"]).alias("unit"),
@@ -663,6 +770,12 @@ def to_frame(draws: Draws, start: date, patient_ids: npt.NDArray[np.int64]) -> p
         pl.Series("device_idx", draws["device_idx"]),
         pl.Series("lookalike_detail", draws["lookalike_detail"].tolist(), dtype=pl.String),
         pl.Series("patient_id", patient_ids[draws["patient_idx"]]).cast(pl.String).str.pad_start(7, "0"),
+        pl.Series("encounter_id", encounter_ids[2 * draws["patient_idx"] + draws["admission_no"]]).cast(pl.String),
+        pl.Series("operator_id", staff_ids[draws["operator_idx"]]).cast(pl.String),
+        pl.Series(COLLECTION_METHODS, dtype=pl.String)
+        .gather(np.maximum(method, 0))
+        .alias("collection_method")
+        .set(pl.Series(method < 0), None),
         pl.Series("birth_date", draws["birth_ordinal"] - date(1970, 1, 1).toordinal()).cast(pl.Int32).cast(pl.Date),
     )
     start_dt = datetime.combine(start, datetime.min.time())
@@ -670,6 +783,8 @@ def to_frame(draws: Draws, start: date, patient_ids: npt.NDArray[np.int64]) -> p
     birth = pl.col("birth_date")
     frame = frame.with_columns(
         pl.format("SVH{}", pl.col("patient_id")).alias("patient_id"),
+        pl.format("SVA{}", pl.col("encounter_id")).alias("encounter_id"),
+        pl.format("SVS{}", pl.col("operator_id")).alias("operator_id"),
         # NaN marks "not applicable" in the numpy draws; the record wants NULL
         pl.col("flow", "fio2_set", "peep_cmh2o", "mean_airway_pressure_cmh2o").fill_nan(None),
         collected.alias("collected_at"),

@@ -187,6 +187,10 @@ def _base(
     )
     draws = draw_samples(rng, patients, sample_patient, days, sao2_calculated_share)
     draws["sample_type_idx"][:] = 0
+    # one admission each (their samples are re-timed below), arterial blood from the line if there is one
+    draws["admission_no"][:] = 0
+    charted = draws["collection_method_idx"] >= 0
+    draws["collection_method_idx"] = np.where(charted, draws["arterial_line"].astype(np.int64), -1)
     draws["lookalike_idx"][:] = LOOKALIKE_KINDS.index(kind)
     return draws, sample_patient
 
@@ -341,8 +345,8 @@ def _hypothermia(rng: np.random.Generator, d: Draws, sp: np.ndarray, days: int) 
     on_cannula = _per_patient(rng, sp, 0.0, 1.0) < 0.4
     _device(d, ~on_cannula, "room_air", flow=0.0)
     _device(d, on_cannula, "nasal_cannula", flow=np.round(_per_patient(rng, sp, 0.5, 4.49)))
-    d["shunt"] = rng.uniform(0.003, 0.02, n)
-    d["vq_factor"] = rng.uniform(0.4, 0.9, n)
+    d["shunt"] = rng.uniform(0.003, 0.015, n)
+    d["vq_factor"] = rng.uniform(0.3, 0.7, n)
     d["paco2_true"] = np.clip(rng.normal(38.0, 3.5, n), 30.0, 46.0)
     d["hco3_true"] = np.clip(rng.normal(23.5, 1.8, n), 19.0, 28.0)
     d["lactate_true"] = np.clip(rng.lognormal(np.log(1.6), 0.35, n), 0.6, 4.5)

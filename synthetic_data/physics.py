@@ -298,3 +298,14 @@ def pulse_oximeter_reading_pct(functional_saturation: ArrayLike, cohb_pct: Array
     methb = np.asarray(methb_pct, dtype=np.float64) / 100.0
     o2hb = fractional_o2hb(functional_saturation, cohb_pct, methb_pct)
     return 100.0 * (o2hb + cohb) / (1.0 - methb)
+
+
+def functional_from_pulse_reading(reading_pct: ArrayLike, cohb_pct: ArrayLike, methb_pct: ArrayLike) -> Array:
+    """Inverse of ``pulse_oximeter_reading_pct``: the functional saturation (fraction) behind a reading.
+
+    From reading / 100 = (S (1 - COHb - MetHb) + COHb) / (1 - MetHb) (fractions):
+    S = (reading / 100 (1 - MetHb) - COHb) / (1 - COHb - MetHb).
+    """
+    cohb = np.asarray(cohb_pct, dtype=np.float64) / 100.0
+    methb = np.asarray(methb_pct, dtype=np.float64) / 100.0
+    return (np.asarray(reading_pct, dtype=np.float64) / 100.0 * (1.0 - methb) - cohb) / (1.0 - cohb - methb)

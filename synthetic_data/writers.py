@@ -66,6 +66,8 @@ DECIMALS: dict[str, dict[str, int]] = {
     "cl_mmol_l": {"mmol/L": 0},
     "mean_airway_pressure_cmh2o": {"cmH2O": 0},
     "peep_cmh2o": {"cmH2O": 0},
+    "target_spo2_low_pct": {"percent": 0, "fraction": 2},
+    "target_spo2_high_pct": {"percent": 0, "fraction": 2},
 }
 CONVERTED = (
     "paco2_mmhg",
@@ -80,6 +82,8 @@ CONVERTED = (
     "glucose_mmol_l",
     "cohb_pct",
     "methb_pct",
+    "target_spo2_low_pct",
+    "target_spo2_high_pct",
 )
 BATCH_ROWS = 250_000
 """Rows turned into text at a time when one large file is written."""
@@ -90,19 +94,19 @@ def profile_path(source: str, profiles_dir: Path = PROFILES_DIR) -> Path:
     return profiles_dir / PROFILE_FILES[source]
 
 
-def export_codes(path: Path) -> tuple[dict[str, str], dict[str, str]]:
-    """Canonical -> export code for sample types and devices, in the TOML file's own spelling.
+def export_codes(path: Path) -> dict[str, dict[str, str]]:
+    """Per code field (``[codes.<field>]``): canonical -> export code, in the TOML file's own spelling.
 
     Where a profile lists several codes for one canonical value, the first is written.
     """
     raw = tomllib.loads(path.read_text(encoding="utf-8")).get("codes", {})
-    out: list[dict[str, str]] = []
-    for table in ("sample_type", "o2_device"):
+    out: dict[str, dict[str, str]] = {}
+    for table, codes in raw.items():
         reverse: dict[str, str] = {}
-        for code, canonical in raw.get(table, {}).items():
+        for code, canonical in codes.items():
             reverse.setdefault(str(canonical), str(code))
-        out.append(reverse)
-    return out[0], out[1]
+        out[str(table)] = reverse
+    return out
 
 
 HB_MMOL_L_PER_G_DL = 0.6206
@@ -116,6 +120,7 @@ _FACTORS: dict[str, dict[str, float]] = {
     "haemoglobin": {"g/dL": 1.0, "g/L": 10.0, "mmol/L": HB_MMOL_L_PER_G_DL},
     "lactate": {"mmol/L": 1.0, "mg/dL": phys.LACTATE_MG_DL_PER_MMOL_L},
     "glucose": {"mmol/L": 1.0, "mg/dL": phys.GLUCOSE_MG_DL_PER_MMOL_L},
+    "flow": {"L/min": 1.0},
 }
 
 
@@ -189,7 +194,7 @@ def _number_text(expr: pl.Expr, decimals: int, decimal_mark: str) -> pl.Expr:
 
 def _csv_cells(truth: pl.DataFrame, profile: Profile, path: Path) -> list[pl.Expr]:
     """Expressions giving every cell as the export's text, named with the export's own column names."""
-    sample_codes, device_codes = export_codes(path)
+    codes = export_codes(path)
     yes, no = BOOLEAN_TEXT.get(profile.name, ("1", "0"))
     texts = truth.filter(pl.col("fault_type") == "text_result").select("sample_id", "field", "cell_text")
     cells: list[pl.Expr] = []
@@ -210,10 +215,8 @@ def _csv_cells(truth: pl.DataFrame, profile: Profile, path: Path) -> list[pl.Exp
             cell = col.dt.strftime(profile.date_format)
         elif spec.kind is Kind.BOOLEAN:
             cell = pl.when(col).then(pl.lit(yes)).when(~col).then(pl.lit(no))
-        elif name == "sample_type":
-            cell = col.replace_strict(sample_codes, default=None, return_dtype=pl.String)
-        elif name == "o2_device":
-            cell = col.replace_strict(device_codes, default=None, return_dtype=pl.String)
+        elif spec.kind is Kind.CODE:
+            cell = col.replace_strict(codes.get(name, {}), default=None, return_dtype=pl.String)
         else:
             cell = col.cast(pl.String)
         field_texts = texts.filter(pl.col("field") == name)
@@ -280,6 +283,90 @@ def _write_source(
     return written
 
 
+PRESCRIPTIONS_PROFILE = "demo_prescriptions.toml"
+PRESCRIPTION_DECIMALS: dict[str, dict[str, int]] = {
+    "target_spo2_low_pct": DECIMALS["target_spo2_low_pct"],
+    "target_spo2_high_pct": DECIMALS["target_spo2_high_pct"],
+    "o2_flow_l_min": {"L/min": 0},
+    "fio2": {"fraction": 2, "percent": 0},
+}
+END_BEFORE_START_WRITTEN = pl.duration(hours=6)
+"""How far before its start an order with the export fault ``end_before_start`` is written to end."""
+
+
+def _prescription_rows(prescriptions: pl.DataFrame, timezone: str) -> pl.DataFrame:
+    """Rows as the weekly extract sends them: each in the file of the week (Monday, local time) it started;
+    an amended order first without its end time, then again, with it, in the file of the week it ended (at
+    least the week after); the export faults written as the truth says."""
+    local_monday = (
+        pl.col("start_at").dt.replace_time_zone("UTC").dt.convert_time_zone(timezone).dt.date().dt.truncate("1w")
+    )
+    rows = prescriptions.with_columns(
+        local_monday.alias("_week"),
+        pl.when(pl.col("export_fault") == "target_range_invalid")
+        .then(pl.col("target_spo2_high_pct"))
+        .otherwise(pl.col("target_spo2_low_pct"))
+        .alias("target_spo2_low_pct"),
+        pl.when(pl.col("export_fault") == "target_range_invalid")
+        .then(pl.col("target_spo2_low_pct"))
+        .otherwise(pl.col("target_spo2_high_pct"))
+        .alias("target_spo2_high_pct"),
+        pl.when(pl.col("export_fault") == "end_before_start")
+        .then(pl.col("start_at") - END_BEFORE_START_WRITTEN)
+        .when(pl.col("amended"))
+        .then(None)
+        .otherwise(pl.col("end_at"))
+        .alias("end_at"),
+    )
+    end_monday = pl.col("end_at").dt.replace_time_zone("UTC").dt.convert_time_zone(timezone).dt.date().dt.truncate("1w")
+    amended = prescriptions.filter(pl.col("amended")).with_columns(
+        pl.max_horizontal(end_monday, local_monday + pl.duration(weeks=1)).alias("_week")
+    )
+    return pl.concat([rows, amended.select(rows.columns)]).sort(
+        "_week", "start_at", "prescription_id", maintain_order=True
+    )
+
+
+def write_prescriptions(prescriptions: pl.DataFrame, out_dir: Path, profiles_dir: Path = PROFILES_DIR) -> list[Path]:
+    """The oxygen prescriptions feed as weekly CSV extracts in ``OUT/prescriptions/`` (profile
+    ``demo_prescriptions.toml``): values in the profile's units, times in its zone and format, devices in
+    its codes."""
+    path = profiles_dir / PRESCRIPTIONS_PROFILE
+    profile = load_profile(path)
+    rows = _prescription_rows(prescriptions, profile.timezone)
+    rows = rows.with_columns(
+        to_unit(pl.col(name), name, profile.unit_of(name)).alias(name)
+        for name in PRESCRIPTION_DECIMALS
+        if name in profile.columns
+    )
+    codes = export_codes(path)
+    cells: list[pl.Expr] = []
+    for name, header in profile.columns.items():
+        col = pl.col(name)
+        if name in PRESCRIPTION_DECIMALS:
+            cell = _number_text(col, PRESCRIPTION_DECIMALS[name][profile.unit_of(name)], profile.decimal_mark)
+        elif name in ("start_at", "end_at"):
+            cell = (
+                col.dt.replace_time_zone("UTC")
+                .dt.convert_time_zone(profile.timezone)
+                .dt.strftime(profile.datetime_format)
+            )
+        elif name == "o2_device":
+            cell = col.replace_strict(codes.get(name, {}), default=None, return_dtype=pl.String)
+        else:
+            cell = col.cast(pl.String)
+        cells.append(cell.alias(header))
+    folder = out_dir / "prescriptions"
+    folder.mkdir(parents=True, exist_ok=True)
+    written: list[Path] = []
+    for (week,), part in sorted(rows.partition_by("_week", as_dict=True).items()):
+        target = folder / f"prescriptions_{week.isoformat()}.csv"
+        with target.open("wb") as out:
+            _write_csv(part.select(cells), out, profile, header=True)
+        written.append(target)
+    return written
+
+
 README = """Demo blood gas exports - invented data
 =====================================
 
@@ -300,6 +387,17 @@ lookalikes.parquet / .csv
               one row per sample of a clinical look-alike - a real (invented) patient whose
               physiology looks odd but is not an error, and which carries no fault:
               sample_id, lookalike_kind, detail. Records in neither file are clean.
+prescriptions/prescriptions_YYYY-MM-DD.csv
+              the oxygen prescriptions feed, one file per week of order start
+              (profiles/demo_prescriptions.toml); an amended order is sent again in a later week.
+prescriptions_truth.parquet / .csv
+              every prescription with its final values (UTC) and what the generator did:
+              encounter_kind (single, changed_target, ends_before_later_sample),
+              order_in_encounter, export_fault (target_range_invalid, end_before_start: the
+              loader should quarantine these rows), amended.
+oxygen_truth.parquet
+              per sample: the prescription in force by the generator's own link, the target the
+              staff titrated oxygen to, where they aimed, and the true arterial saturation.
 
 Files are named by the local date on which results were produced. A duplicate or a corrected
 re-send appears again in a later file. Times in the CSV files are local wall-clock times, as
@@ -316,9 +414,13 @@ def write_exports(
     profiles_dir: Path = PROFILES_DIR,
     provenance: dict[str, object] | None = None,
     lookalikes: pl.DataFrame | None = None,
+    prescriptions: pl.DataFrame | None = None,
+    oxygen: pl.DataFrame | None = None,
 ) -> dict[str, list[Path]]:
     """Write every source's export files, the ground truth of faults, the look-alikes and a README;
-    return the files per source. ``lookalikes`` None writes an empty look-alike file."""
+    return the files per source. ``lookalikes`` None writes an empty look-alike file; ``prescriptions``
+    (``prescribing.PRESCRIPTION_SCHEMA``) adds the prescriptions feed (key ``prescriptions``) and its
+    truth, ``oxygen`` the per-sample oxygen truth."""
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
     with_source = canonical.with_columns(source_of(pl.col("sample_id")).alias("_source"))
@@ -338,6 +440,13 @@ def write_exports(
         "with a fault": ground_truth.height,
         "look-alikes": lookalikes.height,
     }
+    if prescriptions is not None:
+        written["prescriptions"] = write_prescriptions(prescriptions, out_dir, profiles_dir)
+        prescriptions.write_parquet(out_dir / "prescriptions_truth.parquet")
+        prescriptions.write_csv(out_dir / "prescriptions_truth.csv")
+        info["prescriptions"] = prescriptions.height
+    if oxygen is not None:
+        oxygen.write_parquet(out_dir / "oxygen_truth.parquet")
     info.update(provenance or {})
     generated = ", ".join(f"{key} {value}" for key, value in info.items())
     (out_dir / "README.txt").write_text(README.format(site=SITE_NAME, generated=generated), encoding="utf-8")

@@ -18,8 +18,9 @@ import csv
 import math
 import re
 import tomllib
-from datetime import date, timedelta
+from datetime import date, datetime, timedelta
 from pathlib import Path
+from zoneinfo import ZoneInfo
 
 import numpy as np
 import pint
@@ -28,7 +29,11 @@ import pytest
 from ambiance import Atmosphere
 from fluids.atmosphere import ATMOSPHERE_1976
 from iapws import IAPWS97
+from scipy.stats import binomtest
 
+from pipeline.config import load_config
+from pipeline.demo import prepare_demo
+from pipeline.log import Log
 from pipeline.profile import load_profile
 from pipeline.schema import FIELDS, OXYGEN_DEVICES, SAMPLE_TYPES
 from synthetic_data import (
@@ -45,7 +50,18 @@ from synthetic_data import devices as dev
 from synthetic_data import physics as phys
 from synthetic_data.__main__ import main
 from synthetic_data.evidence import evidence
-from synthetic_data.generator import source_of
+from synthetic_data.generator import O2_PRESCRIBED_UNCHARTED_SHARE, source_of
+from synthetic_data.hospital import COLLECTION_METHOD_MISSING_SHARE, COLLECTION_METHODS, UNIT_TYPES
+from synthetic_data.prescribing import (
+    CHANGED_TARGET_SHARE,
+    ENDS_EARLY_SHARE,
+    FIRST_LEFT_OPEN_SHARE,
+    LOW_TARGET_WITHOUT_RISK_SHARE,
+    NO_PRESCRIPTION_SHARE,
+    NO_TARGET_SHARE,
+    OPEN_ENDED_SHARE,
+    RISK_PRESCRIBED_HIGH_SHARE,
+)
 from synthetic_data.writers import PROFILES_DIR, export_codes, to_unit, write_exports
 
 ROWS = 12_000
@@ -916,7 +932,14 @@ def test_scaled_fault_rates_keep_the_mix() -> None:
 def exported(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, DemoData]:
     data = generate_demo(6_000, SEED, START, 20, RATES)
     out = tmp_path_factory.mktemp("exports")
-    write_exports(data.records, data.faults, out, lookalikes=data.lookalikes)
+    write_exports(
+        data.records,
+        data.faults,
+        out,
+        lookalikes=data.lookalikes,
+        prescriptions=data.prescriptions,
+        oxygen=data.oxygen,
+    )
     return out, data
 
 
@@ -1002,14 +1025,18 @@ def test_exported_values_convert_back_to_the_record(exported: tuple[Path, DemoDa
 
 
 def test_codes_are_written_in_the_profiles_own_spelling() -> None:
-    for name in ("demo_us_style", "demo_eu_style"):
+    for name in ("demo_us_style", "demo_eu_style", "demo_parquet", "demo_prescriptions"):
         path = PROFILES_DIR / f"{name}.toml"
-        sample_codes, device_codes = export_codes(path)
+        codes = export_codes(path)
         raw = tomllib.loads(path.read_text(encoding="utf-8"))["codes"]
-        assert all(code in raw["sample_type"] for code in sample_codes.values())
-        assert all(code in raw["o2_device"] for code in device_codes.values())
-        assert "other" in device_codes  # the bypass circuit's oxygenator is charted as "other"
-    assert export_codes(PROFILES_DIR / "demo_us_style.toml")[0]["arterial"] == "ART"  # the first listed
+        assert set(codes) == set(raw)
+        for table, reverse in codes.items():
+            assert all(code in raw[table] for code in reverse.values())
+        assert "other" in codes["o2_device"]  # the bypass circuit's oxygenator is charted as "other"
+        if name != "demo_prescriptions":
+            # every collection method the generator draws has a code in each sample export
+            assert set(COLLECTION_METHODS) <= set(codes["collection_method"]), name
+    assert export_codes(PROFILES_DIR / "demo_us_style.toml")["sample_type"]["arterial"] == "ART"  # the first listed
 
 
 def test_truth_files_are_written_beside_the_exports(exported: tuple[Path, DemoData]) -> None:
@@ -1108,6 +1135,275 @@ def test_single_file_layout(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> 
     assert len(rows) == eu.height + resent.join(eu, on="sample_id", how="semi").height
     assert header[0] == "Probennummer" and all(row[0] != "Probennummer" for row in rows)  # one header
     assert pl.read_parquet(tmp_path / "lookalikes.parquet").height == 0  # none given: an empty file
+
+
+# --- encounters, prescriptions and oxygen titration --------------------------------------------------------
+
+
+def consistent_with_rate(hits: int, trials: int, rate: float) -> bool:
+    """The count is what the stated rate gives, by the exact binomial test (scipy), at the 0.1 % level."""
+    return trials > 0 and binomtest(hits, trials, rate).pvalue > 0.001
+
+
+def test_every_sample_has_an_encounter_and_icu_patients_are_sampled_most(nofault: DemoData) -> None:
+    records = nofault.records
+    assert records["encounter_id"].null_count() == 0
+    assert records["encounter_id"].str.contains(r"^SVA\d{8}$").all()
+    per_encounter = records.group_by("encounter_id").agg(
+        pl.col("patient_id").n_unique().alias("patients"),
+        pl.col("unit").n_unique().alias("units"),
+        pl.col("unit").first(),
+        pl.len().alias("n"),
+        pl.col("collected_at").min().alias("first"),
+        pl.col("collected_at").max().alias("last"),
+        pl.col("patient_id").first(),
+    )
+    assert (per_encounter["patients"] == 1).all()  # an admission belongs to one patient
+    assert (per_encounter["units"] == 1).all()
+    median = dict(per_encounter.group_by("unit").agg(pl.col("n").median()).iter_rows())
+    assert median["Heron ICU"] >= 5  # intensive care: many samples per admission
+    for ward in ("Plover General Medical Ward", "Sandpiper Surgical Ward", "Kestrel Emergency Department"):
+        assert median[ward] <= 2  # wards and the emergency department: once or twice
+    # some patients come back: two admissions, the second after the first is over
+    twice = per_encounter.filter(pl.len().over("patient_id") == 2).sort("patient_id", "first")
+    assert twice.height >= 2 * 20
+    pairs = twice.group_by("patient_id", maintain_order=True).agg(pl.col("first"), pl.col("last"))
+    assert all(last[0] < first[1] for first, last in zip(pairs["first"], pairs["last"], strict=True))
+
+
+def test_collection_method_and_operator_are_charted(nofault: DemoData) -> None:
+    records = nofault.records
+    methods = records["collection_method"]
+    assert set(methods.drop_nulls().unique()) <= set(COLLECTION_METHODS)
+    assert consistent_with_rate(methods.null_count(), records.height, COLLECTION_METHOD_MISSING_SHARE)
+    by_unit = dict(records.group_by("unit").agg((pl.col("collection_method") == "arterial_line").mean()).iter_rows())
+    assert by_unit["Heron ICU"] > 0.6 and by_unit["Avocet Cardiac Theatre and Recovery"] > 0.9
+    assert by_unit["Curlew Respiratory Ward"] == 0.0 and by_unit["Plover General Medical Ward"] == 0.0
+    venous = records.filter(pl.col("sample_type") == "venous")
+    assert venous["collection_method"].drop_nulls().is_in(["venous_puncture", "central_venous_line"]).all()
+    assert records["operator_id"].str.contains(r"^SVS\d{5}$").all()
+    staff_units = records.group_by("operator_id").agg(pl.col("unit").n_unique())
+    assert (staff_units["unit"] == 1).all()  # each member of staff works on one unit
+    # a few staff take many samples, as on a real unit
+    icu = records.filter(pl.col("unit") == "Heron ICU")["operator_id"].value_counts()["count"]
+    assert icu.max() > 3 * icu.median()  # type: ignore[operator]
+
+
+def test_unit_types_cover_every_unit_and_children_are_on_the_paediatric_unit(nofault: DemoData) -> None:
+    assert set(nofault.records["unit"].unique()) <= set(UNIT_TYPES)
+    assert set(UNIT_TYPES.values()) == {"critical_care", "emergency", "ward", "paediatric", "neonatal"}
+    ages = nofault.records.group_by("unit").agg(pl.col("age_years").max().alias("oldest"))
+    oldest = dict(ages.iter_rows())
+    for unit, kind in UNIT_TYPES.items():
+        if kind == "paediatric":
+            assert oldest[unit] < 16
+        elif kind == "neonatal":
+            assert oldest[unit] < 1
+
+
+def test_the_prescription_in_force_follows_the_stated_rule(nofault: DemoData) -> None:
+    # the rule written out by hand (hand-checked on 400 samples): same encounter, started at or before the
+    # sample, not yet ended; of several the latest start
+    orders: dict[str, list[dict]] = {}
+    for row in nofault.prescriptions.iter_rows(named=True):
+        orders.setdefault(row["encounter_id"], []).append(row)
+    sample = nofault.records.select("sample_id", "encounter_id", "collected_at").sample(400, seed=3)
+    linked = dict(nofault.oxygen.select("sample_id", "prescription_id").iter_rows())
+    for sample_id, encounter_id, collected in sample.iter_rows():
+        live = [
+            o
+            for o in orders.get(encounter_id, [])
+            if o["start_at"] <= collected and (o["end_at"] is None or collected < o["end_at"])
+        ]
+        expected = max(live, key=lambda o: (o["start_at"], o["prescription_id"]))["prescription_id"] if live else None
+        assert linked[sample_id] == expected, sample_id
+    # the sample's own chart carries the order in force: its target range, and "prescribed"
+    charted = nofault.records.join(nofault.oxygen, on="sample_id")
+    with_rx = charted.filter(pl.col("prescription_id").is_not_null())
+    assert (with_rx["target_spo2_low_pct"].fill_null(-1) == with_rx["prescribed_low_pct"].fill_null(-1)).all()
+    assert with_rx["o2_prescribed"].drop_nulls().all()
+    assert not charted.filter(pl.col("prescription_id").is_null())["o2_prescribed"].drop_nulls().any()
+    assert consistent_with_rate(charted["o2_prescribed"].null_count(), charted.height, O2_PRESCRIBED_UNCHARTED_SHARE)
+
+
+def test_the_prescriptions_feed_has_each_gap_at_its_stated_rate(nofault: DemoData) -> None:
+    rx = nofault.prescriptions
+    oxygen = nofault.oxygen
+    assert rx["prescription_id"].n_unique() == rx.height
+    assert (rx["end_at"].is_null() | (rx["end_at"] > rx["start_at"])).all()  # final values are valid
+    # admissions on oxygen without any prescription, per unit type
+    admissions = oxygen.group_by("encounter_id").agg(pl.col("on_oxygen").any(), pl.col("unit_type").first())
+    admissions = admissions.filter(pl.col("on_oxygen")).join(
+        rx.select("encounter_id").unique().with_columns(pl.lit(True).alias("prescribed")), on="encounter_id", how="left"
+    )
+    for unit_type, rate in NO_PRESCRIPTION_SHARE.items():
+        group = admissions.filter(pl.col("unit_type") == unit_type)
+        none = int(group["prescribed"].is_null().sum())
+        assert consistent_with_rate(none, group.height, rate), (unit_type, none, group.height)
+    assert admissions.filter(pl.col("unit_type") == "ward")["prescribed"].is_null().sum() > 30
+    # no target range on the (first) order
+    firsts = rx.filter(pl.col("order_in_encounter") == 1)
+    assert consistent_with_rate(int(firsts["target_spo2_low_pct"].is_null().sum()), firsts.height, NO_TARGET_SHARE)
+    # admissions with two or more samples: an order ended before a later sample, or a changed target
+    sizes = oxygen.group_by("encounter_id").agg(pl.len().alias("n"))
+    several = firsts.join(sizes, on="encounter_id").filter(pl.col("n") >= 2)
+    kinds = several["encounter_kind"].value_counts()
+    count = dict(zip(kinds["encounter_kind"], kinds["count"], strict=True))
+    assert consistent_with_rate(count["changed_target"], several.height, CHANGED_TARGET_SHARE)
+    assert consistent_with_rate(count["ends_before_later_sample"], several.height, ENDS_EARLY_SHARE)
+    # ... and the data show it: a later sample has no order in force; the two orders overlap with other targets
+    early = firsts.filter(pl.col("encounter_kind") == "ends_before_later_sample").select("encounter_id", "end_at")
+    after = oxygen.join(nofault.records.select("sample_id", "collected_at"), on="sample_id").join(
+        early, on="encounter_id"
+    )
+    uncovered = (
+        after.filter(pl.col("collected_at") >= pl.col("end_at"))
+        .group_by("encounter_id")
+        .agg(pl.col("prescription_id").is_null().all())
+    )
+    assert uncovered.height == early.height and uncovered["prescription_id"].all()
+    pairs = rx.filter(pl.col("encounter_kind") == "changed_target").sort("encounter_id", "order_in_encounter")
+    first, second = (pairs.filter(pl.col("order_in_encounter") == k) for k in (1, 2))
+    assert first.height == second.height == count["changed_target"]
+    assert (first["end_at"].is_null() | (first["end_at"] > second["start_at"])).all()  # overlapping
+    assert second["target_spo2_low_pct"].null_count() == 0
+    assert (first["target_spo2_low_pct"].fill_null(0) != second["target_spo2_low_pct"]).all()
+    assert consistent_with_rate(int(first["end_at"].is_null().sum()), first.height, FIRST_LEFT_OPEN_SHARE)
+    # open-ended last orders
+    last = rx.filter(pl.col("order_in_encounter") == pl.col("order_in_encounter").max().over("encounter_id"))
+    last = last.filter(pl.col("encounter_kind") != "ends_before_later_sample")
+    assert consistent_with_rate(int(last["end_at"].is_null().sum()), last.height, OPEN_ENDED_SHARE)
+    # targets against the documented risk (first orders of adults with a target)
+    adult = firsts.filter(
+        pl.col("target_spo2_low_pct").is_not_null()
+        & pl.col("unit").replace_strict(UNIT_TYPES).is_in(["critical_care", "emergency", "ward"])
+    )
+    risk = adult.filter(pl.col("hypercapnic_risk"))
+    assert consistent_with_rate(int((risk["target_spo2_low_pct"] == 94).sum()), risk.height, RISK_PRESCRIBED_HIGH_SHARE)
+    assert (risk["target_spo2_low_pct"].is_in([88.0, 94.0])).all()
+    no_risk = adult.filter(~pl.col("hypercapnic_risk"))
+    assert consistent_with_rate(
+        int((no_risk["target_spo2_low_pct"] == 88).sum()), no_risk.height, LOW_TARGET_WITHOUT_RISK_SHARE
+    )
+    # export faults the loader must quarantine, and amended re-sends
+    faults = dict(rx["export_fault"].drop_nulls().value_counts().iter_rows())
+    assert faults.get("target_range_invalid", 0) >= 5 and faults.get("end_before_start", 0) >= 5
+    assert rx["amended"].sum() >= 10
+
+
+def test_oxygen_titrated_to_the_target_gives_realistic_shares(nofault: DemoData) -> None:
+    # Generator truth (its own physics): the patient's functional arterial saturation at body temperature
+    # against the target in force (prescribed, else 88-92 % with documented hypercapnic risk, else 94-98 %;
+    # BTS 2017, from memory). Prescribing audits commonly find substantial over-oxygenation, but not most
+    # patients above target (ranges of the product brief: above 25-45 %, within 45-65 %, below 5-15 % of adult
+    # arterial samples on supplemental oxygen; hypoxaemia 5-15 % of adult arterial samples; common practice)
+    truth = nofault.oxygen.with_columns(
+        pl.coalesce("prescribed_low_pct", pl.when(pl.col("hypercapnic_risk")).then(88.0).otherwise(94.0)).alias("low"),
+        pl.coalesce("prescribed_high_pct", pl.when(pl.col("hypercapnic_risk")).then(92.0).otherwise(98.0)).alias(
+            "high"
+        ),
+    )
+    on_oxygen = truth.filter(pl.col("adult") & pl.col("arterial") & pl.col("on_oxygen"))
+    assert on_oxygen.height > 4000
+    above = (on_oxygen["sat_pct"] > on_oxygen["high"]).mean()
+    below = (on_oxygen["sat_pct"] < on_oxygen["low"]).mean()
+    within = 1.0 - above - below  # type: ignore[operator]
+    assert 0.25 <= above <= 0.45, above  # type: ignore[operator]
+    assert 0.45 <= within <= 0.65, within
+    assert 0.05 <= below <= 0.15, below  # type: ignore[operator]
+    # hypoxaemia: below the target and PaO2 < 60 mmHg (8 kPa) or saturation < 90 % (common practice)
+    arterial = truth.filter(pl.col("adult") & pl.col("arterial"))
+    hypoxaemic = (pl.col("sat_pct") < pl.col("low")) & ((pl.col("pao2_mmhg") < 60) | (pl.col("sat_pct") < 90))
+    assert 0.05 <= arterial.select(hypoxaemic.mean()).item() <= 0.15
+    # the staff's aim shows through: most samples aimed within land within, most aimed above land above
+    titrated = on_oxygen.filter(pl.col("aim_position").is_not_null()).with_columns(
+        pl.when(pl.col("sat_pct") > pl.col("titrate_high_pct"))
+        .then(pl.lit("above"))
+        .when(pl.col("sat_pct") < pl.col("titrate_low_pct"))
+        .then(pl.lit("below"))
+        .otherwise(pl.lit("within"))
+        .alias("landed")
+    )
+    hit = titrated.group_by("aim_position").agg((pl.col("landed") == pl.col("aim_position")).mean())
+    hits = dict(hit.iter_rows())
+    assert hits["within"] > 0.6 and hits["above"] > 0.6
+    # unprescribed oxygen is left high more often than prescribed (AIM_MIX)
+    basis = titrated.group_by("titrate_basis").agg((pl.col("landed") == "above").mean())
+    share = dict(basis.iter_rows())
+    assert share["habit"] > share["prescribed"]
+    # what the analyser reports agrees: the co-oximeter's functional saturation (FO2Hb / (1 - COHb - MetHb),
+    # domain-methods.md 5) of measured adult arterial samples on oxygen, against the same targets
+    measured = (
+        nofault.records.filter(~pl.col("sao2_is_calculated"))
+        .join(on_oxygen.select("sample_id", "low", "high"), on="sample_id")
+        .with_columns(functional_sao2(nofault.records).alias("func"))
+    )
+    assert measured.height > 3000
+    assert 0.2 <= (measured["func"] > measured["high"]).mean() <= 0.5  # type: ignore[operator]
+
+
+def test_prescriptions_csv_reads_back_to_the_truth(exported: tuple[Path, DemoData]) -> None:
+    out, data = exported
+    profile = load_profile(PROFILES_DIR / "demo_prescriptions.toml")
+    assert profile.kind == "prescriptions"
+    files = sorted((out / "prescriptions").glob("prescriptions_*.csv"))
+    assert files and all(re.fullmatch(r"prescriptions_\d{4}-\d{2}-\d{2}\.csv", f.name) for f in files)
+    zone = ZoneInfo(profile.timezone)
+    seen: dict[str, list[dict[str, str]]] = {}
+    for order, path in enumerate(files):
+        header, rows = read_csv_rows(path, "demo_prescriptions")
+        assert header == list(profile.columns.values())
+        for row in rows:
+            cells = dict(zip(profile.columns, row, strict=True))
+            cells["_file"] = str(order)
+            seen.setdefault(cells["prescription_id"], []).append(cells)
+    truth = {row["prescription_id"]: row for row in data.prescriptions.iter_rows(named=True)}
+    assert set(seen) == set(truth)
+    device_codes = {v: k for k, v in profile.device_codes.items()}
+    del device_codes
+
+    def utc(text: str) -> datetime | None:
+        if not text:
+            return None
+        local = datetime.strptime(text, profile.datetime_format).replace(tzinfo=zone)
+        return local.astimezone(ZoneInfo("UTC")).replace(tzinfo=None)
+
+    checked = 0
+    for rx_id, copies in seen.items():
+        expected = truth[rx_id]
+        last = copies[-1]
+        if expected["amended"]:
+            # first sent still open, then again with its end time in a later weekly file
+            assert len(copies) == 2 and copies[0]["end_at"] == "" and int(copies[0]["_file"]) < int(last["_file"])
+        else:
+            assert len(copies) == 1
+        low = float(last["target_spo2_low_pct"]) if last["target_spo2_low_pct"] else None
+        high = float(last["target_spo2_high_pct"]) if last["target_spo2_high_pct"] else None
+        if expected["export_fault"] == "target_range_invalid":
+            assert low is not None and high is not None and low > high
+            continue
+        if expected["export_fault"] == "end_before_start":
+            assert utc(last["end_at"]) < utc(last["start_at"])  # type: ignore[operator]
+            continue
+        assert (low, high) == (expected["target_spo2_low_pct"], expected["target_spo2_high_pct"])
+        assert utc(last["start_at"]) == expected["start_at"] and utc(last["end_at"]) == expected["end_at"]
+        assert last["patient_id"] == expected["patient_id"] and last["encounter_id"] == expected["encounter_id"]
+        if expected["fio2"] is not None:
+            assert float(last["fio2"]) == pytest.approx(100 * expected["fio2"], abs=0.5)  # percent in the file
+        device = profile.device_codes.get(last["o2_device"].casefold()) if last["o2_device"] else None
+        assert device == expected["o2_device"]
+        checked += 1
+    assert checked > 0.9 * len(truth)
+    assert pl.read_parquet(out / "prescriptions_truth.parquet").equals(data.prescriptions)
+    assert pl.read_parquet(out / "oxygen_truth.parquet").equals(data.oxygen)
+
+
+def test_the_demo_site_configuration_types_every_unit_and_reads_the_prescriptions(tmp_path: Path) -> None:
+    config = load_config(prepare_demo(tmp_path, rows=400, seed=2, log=Log(quiet=True)))
+    assert config.unit_types == UNIT_TYPES
+    assert config.internal_small_cell_threshold == 5
+    (feed,) = [i for i in config.inputs if i.kind == "prescriptions"]
+    assert feed.profile.kind == "prescriptions" and feed.files()
 
 
 # --- command line ------------------------------------------------------------------------------------
