@@ -6,6 +6,7 @@ patient is in it.
 
 from __future__ import annotations
 
+import json
 import os
 import shutil
 from pathlib import Path
@@ -30,6 +31,7 @@ folder = "output"
 [privacy]
 key_file = "secrets/pseudonym.key"   # outside the store folder, as for a real site
 small_cell_threshold = 11
+internal_small_cell_threshold = 5  # the hospital's own meetings see smaller cells (output/internal/)
 
 [audit]
 period = "week"                 # two months of demo data: weekly points fill the control charts
@@ -48,13 +50,23 @@ pattern = "*.csv"
 path = "exports/parquet"
 profile = "{profiles}/demo_parquet.toml"
 pattern = "*.parquet"
+
+[[inputs]]
+kind = "prescriptions"
+path = "exports/prescriptions"
+profile = "{profiles}/demo_prescriptions.toml"
+pattern = "*.csv"
+
+# Each unit's type, from the demo generator's unit table (synthetic_data.hospital.UNIT_TYPES).
+[unit_types]
+{unit_types}
 """
 
 
 def prepare_demo(workdir: Path, *, rows: int, seed: int, log: Log) -> Path:
     """Generate the demo exports (once per rows/seed) and write the site configuration; return its path."""
     from synthetic_data import GENERATOR_VERSION, generate_demo
-    from synthetic_data.hospital import SITE_ALTITUDE_M
+    from synthetic_data.hospital import SITE_ALTITUDE_M, UNIT_TYPES
     from synthetic_data.writers import write_exports
 
     workdir.mkdir(parents=True, exist_ok=True)
@@ -70,7 +82,13 @@ def prepare_demo(workdir: Path, *, rows: int, seed: int, log: Log) -> Path:
         log.info(f"generating {rows} invented samples (seed {seed}) into {exports}")
         demo = generate_demo(rows, seed)
         write_exports(
-            demo.records, demo.faults, exports, provenance={"rows": rows, "seed": seed}, lookalikes=demo.lookalikes
+            demo.records,
+            demo.faults,
+            exports,
+            provenance={"rows": rows, "seed": seed},
+            lookalikes=demo.lookalikes,
+            prescriptions=demo.prescriptions,
+            oxygen=demo.oxygen,
         )
         marker.touch()
     else:
@@ -80,6 +98,7 @@ def prepare_demo(workdir: Path, *, rows: int, seed: int, log: Log) -> Path:
         SITE_TEMPLATE.format(
             altitude_m=SITE_ALTITUDE_M,
             profiles=Path(os.path.relpath(PROFILES_DIR, workdir.resolve())).as_posix(),
+            unit_types="\n".join(f"{json.dumps(unit)} = {json.dumps(kind)}" for unit, kind in UNIT_TYPES.items()),
         ),
         encoding="utf-8",
     )
