@@ -20,6 +20,7 @@ import duckdb
 import polars as pl
 import pytest
 from click.testing import CliRunner
+from statsmodels.stats.proportion import proportion_confint
 
 from pipeline.audit import PUBLISHED_TABLES, RESTRICTED_TABLES
 from pipeline.log import Log
@@ -187,13 +188,14 @@ def test_report_is_self_contained(site):
     assert not re.search(r"""(?:src|href)\s*=\s*["']?\s*(?:https?:)?//""", html, re.I)
     assert not re.search(r"url\(\s*['\"]?\s*(?:https?:)?//", html, re.I)
     assert not re.search(r"<script|<link|<iframe|<img|@import|@font-face", html, re.I)
-    assert html.count("<svg") >= 16  # 8 trend charts and 8 funnel plots
+    # per question: the open control charts, the per-unit control charts and the funnel plots
+    assert html.count("<svg") >= 6
     assert html.count(CAUTION) == 2
     assert "Contract checks: not run" in html  # the store holds no contract result
     for section in (
         "summary",
-        "trends",
-        "funnels",
+        "question-oxygenation",
+        "question-documentation",
         "data-quality",
         "rules",
         "contract",
@@ -201,6 +203,7 @@ def test_report_is_self_contained(site):
         "analyser-qc",
         "age-groups",
         "methods",
+        "appendix",
     ):
         assert f'id="{section}"' in html
     assert "'" + INJECTED_UNIT not in html  # the HTML escapes it instead
@@ -217,13 +220,14 @@ def test_contract_results_are_rendered_when_present(site, monkeypatch):
     con: duckdb.DuckDBPyConnection = site["con"]
     con.execute(
         "create table if not exists contract_results (run_id varchar, source_file varchar, check_id varchar, "
-        "expectation_type varchar, column_name varchar, severity varchar, success boolean, unexpected_count bigint, "
-        "observed varchar)"
+        "expectation_type varchar, column_name varchar, severity varchar, success boolean, element_count bigint, "
+        "unexpected_count bigint, unexpected_percent double, observed varchar)"
     )
     con.execute(
         "insert into contract_results by name select ? as run_id, '/data/exports/ward/2026-03-01.csv' as source_file, "
         "'ph_range' as check_id, 'expect_column_values_to_be_between' as expectation_type, 'ph' as column_name, "
-        "'critical' as severity, false as success, 3 as unexpected_count, '3 of 120 values outside 6.5-8' as observed",
+        "'critical' as severity, false as success, 120 as element_count, 3 as unexpected_count, "
+        "2.5 as unexpected_percent, '3 of 120 values outside 6.5-8' as observed",
         [RUN_ID],
     )
     try:
@@ -232,7 +236,11 @@ def test_contract_results_are_rendered_when_present(site, monkeypatch):
     finally:
         con.execute("delete from contract_results")
     assert "Contract checks: not run" not in html
-    assert "expect_column_values_to_be_between" in html and "3 of 120 values outside 6.5-8" in html
+    contract = block(html, "contract")
+    # in words, not the validation library's raw result: the column, what it should be, how many files and values
+    assert "expect_column_values_to_be_between" not in contract
+    assert "ph : values outside 6.5-8 — critical check; failed in 1 of 1 file(s), 3 of 120 values (2.5 %)" in contract
+    assert "2026-03-01.csv: 3 of 120 values outside 6.5-8" in contract
     assert "2026-03-01.csv" in html and "/data/exports" not in html  # file name only, never its folder
     assert "no incoming batch was checked in this run (1 result(s) of earlier runs" in earlier
 
@@ -325,7 +333,7 @@ def test_report_counts_children_and_neonates_apart(oxygen_site):
     assert "below the lower end of the target range that applies and PaO2 < 60 mmHg" in methods
     rates = block(html, "rates")
     # the rate blocks state each measure's numerator and denominator in words
-    assert "Oxygen given but not documented PaO2 above what the alveolar PO2 of room air allows" in rates
+    assert "Oxygen given but not documented (per sample) PaO2 above what the alveolar PO2 of room air allows" in rates
     assert "Ward O 15.4 % (2/13)" in rates  # undocumented oxygen, G4 of OXYGEN_GROUPS, by hand: 2 of 13
 
 
@@ -346,6 +354,36 @@ def test_methods_name_the_site_targets_by_unit_type(oxygen_site, monkeypatch):
     methods = block(render_report(oxygen_site["con"], config, RUN_ID), "methods")
     assert "This site's unit types: critical_care 92-96 %; paediatric no target (not assessed)." in methods
     assert "This site sets no target by unit type." in block(oxygen_site["html"], "methods")
+
+
+def test_answers_come_first_with_level_counts_and_wilson_interval(oxygen_site):
+    html = oxygen_site["html"]
+    # the questions are answered before the appendix, and the appendix is collapsed
+    assert html.index('id="question-oxygenation"') < html.index('id="question-documentation"') < html.index(
+        'id="appendix"'
+    )
+    assert re.search(r'<details class="appendix" id="rates">', html)
+    documentation = block(html, "question-documentation")
+    # every column says what one count is; every measure's denominator is stated in words below the table
+    assert "Oxygen given but not documented per sample" in documentation
+    assert "Oxygen given but not documented (per sample): PaO2 above what the alveolar PO2 of room air allows" in (
+        documentation
+    )
+    # Ward O: 2 of 13 samples with undocumented oxygen (hand-counted, G4 of OXYGEN_GROUPS), rounded to 15 %, with
+    # the Wilson 95 % interval of statsmodels (independent oracle) rounded the same way
+    low, high = proportion_confint(2, 13, alpha=0.05, method="wilson")
+    assert f"15 % 2/13 95 % CI {low * 100:.1f} %–{high * 100:.0f} %" in documentation
+    oxygenation = block(html, "question-oxygenation")
+    assert "Hypoxaemia per sample" in oxygenation and "All units" in oxygenation
+    assert "Over time" in oxygenation and "Units compared" in oxygenation
+
+
+def test_suppressed_cells_say_so_with_a_reason(site):
+    html = (site["out"] / REPORT_NAME).read_text(encoding="utf-8")
+    answers = " ".join(block(html, f"question-{q}") for q in ("oxygenation", "documentation"))
+    k = site["config"].small_cell_threshold
+    assert f"{SUPPRESSED} under {k} or would reveal one" in answers
+    assert f'title="a count of 1 to {k - 1} samples, or a value that would reveal one"' in html
 
 
 def readme_caution() -> str:
@@ -517,10 +555,11 @@ def test_report_command_on_a_missing_store_is_a_clear_error(tmp_path):
 
 
 def test_first_night_without_a_complete_period(tmp_path):
-    # One sample in a month still under way: the tables hold only a zero total and the report says so.
+    # One sample in a month still under way, and the site leaves such a period out: the tables hold only a zero
+    # total and the report says so.
     from tests.rule_harness import record
 
-    config = audit_config(tmp_path, k=11)
+    config = audit_config(tmp_path, k=11, complete_periods_only=True)
     con = build_store(tmp_path, [record("ONLY")], config)
     audit(con, config)
     write_outputs(con, config, RUN_ID, Log(quiet=True))
