@@ -18,6 +18,7 @@ import numpy as np
 import polars as pl
 import pytest
 from statsmodels.stats.proportion import proportion_confint
+from threadpoolctl import threadpool_limits
 
 from pipeline.audit_settings import AuditSettings, parse_audit_settings
 from pipeline.errors import ConfigError
@@ -937,7 +938,8 @@ def determined_hidden_cells(con: duckdb.DuckDBPyConnection) -> list[str]:
         for row, terms in enumerate(block):
             for v, coefficient in terms:
                 a[row, column[v]] += coefficient
-        _, singular, vt = np.linalg.svd(a, full_matrices=True)
+        with threadpool_limits(limits=1, user_api="blas"):  # small blocks: one BLAS thread is fastest
+            _, singular, vt = np.linalg.svd(a, full_matrices=True)
         rank = int((singular > 1e-9 * max(singular.max(), 1.0)).sum())
         null_space = vt[rank:].T
         for v in variables:

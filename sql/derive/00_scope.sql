@@ -21,6 +21,9 @@ where $rebuild
        union all
        select patient_key from prescriptions
        where run_id in (select run_id from scope_runs) and patient_key is not null
+       union all
+       select patient_key from superseded_prescriptions
+       where superseded_in_run in (select run_id from scope_runs) and patient_key is not null
    )
    or (exists (select 1 from prescriptions where run_id in (select run_id from scope_runs))
        and not exists (select 1 from prescriptions where run_id not in (select run_id from scope_runs)));

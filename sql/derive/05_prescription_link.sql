@@ -11,7 +11,8 @@
 --               present; else 'not_prescribed' when the site's prescriptions feed covers the
 --               collection time (on or after the earliest prescription start held) and the
 --               sample has a patient; else 'prescription_unknown'.
--- A target range counts only with both ends. The position of the arterial saturation against
+-- A target range counts only with both ends and low < high (a sample's charted range is
+-- loaded as charted, so a reversed one is treated here as absent). The position of the arterial saturation against
 -- it is decided in 10_derived.sql.
 -- Grain: one row per sample of scope_samples.
 create or replace temp table prescription_link as
@@ -22,8 +23,8 @@ with samples as (
         r.encounter_key,
         r.collected_at,
         r.o2_prescribed,
-        r.target_spo2_low_pct,
-        r.target_spo2_high_pct
+        case when r.target_spo2_low_pct < r.target_spo2_high_pct then r.target_spo2_low_pct end as target_spo2_low_pct,
+        case when r.target_spo2_low_pct < r.target_spo2_high_pct then r.target_spo2_high_pct end as target_spo2_high_pct
     from records as r
     join scope_samples as s using (sample_id)
 ),

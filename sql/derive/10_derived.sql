@@ -269,7 +269,6 @@ select
     target_low_pct,
     target_high_pct,
     case when is_arterial_or_unknown then arterial_saturation_pct end as arterial_saturation_pct,
-    encounter_key,
     episode_key,
     episode_basis,
     prescription_id,
