@@ -97,8 +97,8 @@ def draw_aims(rng: np.random.Generator, frame: pl.DataFrame) -> pl.DataFrame:
         m = (unit_type == kind) & (prescribed == (basis == "prescribed"))
         position[m] = np.where(u[m] < below, 0, np.where(u[m] < below + within, 1, 2))
     # within: staff aim a little above the middle of the range (the oximeter tends to read high, and a
-    # reading at the low end worries): a triangular spread of 40 % of the range around 65 % of it
-    middle = low + (high - low) * (0.65 + 0.2 * (rng.random(n) + rng.random(n) - 1.0))
+    # reading at the low end worries): a triangular spread of 40 % of the range around 70 % of it
+    middle = low + (high - low) * (0.7 + 0.2 * (rng.random(n) + rng.random(n) - 1.0))
     spo2 = np.where(
         position == 1,
         middle,
