@@ -14,6 +14,7 @@ canonical fields (``pipeline.schema.RECORD_SPECS``).
 
 from __future__ import annotations
 
+import hashlib
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -46,6 +47,10 @@ class Profile:
     true_values: tuple[str, ...] = ("1", "y", "yes", "true", "t")
     false_values: tuple[str, ...] = ("0", "n", "no", "false", "f")
     missing_values: tuple[str, ...] = ("", "-", "--", "n/a", "na", "null", "none")
+    # SHA-256 of the profile file's bytes, kept with every file it loads
+    # (ingested_files.profile_sha256): a store can tell which files an older version of
+    # the profile read.
+    sha256: str = ""
 
     @property
     def record(self) -> RecordSpec:
@@ -81,7 +86,8 @@ def load_profile(path: Path | str) -> Profile:
     """Read and check a mapping profile; every mistake is reported as a ConfigError."""
     path = Path(path)
     try:
-        raw = tomllib.loads(path.read_text(encoding="utf-8"))
+        data = path.read_bytes()
+        raw = tomllib.loads(data.decode("utf-8"))
     except FileNotFoundError:
         raise ConfigError(f"{path}: mapping profile not found") from None
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as err:
@@ -180,4 +186,5 @@ def load_profile(path: Path | str) -> Profile:
         unit_columns=unit_columns,
         codes=codes,
         kind=kind,
+        sha256=hashlib.sha256(data).hexdigest(),
     )

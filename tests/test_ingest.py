@@ -87,6 +87,18 @@ def test_clean_file_loads_every_row(store, tmp_path, minimal):
     assert row[3] is not None and "P1" not in row[3]
 
 
+def test_the_profile_hash_is_kept_with_each_loaded_file(store, tmp_path, minimal):
+    # The hash is SHA-256 of the profile file's bytes (hashlib, the standard library's
+    # implementation of FIPS 180-4), so any edit of the profile changes it.
+    import hashlib
+
+    f = load(store, tmp_path, HEADER + good_rows(2), minimal)
+    expected = hashlib.sha256((FIXTURES / "profiles" / "minimal.toml").read_bytes()).hexdigest()
+    assert minimal.sha256 == expected
+    held = store.execute("select profile, profile_sha256 from ingested_files where file_sha256 = ?", [f.sha256])
+    assert held.fetchall() == [("test_minimal", expected)]
+
+
 def test_utf8_bom_is_stripped(store, tmp_path, minimal):
     f = load(store, tmp_path, b"\xef\xbb\xbf" + (HEADER + good_rows(2)).encode(), minimal)
     assert f.outcome == "loaded" and f.rows_loaded == 2
@@ -472,7 +484,7 @@ def test_an_old_store_gains_the_new_columns(tmp_path):
         "superseded_records": new_record_columns,
         "quarantine": ("record_kind", "record_id"),
         "merged_duplicates": ("record_kind", "record_id"),
-        "ingested_files": ("kind",),
+        "ingested_files": ("kind", "profile_sha256"),
     }
     for table, columns in dropped.items():
         for column in columns:

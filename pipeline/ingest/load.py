@@ -392,8 +392,8 @@ def ingest_file(
             raise AssertionError(f"{path.name}: reconciliation failed {result}")
         con.execute(
             "insert into ingested_files (file_sha256, source_path, profile, size_bytes, run_id, loaded_at, rows_in, "
-            "rows_loaded, rows_quarantined, rows_duplicate, rows_superseded_in_file, corrections, notes, kind) "
-            "values (?, ?, ?, ?, ?, now()::timestamp, ?, ?, ?, ?, ?, ?, ?, ?)",
+            "rows_loaded, rows_quarantined, rows_duplicate, rows_superseded_in_file, corrections, notes, kind, "
+            "profile_sha256) values (?, ?, ?, ?, ?, now()::timestamp, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
             [
                 result.sha256,
                 str(path),
@@ -408,6 +408,7 @@ def ingest_file(
                 result.corrections,
                 "; ".join(result.notes),
                 record.kind,
+                profile.sha256 or None,
             ],
         )
         pause_point("load")  # test-only: crash tests kill the run here, inside the file's transaction

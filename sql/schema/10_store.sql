@@ -171,6 +171,9 @@ create table if not exists ingested_files (
     notes varchar
 );
 alter table ingested_files add column if not exists kind varchar default 'samples';  -- samples | prescriptions
+-- SHA-256 of the profile file the file was loaded with (NULL for files loaded before it was
+-- recorded): files read with an older version of their profile can be found and re-read.
+alter table ingested_files add column if not exists profile_sha256 varchar;
 
 -- What happened to every file each run saw: loaded, already_loaded or rejected.
 create table if not exists file_events (
