@@ -10,6 +10,11 @@ disagree. See DEVELOPERS.md, "Adding a site profile".
 ``[profile] kind`` says which record the export holds: ``samples`` (blood gas results, the
 default) or ``prescriptions`` (the oxygen prescriptions feed); the profile maps that kind's
 canonical fields (``pipeline.schema.RECORD_SPECS``).
+
+Every column named in ``[columns]`` must be in each file: a file without one is rejected
+(``MISSING_COLUMN``), because a column that silently disappears would load every record
+with that value empty. ``[profile] optional_columns`` lists the source headers (as written
+in ``[columns]``) an export may leave out; a required field's column cannot be optional.
 """
 
 from __future__ import annotations
@@ -51,6 +56,9 @@ class Profile:
     # (ingested_files.profile_sha256): a store can tell which files an older version of
     # the profile read.
     sha256: str = ""
+    # Source headers of [columns] that a file may lack (stored casefolded and stripped, as
+    # headers are matched); any other mapped column missing rejects the file.
+    optional_columns: frozenset[str] = frozenset()
 
     @property
     def record(self) -> RecordSpec:
@@ -69,6 +77,10 @@ class Profile:
         """The declared unit of a canonical numeric field (its canonical unit by default)."""
         spec = self.record.fields_by_name[canonical]
         return self.units.get(canonical, spec.canonical_unit or "")
+
+    def is_optional(self, source: str) -> bool:
+        """True when the profile lets a file lack this source column."""
+        return source.strip().casefold() in self.optional_columns
 
     @property
     def source_columns(self) -> list[str]:
@@ -164,6 +176,21 @@ def load_profile(path: Path | str) -> Profile:
         ZoneInfo(timezone)
     except (ZoneInfoNotFoundError, ValueError):
         problems.append(f"timezone {timezone!r} is not an IANA time zone name (e.g. Europe/Berlin)")
+    optional = head.get("optional_columns", [])
+    optional_folded: set[str] = set()
+    if not isinstance(optional, list) or not all(isinstance(o, str) for o in optional):
+        problems.append('optional_columns must be a list of source headers, e.g. ["SpO2 (%)"]')
+    else:
+        mapped_by_fold = {source.strip().casefold(): name for name, source in columns.items()}
+        for source in optional:
+            folded_source = source.strip().casefold()
+            name = mapped_by_fold.get(folded_source)
+            if name is None:
+                problems.append(f"optional_columns names {source!r}, which is not a source column in [columns]")
+            elif name in record.required:
+                problems.append(f"optional_columns names {source!r}, the column of the required field {name}")
+            else:
+                optional_folded.add(folded_source)
     for name in columns:
         if name in record.code_fields and not codes.get(name):
             problems.append(f"[codes.{name}] is needed because {name} is mapped")
@@ -187,4 +214,5 @@ def load_profile(path: Path | str) -> Profile:
         codes=codes,
         kind=kind,
         sha256=hashlib.sha256(data).hexdigest(),
+        optional_columns=frozenset(optional_folded),
     )

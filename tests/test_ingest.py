@@ -7,6 +7,7 @@ against both the returned counts and the tables in the store.
 
 from __future__ import annotations
 
+import re
 from datetime import datetime
 from pathlib import Path
 
@@ -26,6 +27,20 @@ HEADER = "id,mrn,ward,collected,resulted,type,device,fio2,ph,pco2,po2,hco3\n"
 GOOD_ROW = "S{n},P{n},W1,2026-03-02 10:{n:02d},2026-03-02 10:{m:02d},A,RA,0.21,7.40,40,95,24\n"
 
 ureg = pint.UnitRegistry()
+
+
+def profile_allowing(tmp_path: Path, source: Path, present: list[str]) -> Profile:
+    """A copy of a profile whose mapped columns not in ``present`` are marked optional, for
+    small hand-written exports that carry only a few of a demo layout's columns."""
+    original = load_profile(source)
+    folded = {p.casefold() for p in present}
+    absent = [s for s in original.columns.values() if s.casefold() not in folded]
+    text = source.read_text(encoding="utf-8").replace(
+        "[profile]\n", "[profile]\noptional_columns = [" + ", ".join(f'"{a}"' for a in absent) + "]\n", 1
+    )
+    path = tmp_path / f"optional_{source.name}"
+    path.write_text(text, encoding="utf-8")
+    return load_profile(path)
 
 
 def good_rows(count: int, start: int = 1) -> str:
@@ -113,8 +128,8 @@ def test_latin1_bytes_under_utf8_profile_reject_the_file(store, tmp_path, minima
 
 
 def test_latin1_profile_decodes_latin1(store, tmp_path):
-    profile = load_profile(PROFILES / "demo_eu_style.toml")
     header = "Probennummer;Patienten-ID;Station;Entnahme;Material;O2-Gerät;FiO2;pH;pCO2;pO2;HCO3\n"
+    profile = profile_allowing(tmp_path, PROFILES / "demo_eu_style.toml", header.strip().split(";"))
     row = "E1;P9;Intensivstation Süd;02.03.2026 11:15;arteriell;Raumluft;0,21;7,40;5,3;12,0;24,1\n"
     f = load(store, tmp_path, (header + row).encode("latin-1"), profile)
     assert f.outcome == "loaded", f.message
@@ -131,8 +146,8 @@ def test_latin1_profile_decodes_latin1(store, tmp_path):
 
 
 def test_decimal_point_in_decimal_comma_file_rejects_the_file(store, tmp_path):
-    profile = load_profile(PROFILES / "demo_eu_style.toml")
     header = "Probennummer;Entnahme;pH;pCO2\n"
+    profile = profile_allowing(tmp_path, PROFILES / "demo_eu_style.toml", header.strip().split(";"))
     rows = "".join(f"E{i};02.03.2026 11:15;7.40;5.3\n" for i in range(5))
     f = load(store, tmp_path, header + rows, profile)
     assert (f.outcome, f.reason_code) == ("rejected", "DIALECT_MISMATCH")
@@ -188,11 +203,44 @@ def test_duplicated_column_is_rejected(store, tmp_path, minimal):
     assert (f.outcome, f.reason_code) == ("rejected", "DUPLICATE_COLUMN")
 
 
-def test_extra_and_missing_optional_columns_are_noted(store, tmp_path, minimal):
-    header = HEADER.replace(",hco3\n", ",comment\n")
+def test_a_mapped_column_missing_from_the_file_rejects_it(store, tmp_path, minimal):
+    # The PaO2 column disappeared from the export: loading every record with PaO2 empty
+    # would be a silent failure, so the file is rejected and the message names the column
+    # and the profile.
+    header = HEADER.replace(",po2,", ",comment,")
     f = load(store, tmp_path, header + good_rows(2), minimal)
+    assert (f.outcome, f.reason_code) == ("rejected", "MISSING_COLUMN")
+    assert "'po2' (pao2_mmhg)" in (f.message or "") and "test_minimal" in (f.message or "")
+    assert "optional_columns" in (f.message or "")
+    assert store.execute("select count(*) from records").fetchall() == [(0,)]
+
+
+def test_a_column_marked_optional_may_be_missing_and_is_noted(store, tmp_path):
+    profile = profile_allowing(tmp_path, FIXTURES / "profiles" / "minimal.toml", HEADER.strip().split(",")[:-1])
+    assert profile.is_optional(" HCO3 ") and not profile.is_optional("po2")
+    header = HEADER.replace(",hco3\n", ",comment\n")
+    f = load(store, tmp_path, header + good_rows(2), profile)
     assert f.outcome == "loaded" and f.rows_loaded == 2
     assert any("hco3_mmol_l" in n for n in f.notes) and any("not mapped" in n for n in f.notes)
+    assert store.execute("select count(hco3_mmol_l) from records").fetchall() == [(0,)]
+
+
+@pytest.mark.parametrize(
+    ("line", "problem"),
+    [
+        ('optional_columns = ["nope"]', "not a source column in [columns]"),
+        ('optional_columns = ["collected"]', "the column of the required field collected_at"),
+        ('optional_columns = "hco3"', "must be a list of source headers"),
+    ],
+)
+def test_optional_columns_are_checked_when_the_profile_loads(tmp_path, line, problem):
+    from pipeline.errors import ConfigError
+
+    text = (FIXTURES / "profiles" / "minimal.toml").read_text(encoding="utf-8")
+    path = tmp_path / "p.toml"
+    path.write_text(text.replace("[profile]\n", f"[profile]\n{line}\n", 1), encoding="utf-8")
+    with pytest.raises(ConfigError, match=re.escape(problem)):
+        load_profile(path)
 
 
 def test_wrong_delimiter_is_rejected(store, tmp_path, minimal):
@@ -336,7 +384,8 @@ def test_failure_inside_a_file_leaves_none_of_it(store, tmp_path, minimal, monke
 
 
 def test_parquet_export_loads_and_corrupt_parquet_is_rejected(store, tmp_path):
-    profile = load_profile(PROFILES / "demo_parquet.toml")
+    columns = ["sample_id", "collected_at", "fio2", "pao2_mmhg"]
+    profile = profile_allowing(tmp_path, PROFILES / "demo_parquet.toml", columns)
     frame = pl.DataFrame(
         {
             "sample_id": ["Q1", "Q2"],

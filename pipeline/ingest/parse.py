@@ -238,31 +238,34 @@ class ColumnPlan:
 
 def plan_columns(path: Path, header: list[str], profile: Profile) -> ColumnPlan:
     """Match the profile's columns to the file's header (case-insensitive); FileRejected
-    when a required column is absent."""
+    (``MISSING_COLUMN``) when a mapped column is absent that the profile does not mark
+    optional (``[profile] optional_columns``): a column that disappears from an export
+    must not load every record with that value empty."""
     by_fold = {h.casefold(): h for h in header}
     mapped: dict[str, str] = {}
-    missing_required: list[str] = []
+    missing: list[str] = []
     missing_optional: list[str] = []
     for canonical, source in profile.columns.items():
         found = by_fold.get(source.strip().casefold())
         if found is not None:
             mapped[canonical] = found
-        elif canonical in profile.record.required:
-            missing_required.append(f"{source!r} ({canonical})")
-        else:
+        elif profile.is_optional(source):
             missing_optional.append(canonical)
+        else:
+            missing.append(f"{source!r} ({canonical})")
     unit_sources: dict[str, str] = {}
     for canonical, source in profile.unit_columns.items():
         found = by_fold.get(source.strip().casefold())
         if found is None:
-            missing_required.append(f"{source!r} (unit column for {canonical})")
+            missing.append(f"{source!r} (unit column for {canonical})")
         else:
             unit_sources[canonical] = found
-    if missing_required:
+    if missing:
         raise FileRejected(
             "MISSING_COLUMN",
-            f"{path.name}: required column(s) not in the header: {', '.join(missing_required)} "
-            f"(profile {profile.name}; header has {len(header)} columns)",
+            f"{path.name}: mapped column(s) not in the header: {', '.join(missing)} "
+            f"(profile {profile.name}; header has {len(header)} columns); if the export may leave a column "
+            "out, list it in [profile] optional_columns",
         )
     used = {s.casefold() for s in [*mapped.values(), *unit_sources.values()]}
     extra = [h for h in header if h.casefold() not in used]
