@@ -210,6 +210,7 @@ class RecordSpec:
     superseded_table: str
     convert_sql: str  # stage 1 (units, hard limits, row checks, content hash) -> stage_converted
     merge_sql: str  # stage 3: into the kind's tables
+    unique_keys_sql: str  # after stage 3: rows beyond one per key among the file's keys (must be 0)
     unit_sanity_sql: str | None  # file-level unit medians (pipeline.ingest.load.UNIT_SANITY)
     batch_contract: bool  # run the great-expectations batch contract (pipeline/contract.py)
 
@@ -239,6 +240,7 @@ SAMPLES = RecordSpec(
     superseded_table="superseded_records",
     convert_sql="ingest/10_convert.sql",
     merge_sql="ingest/40_merge.sql",
+    unique_keys_sql="ingest/45_unique_keys.sql",
     unit_sanity_sql="ingest/20_unit_sanity.sql",
     batch_contract=True,
 )
@@ -254,6 +256,7 @@ PRESCRIPTIONS = RecordSpec(
     superseded_table="superseded_prescriptions",
     convert_sql="ingest/10_convert_prescriptions.sql",
     merge_sql="ingest/40_merge_prescriptions.sql",
+    unique_keys_sql="ingest/45_unique_keys_prescriptions.sql",
     unit_sanity_sql="ingest/20_unit_sanity_prescriptions.sql",
     batch_contract=False,
 )

@@ -560,3 +560,45 @@ def test_an_old_store_gains_the_new_columns(tmp_path):
         assert kinds == [("samples",)]
     finally:
         con.close()
+
+
+# --------------------------------------------------------------------------------------
+# records has no primary key: the merge keeps sample_id unique and a check proves it
+# --------------------------------------------------------------------------------------
+
+
+def test_sample_ids_stay_unique_without_a_primary_key(store, tmp_path, minimal):
+    """Repeats within a file, duplicates and corrections across files: one row per
+    sample_id (counted against count distinct; the hand-written files hold 5 samples)."""
+    constraints = store.execute(
+        "select count(*) from duckdb_constraints() where table_name in ('records', 'prescriptions') "
+        "and constraint_type = 'PRIMARY KEY'"
+    ).fetchall()
+    assert constraints == [(0,)]  # a new store is made without the key
+    load(store, tmp_path, HEADER + good_rows(3) + good_rows(1, start=2), minimal, name="day1.csv")
+    second = HEADER + good_rows(1).replace(",95,", ",91,") + good_rows(2, start=3) + good_rows(1, start=3)
+    load(store, tmp_path, second.replace(",24\n", ",25\n"), minimal, name="day2.csv", run_id="r2")
+    third = HEADER + good_rows(5)
+    load(store, tmp_path, third, minimal, name="day3.csv", run_id="r3")
+    total, distinct = store.execute("select count(*), count(distinct sample_id) from records").fetchall()[0]
+    assert (total, distinct) == (5, 5)
+
+
+def test_a_merge_that_would_repeat_a_key_rolls_the_file_back(store, tmp_path, minimal, monkeypatch):
+    import pipeline.ingest.load as load_module
+
+    real_run_sql = load_module.run_sql
+
+    def broken_merge(con, relative_path, **params):
+        real_run_sql(con, relative_path, **params)
+        if relative_path == "ingest/40_merge.sql":  # a merge that forgot its anti-join
+            con.execute("insert into records select * from records where sample_id = 'S1'")
+
+    load(store, tmp_path, HEADER + good_rows(2), minimal, name="day1.csv")
+    monkeypatch.setattr(load_module, "run_sql", broken_merge)
+    path = tmp_path / "day2.csv"
+    path.write_text(HEADER + good_rows(3), encoding="utf-8")
+    with pytest.raises(load_module.DuplicateKeyError, match="beyond one per sample_id"):
+        ingest_file(store, path, minimal, "r2", KEY)
+    assert store.execute("select count(*), count(distinct sample_id) from records").fetchall() == [(2, 2)]
+    assert store.execute("select count(*) from ingested_files").fetchall() == [(1,)]

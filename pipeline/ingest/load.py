@@ -380,6 +380,7 @@ def ingest_file(
             contract.raise_if_rejected()
         run_sql(con, "ingest/30_classify.sql")
         run_sql(con, record.merge_sql, **names)
+        _check_unique_keys(con, path, record)
         counts = con.execute(read_sql("ingest/50_counts.sql")).fetchall()[0]
         _parsed, quarantined, dup_in_file, superseded, new, corrected, dup_store = counts
         _quarantine_rows(con, staged.originals, staged.malformed, run_id, str(path), result.sha256, record)
@@ -437,6 +438,22 @@ def ingest_file(
             except duckdb.Error:
                 pass
     return result
+
+
+class DuplicateKeyError(RuntimeError):
+    """The store would hold a record key twice after a merge: a fault of the loader, not of
+    the file, so the file's transaction is rolled back and the run stops."""
+
+
+def _check_unique_keys(con: duckdb.DuckDBPyConnection, path: Path, record: RecordSpec) -> None:
+    """The kind's table has no primary key (sql/schema/10_store.sql): prove the merge kept
+    each key once among the keys of this file, before the file's transaction commits."""
+    extra = con.execute(read_sql(record.unique_keys_sql)).fetchall()[0][0]
+    if extra:
+        raise DuplicateKeyError(
+            f"{path.name}: after the merge {record.table} would hold {extra} row(s) beyond one per "
+            f"{record.key_field}; the file's load was rolled back"
+        )
 
 
 def _quarantine_rows(

@@ -43,9 +43,13 @@ from records as r
 join stage_held as h using (sample_id)
 where not h.same_values;
 
--- Corrections replace the held row; new samples cannot collide with a held one (every
--- kept row whose sample is held is in stage_held), so they take the plain, bulk insert.
-insert or replace into records by name
+-- Corrections replace the held row: it is deleted and the new version inserted (records has
+-- no key to replace against). New samples cannot collide with a held one (every kept row
+-- whose sample is held is in stage_held: an anti-join), so they take the plain, bulk insert.
+-- 45_unique_keys.sql checks the outcome before the file commits.
+delete from records where sample_id in (select sample_id from stage_held where not same_values);
+
+insert into records by name
 select
     columns(lambda c: list_contains(getvariable('record_value_columns'), c)),
     $source_file as source_file, source_row, $file_sha256 as file_sha256, $run_id as run_id, held_version + 1 as version

@@ -42,7 +42,11 @@ from prescriptions as p
 join stage_held as h using (prescription_id)
 where not h.same_values;
 
-insert or replace into prescriptions by name
+-- A correction replaces the held row: deleted, then inserted (no key to replace against);
+-- new prescriptions take the bulk insert (not held: an anti-join against stage_held).
+delete from prescriptions where prescription_id in (select prescription_id from stage_held where not same_values);
+
+insert into prescriptions by name
 select
     columns(lambda c: list_contains(getvariable('prescription_value_columns'), c)),
     $source_file as source_file, source_row, $file_sha256 as file_sha256, $run_id as run_id, held_version + 1 as version

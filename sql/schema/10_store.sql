@@ -3,8 +3,14 @@
 -- pipeline/schema.py (the canonical record); a test keeps the two in step.
 
 -- One row per distinct sample (the latest version), canonical units.
+-- No primary key: DuckDB maintains one on a single thread while appending, which made the
+-- key most of a big file's load. Ingestion keeps sample_id unique itself (new rows are
+-- those whose key is not held, corrections delete the held row first, 40_merge.sql) and
+-- checks it after every merge, before the file's transaction commits (45_unique_keys.sql).
+-- Stores created before keep their key (DuckDB cannot drop one in place); the merge and
+-- the check work the same with it.
 create table if not exists records (
-    sample_id varchar primary key,
+    sample_id varchar,
     patient_id varchar,                 -- raw identifier; NULL when the site keeps none
     patient_key varchar,                -- keyed pseudonym (HMAC-SHA256), used in all outputs
     unit varchar,
@@ -88,8 +94,9 @@ alter table superseded_records add column if not exists operator_key varchar;
 -- The oxygen prescriptions feed ([[inputs]] kind = "prescriptions"): one row per
 -- prescription_id, the latest delivery. Loaded like samples: ledger, quarantine,
 -- duplicates, corrections (version + 1, the earlier version to superseded_prescriptions).
+-- No primary key, as for records: unique by the merge, checked after it.
 create table if not exists prescriptions (
-    prescription_id varchar primary key, -- the source system's own order id
+    prescription_id varchar,            -- the source system's own order id
     patient_id varchar,                 -- raw identifier; NULL when the site keeps none
     patient_key varchar,                -- same pseudonym as records.patient_key for the same patient
     encounter_id varchar,
