@@ -23,6 +23,7 @@ import threading
 from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Protocol
 
 import duckdb
 import polars as pl
@@ -66,6 +67,18 @@ _CONVERTER = {
     "temperature_c": "temperature_to_c",
     "hb_g_dl": "hb_to_g_dl",
 }
+
+
+class Replacing(Protocol):
+    """Loading a held file again in place of what it loaded (``pipeline.reload.Replacement``).
+    Both hooks run inside the file's transaction: ``before_merge`` right after it begins
+    (it removes what the file loaded, including its ledger entry), ``after_merge`` after the
+    merge and the new ledger entry, before the commit. Raising ``FileRejected`` in either
+    rejects the file and rolls everything back."""
+
+    def before_merge(self, con: duckdb.DuckDBPyConnection, outcome: FileOutcome) -> None: ...
+
+    def after_merge(self, con: duckdb.DuckDBPyConnection, outcome: FileOutcome) -> None: ...
 
 
 @dataclass
@@ -334,8 +347,12 @@ def ingest_file(
     key: bytes,
     *,
     keep_patient_id: bool = True,
+    replacing: Replacing | None = None,
 ) -> FileOutcome:
-    """Load one file; never raises for a problem of the file itself (see ``outcome``)."""
+    """Load one file; never raises for a problem of the file itself (see ``outcome``).
+
+    ``replacing`` loads a file the ledger already holds again, in place of what it loaded
+    (``abg-audit reload``): its hooks run inside the file's transaction (``Replacing``)."""
     record = profile.record
     result = FileOutcome(path=path, profile=profile.name, kind=record.kind)
     try:
@@ -346,7 +363,7 @@ def ingest_file(
         result.message = f"{path.name}: cannot be read ({err.strerror})"
         return result
     held = con.execute("select 1 from ingested_files where file_sha256 = ?", [result.sha256]).fetchall()
-    if held:
+    if held and replacing is None:
         result.outcome = "already_loaded"
         return result
     try:
@@ -374,6 +391,8 @@ def ingest_file(
         _check_units(con, path, profile, reader, plan)
         con.execute("begin transaction")
         in_transaction = True
+        if replacing is not None:
+            replacing.before_merge(con, result)
         if record.batch_contract:
             contract = validate_stage(con, path, run_id, result.sha256)
             keep_results(con, contract)
@@ -412,6 +431,8 @@ def ingest_file(
                 profile.sha256 or None,
             ],
         )
+        if replacing is not None:
+            replacing.after_merge(con, result)
         pause_point("load")  # test-only: crash tests kill the run here, inside the file's transaction
         con.execute("commit")
         in_transaction = False
