@@ -49,20 +49,26 @@ CAUTION = (
 # workbooks' about sheet, and in the README's caution block.
 LIMITS = (
     (
-        "Targets are inferred",
-        "Where no oxygen prescription is linked to a sample, the target range is inferred: 88-92 % when a "
-        "hypercapnic-risk flag is documented or PaCO2 is above normal, else the range the site sets for the unit "
-        "type, else 94-98 %. A patient's prescribed target may differ.",
+        "Only patients who had a blood gas",
+        "Every figure is about patients sampled for a blood gas, not about all patients on oxygen: a ward that "
+        "rarely samples shows only its sickest patients.",
     ),
     (
-        "Most rates are per sample",
-        "Every blood gas counts once, so a patient sampled often (usually the sickest) weighs more than one "
-        "sampled once; the episode rates count each encounter (or patient-day) once instead.",
+        "Targets come from the prescription when there is one",
+        "A sample is compared with the prescription active when it was taken (from a prescriptions feed, or the "
+        "range charted on the sample); otherwise the target is inferred: 88-92 % when a hypercapnic-risk flag is "
+        "documented or PaCO2 is above normal, else the range the site sets for the unit type, else 94-98 %.",
+    ),
+    (
+        "Sample and episode rates",
+        "Per-sample rates count every blood gas, so a patient sampled often (usually the sickest) weighs more; "
+        "episode rates (an encounter, or a patient-day where none is exported) count each patient's stay once. "
+        "Each figure says which it is.",
     ),
     (
         "No case-mix adjustment",
-        "Units are compared as they are: a unit whose patients are sicker can differ from the others for that "
-        "reason alone.",
+        "Units are compared with units of the same type (critical care with critical care, wards with wards), but "
+        "not adjusted for how sick their patients are.",
     ),
     (
         "Not a real-time check",
@@ -75,12 +81,8 @@ LIMITS = (
         "outside the adult targets, the adult A-a formula and the saturation curve check.",
     ),
 )
-# Who is in the figures at all: said beside the caution on the page and in every file's metadata.
-SELECTION = (
-    "Who is counted: only patients who had a blood gas taken. Patients on oxygen who never had one are not in "
-    "these figures, and those who had one are usually the sicker ones, so the rates describe sampled patients, "
-    "not all patients on oxygen."
-)
+# Who is in the figures at all: in every file's metadata, and first among the limits on the page.
+SELECTION = f"{LIMITS[0][0]}. {LIMITS[0][1]}"
 SUPPRESSED = "suppressed"
 REPORT_NAME = "audit_report.html"
 WORKBOOK_NAME = "audit_tables.xlsx"
@@ -225,10 +227,10 @@ def _write_workbook(path: Path, about: list[tuple[str, str]], sheets: dict[str, 
 # Charts
 # --------------------------------------------------------------------------------------
 
-PANEL_WIDTH = 250
-CONTROL_HEIGHT = 95
-FUNNEL_HEIGHT = 150
-PANELS_PER_ROW = 4
+PANEL_WIDTH = 200
+CONTROL_HEIGHT = 90
+FUNNEL_HEIGHT = 140
+PANELS_PER_ROW = 5
 # Funnel positions as the legend names them (audit_funnel.position is finer: above or below)
 FUNNEL_BANDS = ("within limits", "beyond 95 % limits", "beyond 99.8 % limits")
 FUNNEL_COLOURS = ("#5b7083", "#d9901a", "#b42318")
@@ -377,6 +379,7 @@ def control_chart(
         .properties(width=PANEL_WIDTH, height=CONTROL_HEIGHT)
         .facet(facet=_facet(order), columns=PANELS_PER_ROW, spacing={"row": 14, "column": 22})
         .resolve_scale(y="independent")
+        .resolve_axis(x="independent")  # every panel its own time axis: a shared one sits under empty cells
         .configure_view(stroke=None)
         .configure_axis(domainColor="#9aa5b1", tickColor="#9aa5b1")
     )
@@ -888,6 +891,13 @@ def rate_block(row: dict[str, Any] | None, k: int) -> Markup:
     )
 
 
+def _has_denominator(row: dict[str, Any] | None) -> bool:
+    if row is None:
+        return False
+    hidden = set((row.get("suppressed_columns") or "").split(", "))
+    return "denominator" in hidden or bool(row.get("denominator"))
+
+
 def _place_kind(row: dict[str, Any]) -> str:
     if not row["all_units"]:
         return "unit"
@@ -926,17 +936,24 @@ def answer_tables(rates: pl.DataFrame) -> list[dict[str, Any]]:
             {t for kind, t in kinds.values() if kind in ("unit", "type")},
             key=lambda t: (t is None or t == "unassigned", t or ""),
         )
-        groups = []
+        groups, empty = [], []
         has_type_rows = any(kind == "type" for kind, _ in kinds.values())
         for unit_type in types:
             units = sorted(p for p, (kind, t) in kinds.items() if kind == "unit" and t == unit_type)
+            # a unit with no denominator in any of these measures (e.g. a neonatal unit in adult measures) is
+            # named below the table instead of a row of dashes
+            empty += [u for u in units if not any(_has_denominator(c) for c in line(u, "unit")["cells"])]
+            units = [u for u in units if u not in empty]
             total = next((p for p, (kind, t) in kinds.items() if kind == "type" and t == unit_type), None)
+            if not units:
+                continue
             groups.append(
                 {
                     "unit_type": unit_type,
                     "heading": f"{_type_words(unit_type).capitalize()} units" if has_type_rows else None,
                     "units": [line(u, "unit") for u in units],
-                    "total": line(total, "type") if total else None,
+                    # one unit: the type's row would repeat it
+                    "total": line(total, "type") if total and len(units) > 1 else None,
                 }
             )
         site = next((p for p, (kind, _) in kinds.items() if kind == "site"), None)
@@ -949,19 +966,20 @@ def answer_tables(rates: pl.DataFrame) -> list[dict[str, Any]]:
                 "measures": measures,
                 "groups": groups,
                 "site": line(site, "site") if site else None,
+                "empty": empty,
             }
         )
     return result
 
 
-def _chart_places(rates: pl.DataFrame) -> list[tuple[str, str | None]]:
-    """Places whose control charts are shown open: each unit type's row and all units, or each unit when
-    the site has no unit types (then the units are the comparison)."""
+def _chart_places(rates: pl.DataFrame) -> tuple[list[str], list[str]]:
+    """Places whose control charts are shown open (all units), and those drawn apart, collapsed: each unit
+    type's row, then each unit."""
     window = rates.filter(pl.col("all_periods")).select("unit", "all_units", "unit_type").unique(maintain_order=True)
-    types = window.filter(pl.col("all_units") & pl.col("unit_type").is_not_null()).sort("unit_type")
-    site = window.filter(pl.col("all_units") & pl.col("unit_type").is_null())
-    places = [(r["unit"], r["unit_type"]) for r in types.to_dicts()] + [(r["unit"], None) for r in site.to_dicts()]
-    return places
+    site = window.filter(pl.col("all_units") & pl.col("unit_type").is_null())["unit"].to_list()
+    types = window.filter(pl.col("all_units") & pl.col("unit_type").is_not_null()).sort("unit_type")["unit"].to_list()
+    units = window.filter(~pl.col("all_units")).sort("unit_type", "unit", nulls_last=True)["unit"].to_list()
+    return site, types + units
 
 
 def _subtitle(place: str, level: str) -> str:
@@ -971,31 +989,28 @@ def _subtitle(place: str, level: str) -> str:
 def control_charts(
     question: dict[str, Any],
     chart: pl.DataFrame,
-    places: list[tuple[str, str | None]],
-    units: list[str],
+    places: tuple[list[str], list[str]],
     starts: list[date],
     config: SiteConfig,
     partial: set[str],
     prefix: str,
 ) -> dict[str, Any]:
-    """The question's control charts: open panels for the places given, per-unit panels apart."""
-    open_panels, unit_panels = [], []
+    """The question's control charts: all units open, each unit type and unit apart."""
+    open_places, other_places = places
+    open_panels, other_panels = [], []
     for m in question["measures"]:
         points = chart.filter(pl.col("measure") == m["measure"])
-        for place, _ in places:
+        for place in open_places:
             open_panels.append(
                 (m["title"], _subtitle(place, m["level"]), points.filter(pl.col("unit") == place).sort("period_start"))
             )
-        for unit in units:
-            unit_panels.append(
-                (m["title"], _subtitle(unit, m["level"]), points.filter(pl.col("unit") == unit).sort("period_start"))
+        for place in other_places:
+            other_panels.append(
+                (m["title"], _subtitle(place, m["level"]), points.filter(pl.col("unit") == place).sort("period_start"))
             )
-    shown = {p for p, _ in places}
     signals = (
         chart.filter(
-            pl.col("measure").is_in([m["measure"] for m in question["measures"]])
-            & pl.col("signals").is_not_null()
-            & pl.col("unit").is_in(sorted(shown))
+            pl.col("measure").is_in([m["measure"] for m in question["measures"]]) & pl.col("signals").is_not_null()
         )
         .sort("sort_order", "unit", "period_start")
         .select("title", "unit", "period", "signals")
@@ -1008,7 +1023,7 @@ def control_charts(
             return None
         return svg_markup(control_chart(panels, starts, period, limits, partial), f"{prefix}{name}")
 
-    return {"svg": draw(open_panels, "c"), "unit_svg": draw(unit_panels, "u"), "signals": signals}
+    return {"svg": draw(open_panels, "c"), "unit_svg": draw(other_panels, "u"), "signals": signals}
 
 
 def _overdispersion_words(rows: pl.DataFrame) -> str:
@@ -1026,7 +1041,8 @@ def _overdispersion_words(rows: pl.DataFrame) -> str:
 def funnel_charts(question: dict[str, Any], funnel: pl.DataFrame, curve: pl.DataFrame, prefix: str) -> dict[str, Any]:
     """Per measure and unit type, each unit's whole-window rate against its denominator."""
     panels: list[tuple[str, str, pl.DataFrame, pl.DataFrame, str | None]] = []
-    outliers = []
+    outliers: list[dict[str, Any]] = []
+    alone: set[str] = set()
     for m in question["measures"]:
         points = funnel.filter(pl.col("measure") == m["measure"])
         lines = curve.filter(pl.col("measure") == m["measure"])
@@ -1039,11 +1055,18 @@ def funnel_charts(question: dict[str, Any], funnel: pl.DataFrame, curve: pl.Data
             typed = len(types) > 1 or unit_type not in (None, "unassigned")
             place = f"{_type_words(unit_type)} units" if typed else "all units"
             subtitle = f"{place} · {LEVEL_WORDS.get(m['level'], m['level'])} · {_overdispersion_words(group)}"
-            note = "one unit of this type: nothing to compare" if group.height < 2 else None
-            panels.append((m["title"], subtitle, group, group_lines, note))
+            if group.height < 2 and typed:
+                # one unit of its type: nothing to compare it with (its rate is in the answers table)
+                alone.add(_type_words(unit_type))
+                continue
+            panels.append((m["title"], subtitle, group, group_lines, None))
             for row in group.filter(pl.col("position").str.contains("99.8").fill_null(False)).to_dicts():
                 outliers.append({**row, "title": m["title"]})
-    return {"svg": svg_markup(funnel_chart(panels), f"{prefix}f") if panels else None, "outliers": outliers}
+    return {
+        "svg": svg_markup(funnel_chart(panels), f"{prefix}f") if panels else None,
+        "outliers": outliers,
+        "alone": sorted(alone),
+    }
 
 
 def _period_frame(rates: pl.DataFrame) -> list[dict[str, Any]]:
@@ -1122,10 +1145,9 @@ def render_report(
     latest = periods[-1] if periods else None
 
     places = _chart_places(rates)
-    units = sorted(rates.filter(~pl.col("all_units"))["unit"].unique().to_list())
     questions = answer_tables(rates)
     for index, question in enumerate(questions):
-        question["control"] = control_charts(question, chart, places, units, starts, config, partial, f"q{index}")
+        question["control"] = control_charts(question, chart, places, starts, config, partial, f"q{index}")
         question["funnel"] = funnel_charts(question, funnel, curve, f"q{index}")
 
     signal_count = chart.filter(pl.col("signals").is_not_null()).height
@@ -1162,7 +1184,6 @@ def render_report(
     return template.render(
         caution=CAUTION,
         limits=LIMITS,
-        selection=SELECTION,
         audience=audience,
         page_label=_css_text(audience.label),
         site_name=config.site_name,
