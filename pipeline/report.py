@@ -33,7 +33,7 @@ from markupsafe import Markup, escape
 
 from pipeline import __version__
 from pipeline.audience import Audience, publication
-from pipeline.audit import PUBLISHED_TABLES, RESTRICTED_TABLES, build_audit
+from pipeline.audit import PUBLISHED_TABLES, RESTRICTED_TABLES
 from pipeline.config import SiteConfig
 from pipeline.errors import StorageError
 from pipeline.log import Log
@@ -1365,7 +1365,9 @@ def latest_run_id(con: duckdb.DuckDBPyConnection) -> str:
 
 
 def rebuild_outputs(config: SiteConfig, log: Log) -> list[Path]:
-    """Rebuild the audit tables and every output from the store, loading nothing (``abg-audit report``)."""
+    """Rebuild the audit tables and every output from the store, loading nothing (``abg-audit report``),
+    for each audience (pipeline/publish.py)."""
+    from pipeline.publish import build_and_write
     from pipeline.run import run_lock
     from pipeline.store import open_store
 
@@ -1376,8 +1378,7 @@ def rebuild_outputs(config: SiteConfig, log: Log) -> list[Path]:
         con = open_store(config.store_path)
         try:
             run_id = latest_run_id(con)
-            build_audit(con, config, catalogue, run_id)
-            return write_outputs(con, config, run_id, log)
+            return build_and_write(con, config, catalogue, run_id, log)
         finally:
             con.close()
 

@@ -24,7 +24,6 @@ import polars as pl
 import pyarrow as pa
 
 from pipeline import __version__
-from pipeline.audit import build_audit
 from pipeline.config import InputSource, SiteConfig
 from pipeline.derive import derive
 from pipeline.errors import NoInputError, PipelineError, StoreBusyError
@@ -32,7 +31,7 @@ from pipeline.ingest.load import FileOutcome, ingest_file
 from pipeline.log import Log
 from pipeline.preflight import check_free_space, check_private_folder
 from pipeline.pseudonym import key_id, load_key
-from pipeline.report import write_outputs
+from pipeline.publish import build_and_write
 from pipeline.rules import Catalogue, evaluate_rules, load_catalogue
 from pipeline.sql_files import SQL_DIR, run_sql
 from pipeline.store import open_store
@@ -437,10 +436,8 @@ def _run_stages(
         log.info("nothing new since the last completed run: audit tables and outputs are current, left as they are")
     else:
         log.progress("building audit tables")
-        build_audit(con, config, catalogue, result.run_id, incremental=not rebuild)
-        log.progress("writing outputs")
         _remove_stale_temporaries(config.output_folder)
-        write_outputs(con, config, result.run_id, log)
+        build_and_write(con, config, catalogue, result.run_id, log, incremental=not rebuild)
     log.clear_progress()
 
 

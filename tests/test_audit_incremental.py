@@ -15,7 +15,7 @@ from typing import Any
 import duckdb
 import pytest
 
-import pipeline.run as run_module
+import pipeline.publish as publish_module
 from pipeline.audit import LAYER_TABLES, PUBLISHED_TABLES
 from pipeline.config import load_config
 from pipeline.log import Log
@@ -39,14 +39,14 @@ WORKLIST = (
 def tracked(monkeypatch: pytest.MonkeyPatch) -> list[bool]:
     """Whether each run's audit updated the layer incrementally (True) or rebuilt it."""
     calls: list[bool] = []
-    original = run_module.build_audit
+    original = publish_module.build_audit
 
     def build(*args: Any, **kwargs: Any) -> bool:
         updated = original(*args, **kwargs)
         calls.append(updated)
         return updated
 
-    monkeypatch.setattr(run_module, "build_audit", build)
+    monkeypatch.setattr(publish_module, "build_audit", build)
     return calls
 
 

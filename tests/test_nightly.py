@@ -420,7 +420,7 @@ def test_unexpected_error_is_one_line_without_its_message_and_the_run_is_marked_
     def broken(*_args: object, **_kwargs: object) -> None:
         raise ValueError("could not convert 'P0101' in row 3")
 
-    monkeypatch.setattr(run_module, "build_audit", broken)
+    monkeypatch.setattr(run_module, "build_and_write", broken)
     outcome = CliRunner().invoke(main, ["run", "--config", str(config_path)], env=env())
     assert outcome.exit_code == 70
     assert outcome.stderr.splitlines()[-1].startswith("error: internal error (ValueError at test_nightly.py:")
