@@ -135,7 +135,8 @@ def test_sao2_off_dissociation_curve(tmp_path):
 
 def test_suspected_venous_sample_needs_strong_evidence(tmp_path):
     # Venous PO2 is 20-50 mmHg (common practice). Strong evidence: PO2 < 40 with saturation < 75 % while SpO2 >= 94,
-    # or PO2 < 50 with SpO2 at least 15 points above the sample's saturation (beyond oximeter error: A_rms 2-3 %,
+    # or PO2 < 60 (venous, mixed, or another patient's hypoxaemic blood; respiratory failure < 60 mmHg, common
+    # practice) with SpO2 at least 15 points above the sample's saturation (beyond oximeter error: A_rms 2-3 %,
     # ISO 80601-2-61; occult hypoxaemia over-reads of 4-8 points, Sjoding 2020, from memory).
     # Severinghaus curve: 38 mmHg -> 72.13 %, 45 -> 80.71 %, 52 -> 86.38 % (formula, domain notes section 5).
     rows = [
@@ -147,13 +148,17 @@ def test_suspected_venous_sample_needs_strong_evidence(tmp_path):
         record("CARBON_MONOXIDE", pao2_mmhg=95.0, sao2_pct=75.0, cohb_pct=22.0, spo2_pct=98.0),
         record("LABELLED_VENOUS", sample_type="venous", pao2_mmhg=38.0, sao2_pct=72.0, spo2_pct=96.0),
         record("NO_SPO2", pao2_mmhg=38.0, sao2_pct=72.0, spo2_pct=None),
+        # another patient's blood with a right-shifted curve: PO2 55, saturation 75 %, SpO2 96 (21 points)
+        record("MIXED", pao2_mmhg=55.0, sao2_pct=75.0, spo2_pct=96.0),
+        # the same gap at PO2 62, above the limit: not called venous (a clinical note instead)
+        record("ABOVE_LIMIT", pao2_mmhg=62.0, sao2_pct=75.0, spo2_pct=96.0),
     ]
     con = evaluate(tmp_path, rows)
-    assert set(flagged(con, "suspected_venous_sample")) == {"FIRE", "DISCORDANT", "UNTYPED"}
+    assert set(flagged(con, "suspected_venous_sample")) == {"FIRE", "DISCORDANT", "UNTYPED", "MIXED"}
     status = status_of(con)
     assert status["FIRE"] == "excluded" and status["UNTYPED"] == "excluded" and status["LABELLED_VENOUS"] == "excluded"
     # the smaller gaps stay in the statistics, noted as possible occult hypoxaemia (a clinical finding)
-    assert set(flagged(con, "spo2_above_arterial_saturation")) == {"INSIDE", "OCCULT"}
+    assert set(flagged(con, "spo2_above_arterial_saturation")) == {"INSIDE", "OCCULT", "ABOVE_LIMIT"}
     assert status["INSIDE"] == "usable" and status["OCCULT"] == "usable"
     message = con.execute("select message from flags where sample_id = 'OCCULT' and rule_id = "
                           "'spo2_above_arterial_saturation'").fetchall()[0][0]

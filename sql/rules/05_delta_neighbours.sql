@@ -101,6 +101,10 @@ select
     -- a value so far and no further within the window)
     delta_check_limit(prev_value, cva, cvi, rate, least(hours_since_prev, max_change / rate)) as limit_prev,
     delta_check_limit(next_value, cva, cvi, rate, least(hours_to_next, max_change / rate)) as limit_next,
+    delta_check_limit(prev_value, cva, cvi, rate, least(hours_since_prev, hours_to_next, max_change / rate))
+        as limit_shorter_prev,
+    delta_check_limit(next_value, cva, cvi, rate, least(hours_since_prev, hours_to_next, max_change / rate))
+        as limit_shorter_next,
     delta_check_limit(prev_value, cva, cvi, 0.0, 0.0) as rcv_prev,
     delta_check_limit(next_value, cva, cvi, 0.0, 0.0) as rcv_next,
     -- the two neighbours agree: the patient's level before and after is the same, within the
@@ -121,6 +125,13 @@ select
     -- two-sided: away from both neighbours in the same direction
     coalesce(has_prev and has_next and abs(change_from_prev) > limit_prev and abs(change_from_next) > limit_next
              and sign(change_from_prev) = sign(change_from_next), false) as out_of_line,
+    -- away and back: the neighbours agree, so a real change would have had to go and come back; both
+    -- legs fit in the shorter of the two intervals at most, so each difference is judged with that
+    -- interval's allowance (a value back at the patient's level three minutes later cannot have left
+    -- it through a treatment of the fourteen hours before)
+    coalesce(has_prev and has_next and neighbours_agree and sign(change_from_prev) = sign(change_from_next)
+             and abs(change_from_prev) > limit_shorter_prev and abs(change_from_next) > limit_shorter_next, false)
+        as away_and_back,
     -- one-sided: away from the only neighbour, which is in line with its own neighbour
     coalesce(case when has_prev and not has_next then abs(change_from_prev) > limit_prev and prev_in_line
                   when has_next and not has_prev then abs(change_from_next) > limit_next and next_in_line
@@ -152,7 +163,8 @@ from limits;
 --                        after saline resuscitation, is not a diluted sample).
 --   wrong_blood_severity 'high' when both stable groups (Hb, Na/Cl) are out of line with the
 --                        neighbours on both sides, or one stable group jumps away and comes back
---                        to where it was (the neighbours agree); 'medium' when both stable groups
+--                        to where it was (the neighbours agree; judged with the shorter
+--                        interval's allowance, away_and_back); 'medium' when both stable groups
 --                        differ from the only neighbour and that neighbour does not itself look
 --                        diluted; NULL otherwise, and for a dilution. One
 --                        stable analyte changing alone fits a clinical course (transfusion,
@@ -163,8 +175,8 @@ select
     -- stable groups (haemoglobin; sodium and chloride) out of line, away and back, moved one-sided
     coalesce(bool_or(out_of_line) filter (where analyte = 'hb'), false)::int
         + coalesce(bool_or(out_of_line) filter (where analyte in ('na', 'cl')), false)::int as stable_groups_out_of_line,
-    coalesce(bool_or(out_of_line and neighbours_agree) filter (where analyte = 'hb'), false)::int
-        + coalesce(bool_or(out_of_line and neighbours_agree) filter (where analyte in ('na', 'cl')), false)::int
+    coalesce(bool_or(away_and_back) filter (where analyte = 'hb'), false)::int
+        + coalesce(bool_or(away_and_back) filter (where analyte in ('na', 'cl')), false)::int
         as stable_groups_away_and_back,
     coalesce(bool_or(moved_one_sided) filter (where analyte = 'hb'), false)::int
         + coalesce(bool_or(moved_one_sided) filter (where analyte in ('na', 'cl')), false)::int
@@ -271,7 +283,8 @@ described as (
 )
 select
     sample_id,
-    string_agg(words, '; ' order by analyte) filter (where out_of_line or moved_one_sided) as words_changed,
+    string_agg(words, '; ' order by analyte) filter (where out_of_line or away_and_back or moved_one_sided)
+        as words_changed,
     string_agg(words, '; ' order by analyte) as words_all,
     json_group_object(analyte, json_object('value', value, 'previous', prev_value, 'next', next_value,
                                            'hours_since_previous', round(hours_since_prev, 1),

@@ -1,7 +1,7 @@
 -- A sample labelled arterial (or of unknown type) that looks venous, on strong evidence only:
 --   * PO2 in the venous range with a venous saturation while the pulse oximeter reads normal; or
---   * a PO2 in the venous range whose saturation is further below the simultaneous SpO2 than any
---     documented oximeter error.
+--   * a PO2 below $venous_pao2_max_mmhg (venous, mixed, or another patient's hypoxaemic blood) whose
+--     saturation is further below the simultaneous SpO2 than any documented oximeter error.
 -- The sample's saturation is the co-oximeter's functional saturation, else the adult curve's
 -- (neonatal blood with fetal haemoglobin has no curve reading). A smaller SpO2-SaO2 gap alone
 -- is not called venous: rule spo2_above_arterial_saturation notes it as possible occult
