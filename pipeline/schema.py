@@ -208,7 +208,8 @@ class RecordSpec:
     key_field: str  # one record per key; the same key with other values is a correction
     table: str
     superseded_table: str
-    convert_sql: str  # stage 1 (units, hard limits, row checks, content hash) -> stage_converted
+    convert_sql: str  # stage 1 (units, hard limits, row checks) -> stage_units
+    keys_sql: str  # stage 1b (pseudonyms, content hash) -> stage_converted
     merge_sql: str  # stage 3: into the kind's tables
     unique_keys_sql: str  # after stage 3: rows beyond one per key among the file's keys (must be 0)
     unit_sanity_sql: str | None  # file-level unit medians (pipeline.ingest.load.UNIT_SANITY)
@@ -239,6 +240,7 @@ SAMPLES = RecordSpec(
     table="records",
     superseded_table="superseded_records",
     convert_sql="ingest/10_convert.sql",
+    keys_sql="ingest/15_keys_and_hash.sql",
     merge_sql="ingest/40_merge.sql",
     unique_keys_sql="ingest/45_unique_keys.sql",
     unit_sanity_sql="ingest/20_unit_sanity.sql",
@@ -255,6 +257,7 @@ PRESCRIPTIONS = RecordSpec(
     table="prescriptions",
     superseded_table="superseded_prescriptions",
     convert_sql="ingest/10_convert_prescriptions.sql",
+    keys_sql="ingest/15_keys_and_hash_prescriptions.sql",
     merge_sql="ingest/40_merge_prescriptions.sql",
     unique_keys_sql="ingest/45_unique_keys_prescriptions.sql",
     unit_sanity_sql="ingest/20_unit_sanity_prescriptions.sql",

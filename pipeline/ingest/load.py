@@ -18,19 +18,16 @@ from __future__ import annotations
 
 import hashlib
 import json
-import queue
-import threading
-from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Protocol
 
 import duckdb
 import polars as pl
-import pyarrow as pa
 
 from pipeline.contract import ContractOutcome, keep_results, validate_stage
 from pipeline.errors import FileRejected
+from pipeline.ingest import engine
 from pipeline.ingest.parse import (
     FAILED,
     REASON,
@@ -38,6 +35,7 @@ from pipeline.ingest.parse import (
     UNIT_SUFFIX,
     ColumnPlan,
     FailureTally,
+    empty_notes,
     parse_batch,
     plan_columns,
 )
@@ -49,7 +47,16 @@ from pipeline.sql_files import read_sql, run_sql
 from pipeline.testhooks import pause_point
 
 UNIT_FIELDS = SAMPLES.unit_fields
-_STAGE_TABLES = ("stage_converted", "stage_repeats", "stage_set_aside", "stage_held")
+_STAGE_TABLES = (
+    "stage_units",
+    "stage_converted",
+    "stage_repeats",
+    "stage_set_aside",
+    "stage_held",
+    "stage_keys_patient",
+    "stage_keys_encounter",
+    "stage_keys_operator",
+)
 
 # Median of each field after conversion must fall here, or the declared unit is wrong for
 # the whole file (common practice: adult ranges, domain notes section 11).
@@ -116,26 +123,25 @@ def file_sha256(path: Path) -> str:
     return digest.hexdigest()
 
 
-def _stage_frame(values: pl.DataFrame, key: bytes, keep_patient_id: bool, record: RecordSpec) -> pl.DataFrame:
-    """Every canonical column of the kind present (NULL where unmapped), the pseudonym of
-    each identifier (raw identifiers dropped unless the site keeps them), plus per-row
-    unit columns."""
-    frame = values
-    for column, (output, domain) in PSEUDONYMISED.items():
-        if column not in record.fields_by_name:
-            continue
-        frame = add_pseudonym(frame, key, column, output, domain)
-        if not keep_patient_id and column in frame.columns:
-            frame = frame.with_columns(pl.lit(None, dtype=pl.String).alias(column))
+def _stage_frame(values: pl.DataFrame, record: RecordSpec, cells: pl.Series | None = None) -> pl.DataFrame:
+    """Rows the Python parser read, shaped as ``stage_input``: every canonical column of the
+    kind (NULL where unmapped), the per-row unit columns, and the stage bookkeeping columns
+    (``__usual`` NULL marks rows parsed in Python; ``__cells`` their cells as text, for the
+    quarantine)."""
     missing = [
-        pl.lit(None, dtype=POLARS_TYPES[f.kind]).alias(f.name) for f in record.fields if f.name not in frame.columns
+        pl.lit(None, dtype=POLARS_TYPES[f.kind]).alias(f.name) for f in record.fields if f.name not in values.columns
     ]
     units = [
         pl.lit(None, dtype=pl.String).alias(f"{n}{UNIT_SUFFIX}")
         for n in record.unit_fields
-        if f"{n}{UNIT_SUFFIX}" not in frame.columns
+        if f"{n}{UNIT_SUFFIX}" not in values.columns
     ]
-    return frame.with_columns(missing + units)
+    book = [
+        pl.lit(None, dtype=pl.Boolean).alias("__usual"),
+        (cells if cells is not None else pl.lit(None, dtype=pl.List(pl.String))).alias("__cells"),
+        pl.lit(None, dtype=pl.Int64).alias("__nonblank"),
+    ]
+    return values.with_columns(missing + units).with_columns(book)
 
 
 def _check_units(
@@ -206,73 +212,19 @@ class StagedFile:
     originals: pl.DataFrame  # source_row, original_text (cells as JSON) of every row with a reason
 
 
-@dataclass
-class _Prepared:
-    """One batch ready for DuckDB: its cells, its parse and the stage frame as Arrow."""
-
-    batch: RawExport
-    notes: pl.DataFrame
-    stage: pa.Table
+# Which parser types the cells: "sql" (DuckDB for the usual cells, the Python parser for
+# the rest: pipeline/ingest/engine.py) or "python" (the Python parser for every cell, the
+# way files were loaded before). Internal: tests/test_store_equivalence.py loads the demo
+# both ways and compares the stores row for row.
+PARSER = "sql"
 
 
-@dataclass
-class _Failed:
-    error: BaseException
-
-
-def _prepare(
-    reader: ExportReader | ParquetExport,
-    plan: ColumnPlan,
-    profile: Profile,
-    key: bytes,
-    keep_patient_id: bool,
-    tally: FailureTally,
-) -> Iterator[_Prepared]:
-    for batch in reader.batches():
-        if batch.restart:
-            tally.reset()
-        parsed = parse_batch(batch, profile, plan, tally)
-        stage = _stage_frame(parsed.values, key, keep_patient_id, profile.record)
-        yield _Prepared(batch, parsed.notes, stage.to_arrow(compat_level=pl.CompatLevel.newest()))
-
-
-def _ahead(items: Iterator[_Prepared]) -> Iterator[_Prepared]:
-    """Produce the next item in a thread while the caller works on this one.
-
-    Reading and parsing (polars, Python) overlap with staging (DuckDB); both release the
-    interpreter lock for their heavy work. At most one item waits, so memory stays bounded.
-    """
-    waiting: queue.Queue[_Prepared | _Failed | None] = queue.Queue(maxsize=1)
-    stop = threading.Event()
-
-    def put(item: _Prepared | _Failed | None) -> bool:
-        while not stop.is_set():
-            try:
-                waiting.put(item, timeout=0.1)
-                return True
-            except queue.Full:
-                continue
-        return False
-
-    def produce() -> None:
-        try:
-            for item in items:
-                if not put(item):
-                    return
-            put(None)
-        except BaseException as err:  # handed to the caller, raised there
-            put(_Failed(err))
-
-    worker = threading.Thread(target=produce, name="ingest-prepare", daemon=True)
-    worker.start()
-    try:
-        while (item := waiting.get()) is not None:
-            if isinstance(item, _Failed):
-                raise item.error
-            yield item
-    finally:
-        stop.set()
-        worker.join()
+def _convert_sql(con: duckdb.DuckDBPyConnection, record: RecordSpec, unit_params: dict[str, str | float]) -> tuple[
+    str, dict[str, str | float]
+]:
+    convert = read_sql(record.convert_sql).strip().rstrip(";")
+    used = con.extract_statements(convert)[0].named_parameters
+    return convert, {k: v for k, v in unit_params.items() if k in used}
 
 
 def _stage_file(
@@ -284,49 +236,219 @@ def _stage_file(
     keep_patient_id: bool,
     unit_params: dict[str, str | float],
 ) -> StagedFile:
-    """Parse the file batch by batch into the temp table ``stage_converted`` (canonical units,
-    hard limits, content hash per row); register ``stage_notes``. Memory stays bounded by
-    the batch size whatever the size of the file.
+    """Parse and convert the whole file into the temp table ``stage_converted`` (canonical
+    units, hard limits, pseudonyms, content hash per row) and register ``stage_notes``.
 
-    Raises FileRejected for a fault of the whole file, after every batch was counted.
+    DuckDB reads and types the file (``engine``); the Python reader and parser read only
+    what DuckDB cannot (see ``engine``). Raises FileRejected for a fault of the whole file.
     """
-    convert = read_sql(profile.record.convert_sql).strip().rstrip(";")
-    used = con.extract_statements(convert)[0].named_parameters
-    params = {k: v for k, v in unit_params.items() if k in used}
     tally = FailureTally(plan)
+    if PARSER == "python":
+        staged, notes = _stage_in_python(con, reader, plan, profile, unit_params, tally)
+    else:
+        staged, notes = _stage_in_sql(con, reader, plan, profile, unit_params, tally)
+    tally.check(reader.path)
+    con.register("stage_notes", notes.to_arrow())
+    _make_pseudonyms(con, key, profile.record)
+    run_sql(con, profile.record.keys_sql, keep_identifiers=keep_patient_id)
+    return staged
+
+
+def _make_pseudonyms(con: duckdb.DuckDBPyConnection, key: bytes, record: RecordSpec) -> None:
+    """``stage_keys_<name>`` (identifier, pseudonym) for each identifier column of the
+    samples' catalogue: every distinct identifier of the file hashed once
+    (``pipeline.pseudonym``); empty for identifiers the kind does not hold."""
+    for column, (_output, domain) in PSEUDONYMISED.items():
+        name = f"stage_keys_{column.removesuffix('_id')}"
+        if column in record.fields_by_name:
+            distinct = con.sql(f"select distinct {column} as identifier from stage_units where {column} is not null")
+            frame = add_pseudonym(distinct.pl(), key, "identifier", "pseudonym", domain)
+        else:
+            frame = pl.DataFrame(schema={"identifier": pl.String, "pseudonym": pl.String})
+        con.register(f"{name}_frame", frame.to_arrow())
+        try:
+            con.execute(f"create or replace temp table {name} as select * from {name}_frame")
+        finally:
+            con.unregister(f"{name}_frame")
+
+
+def _stage_in_sql(
+    con: duckdb.DuckDBPyConnection,
+    reader: ExportReader | ParquetExport,
+    plan: ColumnPlan,
+    profile: Profile,
+    unit_params: dict[str, str | float],
+    tally: FailureTally,
+) -> tuple[StagedFile, pl.DataFrame]:
+    """DuckDB reads the file and stage 1 SQL converts it into ``stage_units`` in one pass;
+    the rows with an unusual cell are then read by the Python parser and replace theirs."""
+    record = profile.record
+    convert, params = _convert_sql(con, record, unit_params)
+    malformed: list[tuple[int, str, str]] = []
+    parquet = isinstance(reader, ParquetExport)
+    read = False
+    if parquet:
+        relation = f"read_parquet({engine.sql_text(str(reader.path))}, file_row_number = true)"
+        described = con.execute(f"describe select * from {relation}").fetchall()
+        types = {str(r[0]): str(r[1]) for r in described}
+        refs = {h: engine.sql_name(h) for h in reader.header}
+        select, fallible = engine.parse_relation(
+            relation, refs, types, plan, profile, row="file_row_number + 1", keep_cells=False
+        )
+        try:
+            con.execute(f"create or replace temp view stage_input as {select}")
+            con.execute(f"create or replace temp table stage_units as {convert}", params)
+        except duckdb.Error as err:
+            raise FileRejected(
+                "PARQUET_CORRUPT", f"{reader.path.name}: not a readable Parquet file ({type(err).__name__})"
+            ) from None
+        read = True
+    elif isinstance(reader, ExportReader) and engine.duckdb_reads(profile):
+        relation, refs, types = engine.csv_relation(str(reader.path), reader.header, profile)
+        select, fallible = engine.parse_relation(relation, refs, types, plan, profile, row=None, keep_cells=True)
+        con.execute(f"create or replace temp view stage_input as {select}")
+        try:
+            con.execute(f"create or replace temp table stage_units as {convert}", params)
+            read = True
+        except duckdb.InvalidInputException:
+            pass  # a structural fault DuckDB will not read past: the Python reader names it
+    if not read:
+        assert isinstance(reader, ExportReader)
+        malformed, fallible = _stage_cells_of_reader(con, reader, plan, profile, convert, params)
+    con.execute("drop view if exists stage_input")
+    rows_in = con.execute("select count(*) from stage_units").fetchall()[0][0] + len(malformed)
+
+    # The unusual rows: parsed in Python, with the same stage 1 SQL.
+    unusual = con.sql(
+        "select coalesce(source_row, rowid + 1) as source_row, __cells from stage_units where not __usual "
+        "order by source_row"
+    ).pl()
+    notes = empty_notes()
+    if unusual.height:
+        rows = unusual.get_column("source_row")
+        if parquet:
+            assert isinstance(reader, ParquetExport)
+            cells = reader.read_rows(rows.to_list())
+            kept = None
+        else:
+            cells = _cells_frame(unusual, reader.header)
+            kept = unusual.get_column("__cells")
+        parsed = parse_batch(RawExport(path=reader.path, cells=cells, header=reader.header), profile, plan, tally)
+        notes = parsed.notes
+        frame = _stage_frame(parsed.values, record, kept)
+        con.register("stage_input", frame.to_arrow(compat_level=pl.CompatLevel.newest()))
+        try:
+            con.execute(f"insert into stage_units by name {convert}", params)
+        finally:
+            con.unregister("stage_input")
+        if tally.failures:
+            bits = ", ".join(f"sum((__nonblank >> {i}) & 1)::bigint" for i in range(len(fallible)))
+            counts = con.execute(f"select {bits} from stage_units where __usual").fetchall()[0]
+            tally.add_non_empty({s: int(n or 0) for s, n in zip(fallible, counts, strict=True)})
+
+    # Original text of every quarantined row.
+    bad = con.sql(
+        "select coalesce(source_row, rowid + 1) as source_row, __cells from stage_units "
+        "where reason_code is not null and __usual is distinct from false order by source_row"
+    ).pl()
+    if parquet and bad.height:
+        assert isinstance(reader, ParquetExport)
+        picked = reader.read_rows(bad.get_column("source_row").to_list())
+        originals = _original_cells(picked, bad.get_column("source_row").to_list())
+    elif bad.height:
+        originals = _original_cells(_cells_frame(bad, reader.header), bad.get_column("source_row").to_list())
+    else:
+        originals = pl.DataFrame(schema={"source_row": pl.Int64, "original_text": pl.String})
+    return StagedFile(rows_in=rows_in, malformed=malformed, originals=originals), notes
+
+
+def _cells_frame(rows: pl.DataFrame, header: list[str]) -> pl.DataFrame:
+    """Cells kept as a list per row (``__cells``) as a frame: ROW plus one text column per header."""
+    return rows.select(
+        pl.col("source_row").cast(pl.Int64).alias(ROW),
+        *[pl.col("__cells").list.get(i).alias(h) for i, h in enumerate(header)],
+    )
+
+
+def _stage_cells_of_reader(
+    con: duckdb.DuckDBPyConnection,
+    reader: ExportReader,
+    plan: ColumnPlan,
+    profile: Profile,
+    convert: str,
+    params: dict[str, str | float],
+) -> tuple[list[tuple[int, str, str]], list[str]]:
+    """The Python reader's cells (a file DuckDB does not read), batch by batch, through the
+    same SQL parse and stage 1 SQL into ``stage_units``; returns the malformed records."""
+    malformed: list[tuple[int, str, str]] = []
+    fallible: list[str] = []
+    first = True
+    for batch in reader.batches():
+        if batch.restart:  # the file is read again record by record: forget the batches so far
+            malformed, first = [], True
+        malformed += batch.malformed
+        refs = {h: engine.sql_name(h) for h in reader.header}
+        types = dict.fromkeys(reader.header, "VARCHAR")
+        select, fallible = engine.parse_relation(
+            "stage_cells_batch", refs, types, plan, profile, row=engine.sql_name(ROW), keep_cells=True
+        )
+        con.register("stage_cells_batch", batch.cells.to_arrow())
+        try:
+            con.execute(f"create or replace temp view stage_input as {select}")
+            target = "create or replace temp table stage_units as" if first else "insert into stage_units by name"
+            con.execute(f"{target}\n{convert}", params)
+        finally:
+            con.execute("drop view if exists stage_input")
+            con.unregister("stage_cells_batch")
+        first = False
+    return malformed, fallible
+
+
+def _stage_in_python(
+    con: duckdb.DuckDBPyConnection,
+    reader: ExportReader | ParquetExport,
+    plan: ColumnPlan,
+    profile: Profile,
+    unit_params: dict[str, str | float],
+    tally: FailureTally,
+) -> tuple[StagedFile, pl.DataFrame]:
+    """Every cell through the Python reader and parser, batch by batch (``PARSER = "python"``)."""
+    convert, params = _convert_sql(con, profile.record, unit_params)
     rows_in = 0
     malformed: list[tuple[int, str, str]] = []
-    notes: list[pl.DataFrame] = []
+    notes: list[pl.DataFrame] = [empty_notes()]
     originals: list[pl.DataFrame] = []
     first = True
-    for prepared in _ahead(_prepare(reader, plan, profile, key, keep_patient_id, tally)):
-        batch = prepared.batch
+    for batch in reader.batches():
         if batch.restart:  # the file is read again record by record: forget the batches so far
-            rows_in, malformed, notes, originals, first = 0, [], [], [], True
+            tally.reset()
+            rows_in, malformed, notes, originals, first = 0, [], [empty_notes()], [], True
+        parsed = parse_batch(batch, profile, plan, tally)
         rows_in += batch.cells.height + len(batch.malformed)
         malformed += batch.malformed
-        notes.append(prepared.notes)
-        con.register("stage_input", prepared.stage)
-        target = "create or replace temp table stage_converted as" if first else "insert into stage_converted"
-        con.execute(f"{target}\n{convert}", params)
+        notes.append(parsed.notes)
+        con.register("stage_input", _stage_frame(parsed.values, profile.record).to_arrow())
+        try:
+            target = "create or replace temp table stage_units as" if first else "insert into stage_units by name"
+            con.execute(f"{target}\n{convert}", params)
+        finally:
+            con.unregister("stage_input")
         first = False
         if batch.cells.height:
             rows = batch.cells.get_column(ROW)
             bad = con.execute(
-                "select source_row from stage_converted "
+                "select source_row from stage_units "
                 "where source_row between ? and ? and reason_code is not null order by source_row",
                 [rows.min(), rows.max()],
             ).fetchall()
             if bad:
                 originals.append(_original_cells(batch.cells, [r[0] for r in bad]))
-    tally.check(reader.path)
-    con.register("stage_notes", pl.concat(notes).to_arrow())
     original = (
         pl.concat(originals)
         if originals
         else pl.DataFrame(schema={"source_row": pl.Int64, "original_text": pl.String})
     )
-    return StagedFile(rows_in=rows_in, malformed=malformed, originals=original)
+    return StagedFile(rows_in=rows_in, malformed=malformed, originals=original), pl.concat(notes)
 
 
 def _original_cells(cells: pl.DataFrame, rows: list[int]) -> pl.DataFrame:

@@ -312,6 +312,12 @@ class FailureTally:
             for reason, count in reasons.iter_rows():
                 tally[reason] += count
 
+    def add_non_empty(self, by_source: dict[str, int]) -> None:
+        """Add the non-empty cells of rows counted elsewhere (rows parsed in SQL, which
+        cannot fail), by source header, to every column that can fail."""
+        for column in self.order:
+            self.non_empty[column] += by_source.get(self.source_of(column), 0)
+
     def check(self, path: Path) -> None:
         """FileRejected when a column fails in (nearly) every row: a fault of the whole file."""
         for column in self.order:
@@ -523,13 +529,18 @@ def _value_notes(raw: RawExport, typed: pl.DataFrame, number_fields: list[str], 
         )
         parts.append(part.with_columns(original))
     if not parts:
-        return pl.DataFrame(
-            schema={
-                ROW: pl.Int64,
-                "field": pl.String,
-                "comparator": pl.String,
-                "result_status": pl.String,
-                "original_text": pl.String,
-            }
-        )
+        return empty_notes()
     return pl.concat(parts)
+
+
+def empty_notes() -> pl.DataFrame:
+    """A frame of value notes with no rows."""
+    return pl.DataFrame(
+        schema={
+            ROW: pl.Int64,
+            "field": pl.String,
+            "comparator": pl.String,
+            "result_status": pl.String,
+            "original_text": pl.String,
+        }
+    )

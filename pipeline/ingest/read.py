@@ -259,7 +259,7 @@ class ExportReader:
 
     def _split_slowly(self, restart: bool) -> RawExport:
         if isinstance(self.source, Path):
-            text = _read_bytes(self.path)[self.skip :].decode("utf-8")
+            text = _read_bytes(self.source)[self.skip :].decode("utf-8")
         else:
             text = self.source.decode("utf-8")
         rows, numbers, malformed = _slow_split(text, self.header, self.profile)
@@ -296,7 +296,7 @@ def open_export(path: Path, profile: Profile) -> ExportReader | ParquetExport:
     whole-file faults (empty, wrong encoding, wrong delimiter, duplicated columns)."""
     size = _stat_size(path)
     if profile.format == "parquet":
-        return ParquetExport(_read_parquet(path))
+        return ParquetExport(path, _parquet_header(path))
     try:
         with path.open("rb") as handle:
             head = handle.read(_HEAD_BYTES)
@@ -346,33 +346,36 @@ def open_export(path: Path, profile: Profile) -> ExportReader | ParquetExport:
 
 @dataclass
 class ParquetExport:
-    """A Parquet export (typed columns), handed out in batches like a CSV export."""
+    """A Parquet export (typed columns), handed out in batches like a CSV export. Only the
+    schema is read when the file is opened; the rows when they are asked for."""
 
-    raw: RawExport
-
-    @property
-    def path(self) -> Path:
-        return self.raw.path
-
-    @property
-    def header(self) -> list[str]:
-        return self.raw.header
-
-    @property
-    def notes(self) -> list[str]:
-        return self.raw.notes
+    path: Path
+    header: list[str]
+    notes: list[str] = field(default_factory=list)
 
     def batches(self, batch_rows: int | None = None) -> Iterator[RawExport]:
+        raw = self.read_all()
         size = batch_rows or BATCH_ROWS
-        cells = self.raw.cells
+        cells = raw.cells
         if cells.height <= size:
-            yield self.raw
+            yield raw
             return
         for start in range(0, cells.height, size):
-            yield replace(self.raw, cells=cells.slice(start, size))
+            yield replace(raw, cells=cells.slice(start, size))
 
     def read_all(self) -> RawExport:
-        return self.raw
+        return _read_parquet(self.path)
+
+    def read_rows(self, rows: list[int]) -> pl.DataFrame:
+        """The cells of the given records (1-based numbers), as ``read_all`` would give them."""
+        try:
+            frame = pl.scan_parquet(self.path).with_row_index(ROW, offset=1)
+            picked = frame.filter(pl.col(ROW).is_in(rows)).collect()
+        except Exception as err:
+            raise FileRejected(
+                "PARQUET_CORRUPT", f"{self.path.name}: not a readable Parquet file ({type(err).__name__})"
+            ) from None
+        return picked.with_columns(pl.col(ROW).cast(pl.Int64))
 
 
 def read_export(path: Path, profile: Profile) -> RawExport:
@@ -380,16 +383,27 @@ def read_export(path: Path, profile: Profile) -> RawExport:
     return open_export(path, profile).read_all()
 
 
+def _parquet_header(path: Path) -> list[str]:
+    """The column names of a Parquet export, from its footer; FileRejected when it cannot be
+    read or two names differ only by case."""
+    try:
+        header = list(pl.read_parquet_schema(path))
+    except Exception as err:
+        detail = type(err).__name__
+        raise FileRejected("PARQUET_CORRUPT", f"{path.name}: not a readable Parquet file ({detail})") from None
+    folded = [h.casefold() for h in header]
+    dupes = sorted({h for h, f in zip(header, folded, strict=True) if folded.count(f) > 1})
+    if dupes:
+        raise FileRejected("DUPLICATE_COLUMN", f"{path.name}: columns differ only by case: {', '.join(dupes)}")
+    return header
+
+
 def _read_parquet(path: Path) -> RawExport:
+    header = _parquet_header(path)
     try:
         frame = pl.read_parquet(path)
     except Exception as err:
         detail = type(err).__name__
         raise FileRejected("PARQUET_CORRUPT", f"{path.name}: not a readable Parquet file ({detail})") from None
-    header = frame.columns
-    folded = [h.casefold() for h in header]
-    dupes = sorted({h for h, f in zip(header, folded, strict=True) if folded.count(f) > 1})
-    if dupes:
-        raise FileRejected("DUPLICATE_COLUMN", f"{path.name}: columns differ only by case: {', '.join(dupes)}")
     cells = frame.with_row_index(ROW, offset=1).with_columns(pl.col(ROW).cast(pl.Int64))
     return RawExport(path=path, cells=cells, header=header)

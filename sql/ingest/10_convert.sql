@@ -1,22 +1,26 @@
--- Stage 1 of loading one export file: canonical units, hard limits and a content hash,
--- row by row. The loader runs this SELECT once per batch of the file, as
--- "create or replace temp table stage_converted as ..." for the first batch and
--- "insert into stage_converted ..." for the others, so the file never has to fit in memory.
--- Input: view stage_input (one batch of parsed records, values in the profile's units,
--- per-row unit columns <field>__unit where the profile names one, else NULL).
+-- Stage 1 of loading one export file: canonical units, hard limits and row checks, row by
+-- row, into the temp table stage_units (pseudonyms and the content hash follow in
+-- 15_keys_and_hash.sql, which needs the file's distinct identifiers). The loader runs this
+-- SELECT as "create or replace temp table stage_units as ..." over the whole file parsed in
+-- SQL (pipeline/ingest/engine.py), then as "insert into stage_units ..." for the rows the
+-- Python parser read (the unusual ones).
+-- Input: view stage_input (parsed records, values in the profile's units, per-row unit
+-- columns <field>__unit where the profile names one, else NULL; __usual = every cell parsed
+-- in SQL, __cells = the row's cells as text, __nonblank = bit mask of its non-blank cells).
 -- Parameters: $unit_<field> = the unit the profile declares for that field.
 -- Hard limits: temp table field_limits (canonical units, pipeline/schema.py); a parsed row
 -- with any value outside them gets reason IMPLAUSIBLE and every such field, in name order,
 -- in failed_columns.
 -- record_id: the row's key under the name every record kind shares (30_classify.sql).
--- Grain: one row per data record of the batch.
+-- __cells is kept only for rows that are quarantined or were not parsed in SQL: the
+-- quarantine keeps their original text.
+-- Grain: one row per data record.
 with converted as (
     select
         __row as source_row,
         sample_id,
         sample_id as record_id,
         patient_id,
-        patient_key,
         unit,
         analyser_id,
         age_years,
@@ -51,7 +55,6 @@ with converted as (
         peep_cmh2o,
         hypercapnic_risk,
         encounter_id,
-        encounter_key,
         saturation_to_pct(target_spo2_low_pct, coalesce(target_spo2_low_pct__unit, $unit_target_spo2_low_pct))
             as target_spo2_low_pct,
         saturation_to_pct(target_spo2_high_pct, coalesce(target_spo2_high_pct__unit, $unit_target_spo2_high_pct))
@@ -59,10 +62,12 @@ with converted as (
         o2_prescribed,
         collection_method,
         operator_id,
-        operator_key,
         __status as result_status,
         __reason as parse_reason,
-        __failed as parse_failed
+        __failed as parse_failed,
+        __usual,
+        __cells,
+        __nonblank
     from stage_input
 ),
 limits as (
@@ -152,28 +157,8 @@ checked as (
     cross join limits as l
 )
 select
-    * exclude (limits_failed),
+    * exclude (limits_failed, __cells),
     coalesce(parse_reason, case when limits_failed is not null then 'IMPLAUSIBLE' end) as reason_code,
     coalesce(parse_failed, limits_failed) as failed_columns,
-    -- Fields added later join the hash only when present, so a record without them keeps the
-    -- hash it had before they existed and a re-delivery is still a duplicate, not a correction.
-    -- Identifiers other than the patient's are hashed by pseudonym (the raw id may not be kept).
-    case
-        when encounter_key is null and target_spo2_low_pct is null and target_spo2_high_pct is null
-             and o2_prescribed is null and collection_method is null and operator_key is null
-        then hash(patient_id, unit, analyser_id, age_years, birth_date, collected_at, resulted_at,
-                  sample_type, o2_device, o2_flow_l_min, fio2, barometric_pressure_mmhg, temperature_c,
-                  ph, paco2_mmhg, pao2_mmhg, hco3_mmol_l, base_excess_mmol_l, sao2_pct,
-                  sao2_is_calculated, spo2_pct, hb_g_dl, na_mmol_l, k_mmol_l, cl_mmol_l,
-                  lactate_mmol_l, mean_airway_pressure_cmh2o, peep_cmh2o, hypercapnic_risk,
-                  result_status, glucose_mmol_l, cohb_pct, methb_pct)
-        else hash(patient_id, unit, analyser_id, age_years, birth_date, collected_at, resulted_at,
-                  sample_type, o2_device, o2_flow_l_min, fio2, barometric_pressure_mmhg, temperature_c,
-                  ph, paco2_mmhg, pao2_mmhg, hco3_mmol_l, base_excess_mmol_l, sao2_pct,
-                  sao2_is_calculated, spo2_pct, hb_g_dl, na_mmol_l, k_mmol_l, cl_mmol_l,
-                  lactate_mmol_l, mean_airway_pressure_cmh2o, peep_cmh2o, hypercapnic_risk,
-                  result_status, glucose_mmol_l, cohb_pct, methb_pct,
-                  encounter_key, target_spo2_low_pct, target_spo2_high_pct, o2_prescribed,
-                  collection_method, operator_key)
-    end as content_hash
+    case when not __usual or parse_reason is not null or limits_failed is not null then __cells end as __cells
 from checked;

@@ -1,8 +1,9 @@
 -- Stage 1 of loading one oxygen prescriptions file (the prescription counterpart of
--- 10_convert.sql, run the same way, batch by batch, into stage_converted): canonical units,
--- row checks and a content hash.
--- Input: view stage_input (one batch of parsed prescriptions, values in the profile's units,
--- per-row unit columns <field>__unit where the profile names one, else NULL).
+-- 10_convert.sql, run the same way, into stage_units): canonical units and row checks;
+-- pseudonyms and the content hash follow in 15_keys_and_hash_prescriptions.sql.
+-- Input: view stage_input (parsed prescriptions, values in the profile's units, per-row
+-- unit columns <field>__unit where the profile names one, else NULL; __usual, __cells,
+-- __nonblank as in 10_convert.sql).
 -- Parameters: $unit_<field> = the unit the profile declares for that field;
 -- $target_min_pct, $target_max_pct = the bounds of a prescribed SpO2 target
 -- (pipeline/schema.py TARGET_RANGE_PCT).
@@ -20,9 +21,7 @@ with converted as (
         prescription_id,
         prescription_id as record_id,
         patient_id,
-        patient_key,
         encounter_id,
-        encounter_key,
         unit,
         start_at,
         end_at,
@@ -35,7 +34,10 @@ with converted as (
         fio2_to_fraction(fio2, coalesce(fio2__unit, $unit_fio2)) as fio2,
         prescriber_role,
         __reason as parse_reason,
-        __failed as parse_failed
+        __failed as parse_failed,
+        __usual,
+        __cells,
+        __nonblank
     from stage_input
 ),
 limits as (
@@ -67,7 +69,7 @@ checked as (
     cross join limits as l
 )
 select
-    * exclude (range_failed, limits_failed, end_failed),
+    * exclude (range_failed, limits_failed, end_failed, __cells),
     coalesce(
         parse_reason,
         case when range_failed is not null then 'TARGET_RANGE_INVALID' end,
@@ -75,7 +77,9 @@ select
         case when end_failed is not null then 'END_BEFORE_START' end
     ) as reason_code,
     coalesce(parse_failed, nullif(concat_ws('; ', range_failed, limits_failed, end_failed), '')) as failed_columns,
-    -- The patient and encounter by pseudonym: the raw identifiers may not be kept.
-    hash(patient_key, encounter_key, unit, start_at, end_at, target_spo2_low_pct, target_spo2_high_pct,
-         o2_device, o2_flow_l_min, fio2, prescriber_role) as content_hash
+    case
+        when not __usual or parse_reason is not null or range_failed is not null or limits_failed is not null
+             or end_failed is not null
+        then __cells
+    end as __cells
 from checked;
