@@ -309,3 +309,38 @@ def test_rates_by_adult_age_band(tmp_path):
     assert table[("above_target_on_oxygen", "80 and over")] == (0, 0)
     overall = rates(con, "sample")["hypoxaemia"]
     assert overall == (2, 5)  # the bands add up to the adult rate; the child is outside it
+
+
+def test_internal_outputs_use_their_own_threshold_and_the_store_keeps_publication(tmp_path):
+    from pipeline.log import Log
+    from pipeline.publish import build_and_write
+    from pipeline.rules import load_catalogue
+
+    config = dataclasses.replace(audit_config(tmp_path, k=11), internal_small_cell_threshold=3)
+    # 30 samples of Ward A, 5 hypoxaemic: the 5 is a small count for publication (k 11), not internally (k 3)
+    rows = [
+        record(f"S{i}", patient_id=f"P{i}", collected_at=at(i), **(HYPOXAEMIC if i < 5 else WITHIN), **ON_OXYGEN)
+        for i in range(30)
+    ]
+    con = build_store(tmp_path, rows, config)
+    written = build_and_write(con, config, load_catalogue(config.thresholds), RUN_ID, Log(quiet=True))
+    internal = config.output_folder / "internal"
+    assert any(internal in p.parents for p in written) and any(p.parent == config.output_folder for p in written)
+
+    def hypoxaemia(folder) -> tuple[int | None, int | None]:
+        import polars as pl
+
+        got = pl.read_parquet(folder / "tables" / "audit_rates.parquet").filter(
+            (pl.col("measure") == "hypoxaemia") & pl.col("all_periods") & (pl.col("unit") == "Ward A")
+        )
+        return got.select("numerator", "denominator").row(0)
+
+    assert hypoxaemia(internal) == (5, 30)  # hand-counted
+    assert hypoxaemia(config.output_folder) == (None, 30)
+    # the store holds the publication tables (built last)
+    stored = con.execute(
+        "select numerator from audit_rates where measure = 'hypoxaemia' and unit = 'Ward A' and all_periods"
+    ).fetchall()
+    assert stored == [(None,)]
+    html = (internal / "audit_report.html").read_text(encoding="utf-8")
+    assert "INTERNAL" in html and "not for release" in html
