@@ -26,16 +26,26 @@ from pipeline.errors import ConfigError
 
 KEY_ENV = "ABG_AUDIT_PSEUDONYM_KEY"
 PSEUDONYM_CHARS = 32
+# The key is text (UTF-8), used as the HMAC key as written: one line, surrounding white space
+# ignored. 32 characters is 128 bits when they are random hex digits, the strength of the
+# 128-bit pseudonyms; a shorter key is a weaker secret than the pseudonyms it protects.
+MIN_KEY_CHARS = 32
+KEY_FORMAT_HELP = (
+    f"The pseudonym key is one line of text, at least {MIN_KEY_CHARS} characters, random and kept secret "
+    f"(for example the output of: python3 -c 'import secrets; print(secrets.token_hex(32))'), in the file "
+    f"[privacy] key_file (mode 600, outside the store folder) or in ${KEY_ENV}. Changing it changes every "
+    "pseudonym."
+)
 
 
 def load_key(key_file: Path | None, *, create: bool = False) -> bytes:
-    """The secret key: from ``$ABG_AUDIT_PSEUDONYM_KEY``, else the key file.
+    """The secret key: from ``$ABG_AUDIT_PSEUDONYM_KEY``, else the key file (``KEY_FORMAT_HELP``).
 
     ``create`` makes a new random key file (owner-only) when none exists; the demo uses it.
     """
     env = os.environ.get(KEY_ENV)
     if env:
-        return env.encode("utf-8")
+        return _checked(env.strip(), KEY_ENV)
     if key_file is None:
         raise ConfigError(f"no pseudonym key: set {KEY_ENV} or [privacy] key_file in the site configuration")
     if not key_file.exists():
@@ -48,9 +58,17 @@ def load_key(key_file: Path | None, *, create: bool = False) -> bytes:
     mode = key_file.stat().st_mode
     if mode & 0o077:
         raise ConfigError(f"pseudonym key file {key_file} is readable by others; run chmod 600 on it")
-    key = key_file.read_text(encoding="utf-8").strip()
-    if len(key) < 16:
-        raise ConfigError(f"pseudonym key file {key_file} holds fewer than 16 characters")
+    return _checked(key_file.read_text(encoding="utf-8").strip(), f"pseudonym key file {key_file}")
+
+
+def _checked(key: str, where: str) -> bytes:
+    """The key as HMAC key bytes, refused when too short to be a secret (never quoted)."""
+    if len(key) < MIN_KEY_CHARS:
+        raise ConfigError(
+            f"{where}: the pseudonym key has {len(key)} characters, fewer than the {MIN_KEY_CHARS} required; "
+            "make a new one with: python3 -c 'import secrets; print(secrets.token_hex(32))' "
+            "(a new key changes every pseudonym)"
+        )
     return key.encode("utf-8")
 
 

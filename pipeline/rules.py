@@ -26,6 +26,11 @@ CATALOGUE_PATH = Path(__file__).resolve().parent / "catalogue.toml"
 KINDS = ("data_quality", "documentation", "clinical", "analyser_qc")
 SEVERITIES = ("high", "medium", "low", "info")
 _RESERVED = {"rule_id", "rule_kind", "default_severity", "run_id"}
+# Parameter names that pair a lower limit with a higher one: a name with the first word is
+# the lower limit of the name with the second word in its place (warn_minutes <=
+# strong_minutes, pao2_min_mmhg <= pao2_max_mmhg, target_low <= target_high).
+_ORDERED_WORDS = (("warn", "strong"), ("moderate", "severe"), ("low", "high"), ("min", "max"))
+_LIMIT_NAMES = {"warn": "warning", "min": "minimum", "max": "maximum"}
 
 
 @dataclass(frozen=True)
@@ -92,9 +97,35 @@ def load_catalogue(overrides: dict[str, Any] | None = None, path: Path = CATALOG
         )
     if overrides:
         raise ConfigError(f"[thresholds] names unknown rules: {', '.join(sorted(overrides))}")
+    _check_order(derive, "[thresholds.derive]")
+    for rule in rules:
+        _check_order(rule.parameters, f"[thresholds.{rule.id}]")
     effective = json.dumps({"derive": derive, "rules": [(r.id, r.parameters) for r in rules]}, sort_keys=True)
     digest = hashlib.sha256(data + effective.encode()).hexdigest()
     return Catalogue(version=str(raw["version"]), sha256=digest, derive=derive, rules=tuple(rules))
+
+
+def _check_order(parameters: dict[str, Any], section: str) -> None:
+    """A lower limit above its higher one (a warning above its strong limit, a low above a
+    high) is a contradiction no rule can apply: a configuration error naming both keys."""
+    for name, lower in parameters.items():
+        words = name.split("_")
+        for low_word, high_word in _ORDERED_WORDS:
+            if low_word not in words:
+                continue
+            partner = "_".join(high_word if w == low_word else w for w in words)
+            higher = parameters.get(partner)
+            if _number(lower) and _number(higher) and lower > higher:
+                raise ConfigError(
+                    f"{section} {name} = {lower} is above {partner} = {higher}: the "
+                    f"{_LIMIT_NAMES.get(low_word, low_word)} limit must not exceed the "
+                    f"{_LIMIT_NAMES.get(high_word, high_word)} one; change one of the two "
+                    "(`abg-audit rules` shows the defaults)"
+                )
+
+
+def _number(value: Any) -> bool:
+    return isinstance(value, (int, float)) and not isinstance(value, bool)
 
 
 def _like(default: Any, value: Any, where: str) -> Any:
