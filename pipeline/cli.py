@@ -18,6 +18,7 @@ import click
 
 from pipeline import __version__
 from pipeline.errors import PipelineError
+from pipeline.pseudonym import KEY_FORMAT_HELP
 
 EXIT_CODES_HELP = """\b
 Exit codes (BSD sysexits):
@@ -30,6 +31,59 @@ Exit codes (BSD sysexits):
   78  configuration error: site configuration, profile, pseudonym key or folder permissions"""
 
 DEBUG_ENV = "ABG_AUDIT_DEBUG"
+RUN_EPILOG = f"{KEY_FORMAT_HELP}\n\n{EXIT_CODES_HELP}"
+
+
+def _silence_closed_pipe() -> None:
+    """The reader of our output went away (``abg-audit rules | head``): point stdout at
+    /dev/null so the interpreter's final flush cannot fail again and print a traceback."""
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+    except (OSError, ValueError):
+        pass  # stdout is not a file descriptor (a test runner's buffer): nothing to flush
+
+
+class _PipeSafe:
+    """A log stream that stops writing when its reader goes away instead of failing the run:
+    a run whose log was piped into ``head`` still finishes its work and exits with its code."""
+
+    def __init__(self, stream: Any) -> None:
+        self._stream = stream
+        self._closed = False
+
+    def write(self, text: str) -> int:
+        if not self._closed:
+            try:
+                return self._stream.write(text)
+            except BrokenPipeError:
+                self._closed = True
+        return len(text)
+
+    def flush(self) -> None:
+        if not self._closed:
+            try:
+                self._stream.flush()
+            except BrokenPipeError:
+                self._closed = True
+
+    def isatty(self) -> bool:
+        return not self._closed and self._stream.isatty()
+
+
+def _log(log_format: str) -> Any:
+    from pipeline.log import Log
+
+    return Log(log_format, stream=_PipeSafe(sys.stderr))
+
+
+def _echo_summary(print_summary: Callable[[], None]) -> None:
+    """Print the end-of-run summary; a closed pipe loses the summary, never the run's exit code."""
+    try:
+        print_summary()
+        sys.stdout.flush()
+    except BrokenPipeError:
+        _silence_closed_pipe()
 
 
 def _where(err: BaseException) -> str:
@@ -52,10 +106,19 @@ def handle_errors(func: Callable[..., Any]) -> Callable[..., Any]:
     @functools.wraps(func)
     def wrapper(*args: Any, **kwargs: Any) -> Any:
         try:
-            return func(*args, **kwargs)
+            try:
+                return func(*args, **kwargs)
+            finally:
+                sys.stdout.flush()  # a reader that went away shows here, while it can still be handled
         except PipelineError as err:
             click.echo(f"error: {err}", err=True)
             sys.exit(err.exit_code)
+        except click.ClickException:
+            raise  # usage errors: click prints them and exits 2
+        except BrokenPipeError:
+            # Whoever read the output has what they wanted (`abg-audit rules | head`): not an error.
+            _silence_closed_pipe()
+            sys.exit(0)
         except OSError as err:
             if os.environ.get(DEBUG_ENV):
                 raise
@@ -114,7 +177,7 @@ def main() -> None:
     os.umask(0o077)  # the store, its write-ahead log and spill files hold identifiers: owner only
 
 
-@main.command(epilog=EXIT_CODES_HELP)
+@main.command(epilog=RUN_EPILOG)
 @config_option
 @store_option
 @output_option
@@ -142,13 +205,12 @@ def run(config_path: Path, store: Path | None, output: Path | None, log_format: 
       abg-audit run --config site.toml --rebuild --log-format json
     """
     from pipeline.config import load_config
-    from pipeline.log import Log
     from pipeline.run import run_pipeline
     from pipeline.summary import print_run_summary
 
     config = load_config(config_path, store=store, output=output)
-    result = run_pipeline(config, Log(log_format), rebuild=rebuild)
-    print_run_summary(result, config)
+    result = run_pipeline(config, _log(log_format), rebuild=rebuild)
+    _echo_summary(lambda: print_run_summary(result, config))
     sys.exit(result.exit_code)
 
 
@@ -177,14 +239,21 @@ def report(config_path: Path, store: Path | None, output: Path | None, period: s
 
     from pipeline.audit_settings import DEFAULT_HISTORY
     from pipeline.config import load_config
-    from pipeline.log import Log
+    from pipeline.reload import warn_outdated
     from pipeline.report import REPORT_NAME, rebuild_outputs
+    from pipeline.store import open_store
 
     config = load_config(config_path, store=store, output=output)
     if period and period != config.audit.period:
         audit = dataclasses.replace(config.audit, period=period, history_periods=DEFAULT_HISTORY[period])
         config = dataclasses.replace(config, audit=audit)
-    written = rebuild_outputs(config, Log(log_format))
+    log = _log(log_format)
+    written = rebuild_outputs(config, log)
+    con = open_store(config.store_path, read_only=True)
+    try:
+        warn_outdated(con, config, log)
+    finally:
+        con.close()
     click.echo(f"{len(written)} files written; report: {config.output_folder / REPORT_NAME}")
     click.echo("  Audit aid only, not a diagnostic device; thresholds follow local policy and clinical judgement.")
 
@@ -220,16 +289,15 @@ def demo(rows: int, seed: int, workdir: Path, log_format: str) -> None:
     from pipeline.config import load_config
     from pipeline.demo import prepare_demo
     from pipeline.detection import detection_tables, format_report, lookalikes_beside, read_truth
-    from pipeline.log import Log
     from pipeline.run import run_pipeline
     from pipeline.store import open_store
     from pipeline.summary import print_run_summary
 
-    log = Log(log_format)
+    log = _log(log_format)
     config_path = prepare_demo(workdir, rows=rows, seed=seed, log=log)
     config = load_config(config_path)
     result = run_pipeline(config, log, command="demo", create_key=True)
-    print_run_summary(result, config)
+    _echo_summary(lambda: print_run_summary(result, config))
     truth = workdir / "exports" / "ground_truth.parquet"
     lookalikes = lookalikes_beside(truth)
     con = open_store(config.store_path, read_only=True)
@@ -293,6 +361,11 @@ def format_run(run: dict[str, Any]) -> str:
         lines.append(f"    error: {run['error']}")
     if run["outcome"] == "interrupted":
         lines.append("    interrupted (killed or lost power); a later run finished its work")
+    if run.get("flags_data_quality") is not None:
+        lines.append(
+            f"    flags on the samples checked: {run['flags_data_quality']} data quality (for the laboratory to "
+            f"review), {run['flags_documentation']} documentation, {run['flags_clinical']} clinical"
+        )
     details = []
     if run.get("catalogue_version"):
         details.append(f"rules v{run['catalogue_version']} ({str(run.get('catalogue_sha256'))[:12]})")
@@ -307,23 +380,27 @@ def format_run(run: dict[str, Any]) -> str:
     return "\n".join(lines)
 
 
-@main.command("check-profile")
+@main.command("check-profile", epilog=EXIT_CODES_HELP)
 @click.argument("profile_path", type=click.Path(dir_okay=False, path_type=Path))
 @click.argument("export_files", nargs=-1, type=click.Path(dir_okay=False, path_type=Path))
 @handle_errors
 def check_profile(profile_path: Path, export_files: tuple[Path, ...]) -> None:
-    """Check a mapping profile, and optionally try it on export files without loading them.
+    """Check a mapping profile, and try it on export files exactly as a run would load them.
 
-    For each file, prints whether it would be rejected and how many rows would parse or
-    be quarantined (before unit conversion and duplicate checks). Nothing is written.
+    Each file is loaded into a scratch store held in memory (the site's store is not
+    touched, nothing is kept): the same checks as a run (dialect, columns, codes, dates and
+    time zone, unit sanity, the batch contract, quarantine, duplicates), with the same
+    messages. A unit declared wrongly (kPa declared as mmHg, FiO2 in percent declared as a
+    fraction) rejects the file here as it would on the first night. Pseudonyms are made with
+    a throwaway key; no identifier or value is printed. Exits 65 when a file would be
+    rejected, 66 when a file does not exist.
 
     \b
     Example:
       abg-audit check-profile profiles/demo_us_style.toml exports/2026-11-30.csv
     """
-    from pipeline.errors import FileRejected
-    from pipeline.ingest.parse import REASON, parse_export
-    from pipeline.ingest.read import read_export
+    from pipeline.errors import NoInputError
+    from pipeline.preflight import try_profile
     from pipeline.profile import load_profile
 
     profile = load_profile(profile_path)
@@ -332,22 +409,89 @@ def check_profile(profile_path: Path, export_files: tuple[Path, ...]) -> None:
         f"delimiter {profile.delimiter!r}, decimal mark {profile.decimal_mark!r}, "
         f"encoding {profile.encoding}, time zone {profile.timezone}"
     )
+    missing = [path for path in export_files if not path.is_file()]
     failed = False
-    for path in export_files:
-        try:
-            raw = read_export(path, profile)
-            parsed = parse_export(raw, profile)
-        except FileRejected as err:
-            click.echo(f"  {path.name}: would be REJECTED ({err.reason_code}): {err}")
+    for trial in try_profile(profile, [path for path in export_files if path.is_file()]):
+        f = trial.outcome
+        if f.outcome == "rejected":
+            click.echo(f"  {f.path.name}: would be REJECTED ({f.reason_code}): {f.message}")
             failed = True
             continue
-        bad = parsed.values.filter(parsed.values[REASON].is_not_null()).height + len(raw.malformed)
-        total = raw.cells.height + len(raw.malformed)
+        if f.outcome == "already_loaded":
+            click.echo(f"  {f.path.name}: same content as a file given before it; a run would skip it")
+            continue
         click.echo(
-            f"  {path.name}: {total} rows, {total - bad} parse, {bad} would be quarantined"
-            + (f"; absent optional columns: {', '.join(parsed.missing_optional)}" if parsed.missing_optional else "")
+            f"  {f.path.name}: {f.rows_in} rows in = {f.rows_loaded} would load + {f.rows_quarantined} quarantined + "
+            f"{f.rows_duplicate} duplicates + {f.rows_superseded_in_file} superseded in file"
         )
+        if trial.quarantine_reasons:
+            reasons = ", ".join(f"{code} {count}" for code, count in trial.quarantine_reasons.items())
+            click.echo(f"    quarantine reasons: {reasons}")
+        for warning in trial.contract_warnings:
+            click.echo(f"    contract warning: {warning}")
+        for note in f.notes:
+            click.echo(f"    note: {note}")
+    if missing:
+        raise NoInputError(f"no such export file: {', '.join(str(path) for path in missing)}")
     sys.exit(65 if failed else 0)
+
+
+@main.command(epilog=RUN_EPILOG)
+@config_option
+@click.argument("export_files", nargs=-1, type=click.Path(dir_okay=False, path_type=Path))
+@click.option(
+    "--profile",
+    "profile_name",
+    help="Read again every file in the store loaded with this profile (its [profile] name).",
+)
+@click.option(
+    "--reason",
+    help="Why, in words (e.g. 'time zone was UTC, is Europe/London'); kept with every earlier version replaced.",
+)
+@store_option
+@output_option
+@log_format_option
+@handle_errors
+def reload(
+    config_path: Path,
+    export_files: tuple[Path, ...],
+    profile_name: str | None,
+    reason: str | None,
+    store: Path | None,
+    output: Path | None,
+    log_format: str,
+) -> None:
+    """Read files the store already holds again with the current version of their profile.
+
+    After fixing a profile (a wrong time zone, a unit declared wrongly) the files it loaded
+    are still recognised by their content and never read again by a run. This command reads
+    the given EXPORT_FILES (each must be in the store), or with --profile every file loaded
+    with that profile, using the profile the site configuration names now, and replaces what
+    each file loaded, one transaction per file: a record whose values change keeps its
+    earlier version in superseded_records with the reason; a record the re-read no longer
+    holds (its row is quarantined now) leaves records the same way, and an earlier delivery's
+    version of it from another file becomes current again; files loaded later that hold a
+    record one of these files delivered are read again too, so a later delivery still wins.
+    Then metrics, flags, audit tables and outputs are brought up to date as in a run
+    (runs.command = 'reload'). A file the current profile rejects is left as it was (exit 65).
+
+    \b
+    Examples:
+      abg-audit reload --config site.toml --profile ward_analysers --reason "time zone fixed"
+      abg-audit reload --config site.toml exports/2026-11-30.csv
+    """
+    from pipeline.config import load_config
+    from pipeline.reload import ReloadLoader
+    from pipeline.run import run_pipeline
+    from pipeline.summary import print_run_summary
+
+    if bool(export_files) == bool(profile_name):
+        raise click.UsageError("give either export files or --profile NAME (not both)")
+    config = load_config(config_path, store=store, output=output)
+    loader = ReloadLoader(config, files=export_files, profile_name=profile_name, operator_reason=reason)
+    result = run_pipeline(config, _log(log_format), command="reload", loader=loader)
+    _echo_summary(lambda: print_run_summary(result, config))
+    sys.exit(result.exit_code)
 
 
 @main.command("detection-report")
@@ -444,6 +588,7 @@ def rules(config_path: Path | None, kind: str | None) -> None:
 
 
 @main.command()
+@handle_errors
 def fields() -> None:
     """Print the canonical records: every field of a sample, then of an oxygen prescription
     (the prescriptions feed), with its type and canonical unit."""

@@ -43,3 +43,9 @@ class FileRejected(PipelineError):
     def __init__(self, reason_code: str, message: str) -> None:
         super().__init__(message)
         self.reason_code = reason_code
+
+
+class NotHeldError(PipelineError):
+    """A file named for ``abg-audit reload`` is not in the store (never loaded, or changed since)."""
+
+    exit_code = 65  # EX_DATAERR

@@ -1,4 +1,5 @@
-"""Checks before a run writes anything: folder permissions and free disk space.
+"""Checks before a run writes anything: folder permissions and free disk space; and
+``try_profile``, a site's check of a mapping profile on export files before the first night.
 
 A store that fills its disk mid-write is the riskiest failure an embedded database has, so
 a run first checks that the store's folder and the output folder have room for what it is
@@ -9,11 +10,18 @@ when they do not.
 from __future__ import annotations
 
 import os
+import secrets
 import shutil
 import stat
+import tempfile
+from collections.abc import Sequence
+from dataclasses import dataclass
 from pathlib import Path
 
 from pipeline.errors import ConfigError, StorageError
+from pipeline.ingest.load import FileOutcome, ingest_file
+from pipeline.profile import Profile
+from pipeline.store import open_scratch_store
 
 MIB = 1024**2
 # Room a run needs whatever its input: DuckDB's write-ahead log, a checkpoint and spill
@@ -82,3 +90,43 @@ def check_private_folder(folder: Path, what: str) -> None:
         )
     if not os.access(folder, os.W_OK | os.X_OK):
         raise StorageError(f"the {what} folder {folder} is not writable by this user")
+
+
+@dataclass
+class ProfileTrial:
+    """What a run would make of one export file with a profile (``abg-audit check-profile``)."""
+
+    outcome: FileOutcome
+    quarantine_reasons: dict[str, int]  # reason code -> rows
+    contract_warnings: list[str]  # batch-contract checks that failed without rejecting the file
+
+
+def try_profile(profile: Profile, paths: Sequence[Path]) -> list[ProfileTrial]:
+    """Load the files with the profile into a scratch in-memory store, exactly as a run loads
+    them (``ingest_file``: dialect, columns, codes, dates, unit sanity, the batch contract,
+    quarantine, duplicates), and report each outcome; nothing reaches the site's store.
+
+    Pseudonyms are made with a throwaway key (nothing made here is kept, so the site's key is
+    not needed) and identifiers are not kept. Files are loaded in the order given, into the
+    same scratch store, so a repeated row counts as a duplicate as it would on a night."""
+    key = secrets.token_hex(32).encode()
+    trials = []
+    with tempfile.TemporaryDirectory(prefix="abg-audit-check-") as scratch:
+        con = open_scratch_store(Path(scratch) / "spill")
+        try:
+            for path in paths:
+                outcome = ingest_file(con, path, profile, "check-profile", key, keep_patient_id=False)
+                reasons = con.execute(
+                    "select reason_code, count(*) from quarantine where file_sha256 = ? group by all "
+                    "order by count(*) desc, reason_code",
+                    [outcome.sha256],
+                ).fetchall()
+                warnings = con.execute(
+                    "select check_id || ': ' || observed from contract_results "
+                    "where file_sha256 = ? and not success and not blocking order by check_id",
+                    [outcome.sha256],
+                ).fetchall()
+                trials.append(ProfileTrial(outcome, dict(reasons), [w[0] for w in warnings]))
+        finally:
+            con.close()
+    return trials

@@ -13,11 +13,12 @@ import os
 import platform
 import secrets
 import time
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
+from typing import Protocol
 
 import duckdb
 import polars as pl
@@ -26,12 +27,13 @@ import pyarrow as pa
 from pipeline import __version__
 from pipeline.config import InputSource, SiteConfig
 from pipeline.derive import derive
-from pipeline.errors import NoInputError, PipelineError, StoreBusyError
+from pipeline.errors import NoInputError, PipelineError, StorageError, StoreBusyError
 from pipeline.ingest.load import FileOutcome, ingest_file
 from pipeline.log import Log
 from pipeline.preflight import check_free_space, check_private_folder
 from pipeline.pseudonym import key_id, load_key
 from pipeline.publish import build_and_write
+from pipeline.reload import warn_outdated
 from pipeline.rules import Catalogue, evaluate_rules, load_catalogue
 from pipeline.sql_files import SQL_DIR, run_sql
 from pipeline.store import open_store
@@ -52,6 +54,7 @@ class RunResult:
     exit_code: int = EXIT_OK
     flags_written: int = 0
     samples_flagged: int = 0
+    flags_by_kind: dict[str, int] = field(default_factory=dict)  # data_quality, documentation, clinical
     duration_s: float = 0.0
 
     def total(self, name: str) -> int:
@@ -64,6 +67,22 @@ class RunResult:
         if self.exit_code == EXIT_NO_INPUT:
             return "no_input"
         return "completed_with_rejections"
+
+
+class FileLoader(Protocol):
+    """Loads given files in place of the configured inputs (``pipeline.reload.ReloadLoader``
+    for ``abg-audit reload``); the rest of the run is the same."""
+
+    missing: list[str]  # files it was asked for that do not exist (exit 66, as for a run)
+    planned: Sequence[object]  # the files it will load, once prepared
+
+    def prepare(self, con: duckdb.DuckDBPyConnection) -> int:
+        """Plan from the store before anything is written; return the bytes it will read."""
+        ...
+
+    def load(self, con: duckdb.DuckDBPyConnection, key: bytes, run_id: str, log: Log) -> Iterator[FileOutcome]:
+        """Load each file (one transaction each) and yield its outcome."""
+        ...
 
 
 def new_run_id() -> str:
@@ -142,6 +161,7 @@ def _record_run_end(con: duckdb.DuckDBPyConnection, result: RunResult, seconds: 
         for f in result.files
     ]
     counts = {o: sum(1 for f in result.files if f.outcome == o) for o in ("loaded", "already_loaded", "rejected")}
+    kinds = {kind: result.flags_by_kind.get(kind, 0) for kind in ("data_quality", "documentation", "clinical")}
     summary = (
         f"{len(result.files)} file(s): {counts['loaded']} loaded, {counts['already_loaded']} already loaded, "
         f"{counts['rejected']} rejected; {result.total('rows_in')} rows in, {result.total('rows_loaded')} loaded, "
@@ -153,8 +173,9 @@ def _record_run_end(con: duckdb.DuckDBPyConnection, result: RunResult, seconds: 
         "update runs set finished_at = now()::timestamp, outcome = ?, exit_code = ?, inputs = ?, files_seen = ?, "
         "files_loaded = ?, files_already_loaded = ?, files_rejected = ?, rows_in = ?, rows_loaded = ?, "
         "rows_quarantined = ?, rows_duplicate = ?, rows_superseded_in_file = ?, summary = ?, duration_s = ?, "
-        "samples_in_scope = ?, flags_written = ?, samples_flagged = ?, "
-        "records_total = (select count(*) from records), quarantine_total = (select count(*) from quarantine), "
+        "samples_in_scope = ?, flags_written = ?, samples_flagged = ?, flags_data_quality = ?, "
+        "flags_documentation = ?, flags_clinical = ?, records_total = (select count(*) from records), "
+        "quarantine_total = (select count(*) from quarantine), "
         "flags_total = (select count(*) from flags) where run_id = ?",
         [
             result.outcome,
@@ -174,6 +195,9 @@ def _record_run_end(con: duckdb.DuckDBPyConnection, result: RunResult, seconds: 
             result.scope_size,
             result.flags_written,
             result.samples_flagged,
+            kinds["data_quality"],
+            kinds["documentation"],
+            kinds["clinical"],
             result.run_id,
         ],
     )
@@ -216,6 +240,7 @@ def analyse(
     con.execute("begin transaction")
     try:
         run_sql(con, "derive/00_scope.sql", run_id=result.run_id, rebuild=rebuild)
+        run_sql(con, "reload/30_scope.sql")  # samples a reload took out of records
         result.scope_size = con.execute("select count(*) from scope_samples").fetchall()[0][0]
         if result.scope_size == 0 and _analysis_tables_exist(con):
             log.info("no new or changed samples: derived metrics and flags left as they are", scope=0)
@@ -229,6 +254,12 @@ def analyse(
                 "select count(*), count(distinct sample_id) from flags "
                 "where sample_id in (select sample_id from scope_samples)"
             ).fetchall()[0]
+            result.flags_by_kind = dict(
+                con.execute(
+                    "select kind, count(*) from flags where sample_id in (select sample_id from scope_samples) "
+                    "group by kind"
+                ).fetchall()
+            )
         con.execute("update runs set analysed_at = now()::timestamp where run_id in (select run_id from scope_runs)")
         pause_point("rules")
         con.execute("commit")
@@ -332,9 +363,16 @@ def _stat(path: Path) -> os.stat_result | None:
 
 
 def run_pipeline(
-    config: SiteConfig, log: Log, *, command: str = "run", create_key: bool = False, rebuild: bool = False
+    config: SiteConfig,
+    log: Log,
+    *,
+    command: str = "run",
+    create_key: bool = False,
+    rebuild: bool = False,
+    loader: FileLoader | None = None,
 ) -> RunResult:
-    """Load every new input file, then run the later stages; returns counts and the exit code."""
+    """Load every new input file (or the files of ``loader``), then run the later stages;
+    returns counts and the exit code."""
     key = load_key(config.key_file, create=create_key)
     catalogue = load_catalogue(config.thresholds)
     analysis = analysis_sha256(config, catalogue)
@@ -344,15 +382,21 @@ def run_pipeline(
     try:
         check_private_folder(config.store_path.parent, "store")
         with run_lock(config.store_path):
-            plan = _plan_inputs(config, result, log)
+            plan = _plan_inputs(config, result, log) if loader is None else []
             stats = {path: _stat(path) for _, files in plan for path in files}
             if not config.store_path.exists():  # a new store: check before creating it
+                if loader is not None:
+                    raise StorageError(f"no store at {config.store_path}; nothing was loaded to read again")
                 check_free_space(config.store_path.parent, config.output_folder, _new_bytes(stats, {}))
             con = open_store(config.store_path)
             try:
-                known = {} if rebuild else _known_fingerprints(con)
+                known = {} if rebuild or loader is not None else _known_fingerprints(con)
+                new_bytes = _new_bytes(stats, known) if loader is None else loader.prepare(con)
+                for missing in loader.missing if loader is not None else []:
+                    result.missing_inputs.append(missing)
+                    log.error(f"input not found: {missing}", reason="NO_INPUT")
                 store_bytes = config.store_path.stat().st_size if rebuild else 0
-                check_free_space(config.store_path.parent, config.output_folder, _new_bytes(stats, known), store_bytes)
+                check_free_space(config.store_path.parent, config.output_folder, new_bytes, store_bytes)
                 reason = None if rebuild else _rebuild_reason(con, analysis)
                 if reason:
                     log.warning(f"checking every sample again: {reason}")
@@ -361,7 +405,10 @@ def run_pipeline(
                 con.execute("update runs set analysis_sha256 = ? where run_id = ?", [analysis, result.run_id])
                 log.info("run started", run_id=result.run_id, store=config.store_path.name)
                 try:
-                    _run_stages(con, config, catalogue, key, result, log, plan, stats, known, rebuild=rebuild)
+                    _run_stages(
+                        con, config, catalogue, key, result, log, plan, stats, known, rebuild=rebuild, loader=loader
+                    )
+                    warn_outdated(con, config, log)
                     if any(f.outcome == "rejected" for f in result.files):
                         result.exit_code = EXIT_DATA_ERROR
                     if result.missing_inputs:
@@ -400,8 +447,13 @@ def _run_stages(
     known: dict[str, tuple[int, int, str]],
     *,
     rebuild: bool,
+    loader: FileLoader | None = None,
 ) -> None:
     """Load each new file (one transaction each), then analyse, audit and publish."""
+    for number, outcome in enumerate(loader.load(con, key, result.run_id, log) if loader else (), start=1):
+        result.files.append(outcome)
+        _record_file_event(con, result.run_id, outcome)
+        _log_file(log, outcome, number, len(loader.planned) if loader else 0)
     for source, files in plan:
         what = "input" if source.kind == "samples" else f"{source.kind} input"
         log.info(f"{what} {source.path} ({source.profile.name}): {len(files)} file(s)")

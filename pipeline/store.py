@@ -43,23 +43,37 @@ def open_store(path: Path, *, read_only: bool = False) -> duckdb.DuckDBPyConnect
         raise StorageError(f"cannot open the store {path}: {err}") from None
     finally:
         os.umask(old_umask)
+    _prepare(con, None if read_only else path.with_name(path.name + ".tmp"))
+    return con
+
+
+def open_scratch_store(spill: Path) -> duckdb.DuckDBPyConnection:
+    """An in-memory store with the tables and macros of a real one, for trying a profile on
+    export files (``abg-audit check-profile``): what it loads is gone when it is closed;
+    only spill files, if any, go to ``spill`` (a temporary folder the caller removes)."""
+    con = duckdb.connect()
+    _prepare(con, spill)
+    return con
+
+
+def _prepare(con: duckdb.DuckDBPyConnection, spill: Path | None) -> None:
+    """UTC sessions, offline settings, the memory budget, macros; with ``spill`` (a writable
+    store) the spill folder and the tables."""
     con.execute("set TimeZone = 'UTC'")
     con.execute("set autoinstall_known_extensions = false")
     con.execute("set autoload_known_extensions = false")
     con.execute(f"set memory_limit = '{MEMORY_LIMIT}'")
-    if not read_only:
+    if spill is not None:
         # Spill files hold identifiers too: DuckDB creates them long after the umask above
         # is restored, so their folder is made owner-only here.
-        spill = path.with_name(path.name + ".tmp")
         spill.mkdir(mode=0o700, exist_ok=True)
         spill.chmod(0o700)
         con.execute("set temp_directory = ?", [str(spill)])
     install_macros(con)
-    if not read_only:
+    if spill is not None:
         for ddl in sorted((SQL_DIR / "schema").glob("*.sql")):
             con.execute(ddl.read_text(encoding="utf-8"))
     _install_field_limits(con)
-    return con
 
 
 def _install_field_limits(con: duckdb.DuckDBPyConnection) -> None:

@@ -35,7 +35,8 @@ from pipeline.log import Log
 from pipeline.preflight import MIB, MIN_FREE_OUTPUT_BYTES, MIN_FREE_STORE_BYTES, required_space
 from pipeline.rules import load_catalogue
 from pipeline.run import RunResult, run_pipeline
-from tests.nightly_site import add_day, cli, env, keep_umask, make_site, run_cli, store_totals
+from pipeline.store import open_store
+from tests.nightly_site import HEADER, add_day, cli, env, keep_umask, make_site, run_cli, store_totals
 
 __all__ = ["keep_umask"]  # an autouse fixture
 
@@ -412,6 +413,58 @@ def test_runs_table_records_versions_counts_and_duration(tmp_path):
     listing = CliRunner().invoke(main, ["runs", "--config", str(config_path)])
     assert listing.exit_code == 0
     assert f"rules v{catalogue.version}" in listing.output and "90 samples checked" in listing.output
+
+
+# One finding of each other kind beside the site's data-quality flags: PaO2 50 mmHg on room
+# air (hypoxaemia, clinical), no FiO2 nor device (documentation), PaO2 250 mmHg on oxygen
+# (hyperoxaemia, clinical).
+OTHER_KINDS = (
+    "C-1,P8001,W1,2026-03-01 10:00,2026-03-01 10:10,A,RA,0.21,7.40,40,50,24\n"
+    "C-2,P8002,W1,2026-03-01 10:00,2026-03-01 10:10,A,,,7.40,40,85,24\n"
+    "C-3,P8003,W1,2026-03-01 10:00,2026-03-01 10:10,A,NC,0.4,7.40,40,250,24\n"
+)
+
+
+def test_runs_separate_data_quality_documentation_and_clinical_flags(tmp_path):
+    config_path = make_site(tmp_path / "site", days=1, rejected_file=False)
+    (config_path.parent / "exports" / "other_kinds.csv").write_text(HEADER + OTHER_KINDS, encoding="utf-8")
+    run_here(config_path)
+    store = config_of(config_path).store_path
+    con = duckdb.connect(str(store), read_only=True)
+    try:
+        by_kind = dict(con.execute("select kind, count(*) from flags group by kind").fetchall())
+        dq, documentation, clinical, written = con.execute(
+            "select flags_data_quality, flags_documentation, flags_clinical, flags_written from runs"
+        ).fetchall()[0]
+    finally:
+        con.close()
+    assert (dq, documentation, clinical) == (by_kind["data_quality"], 1, 2)
+    assert dq + documentation + clinical == written
+    listing = CliRunner().invoke(main, ["runs", "--config", str(config_path)])
+    assert (
+        f"flags on the samples checked: {dq} data quality (for the laboratory to review), 1 documentation, 2 clinical"
+        in listing.output
+    )
+    # A second run with nothing new checks no sample and says so by kind too.
+    run_here(config_path)
+    assert one(store, "select list(flags_clinical order by started_at) from runs") == [2, 0]
+
+
+def test_an_older_store_gains_the_flag_kind_columns_of_runs(tmp_path):
+    store = tmp_path / "store" / "old.duckdb"
+    open_store(store).close()
+    con = duckdb.connect(str(store))
+    for column in ("flags_data_quality", "flags_documentation", "flags_clinical"):
+        con.execute(f"alter table runs drop column {column}")
+    con.close()
+    open_store(store).close()
+    con = duckdb.connect(str(store), read_only=True)
+    try:
+        names = {row[0] for row in con.execute("select column_name from information_schema.columns "
+                                                  "where table_name = 'runs'").fetchall()}
+    finally:
+        con.close()
+    assert {"flags_data_quality", "flags_documentation", "flags_clinical"} <= names
 
 
 def test_unexpected_error_is_one_line_without_its_message_and_the_run_is_marked_failed(tmp_path, monkeypatch):

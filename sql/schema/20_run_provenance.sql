@@ -37,3 +37,10 @@ alter table runs add column if not exists analysed_at timestamp;
 alter table runs add column if not exists analysis_sha256 varchar;   -- catalogue + site parameters of the analysis
 update runs set analysed_at = finished_at
 where analysed_at is null and outcome in ('succeeded', 'completed_with_rejections');
+
+-- Flags written for the samples a run checked, by kind (they add up to flags_written), so a
+-- run's data-quality findings for the laboratory are not mixed with clinical findings about
+-- patients. Filled at the end of the run; NULL for runs recorded before these columns.
+alter table runs add column if not exists flags_data_quality bigint;
+alter table runs add column if not exists flags_documentation bigint;
+alter table runs add column if not exists flags_clinical bigint;
