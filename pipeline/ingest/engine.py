@@ -92,10 +92,12 @@ class CellSql:
 
 
 def _missing(c: str, profile: Profile) -> str:
-    # An OR chain, not IN (...): a constant list is planned as a join, which would lose the
-    # file order the row numbers come from.
-    words = " or ".join(f"lower({c}) = {sql_text(w)}" for w in profile.missing_values)
-    return f"({c} is null or {words})"
+    # Cheap tests first (most cells are empty or longer than any missing-value word), then an
+    # OR chain rather than IN (...): a constant list is planned as a join, which would lose
+    # the file order the row numbers come from.
+    longest = max((len(w) for w in profile.missing_values), default=0)
+    words = " or ".join(f"lower({c}) = {sql_text(w)}" for w in profile.missing_values if w) or "false"
+    return f"(case when {c} is null or {c} = '' then true when strlen({c}) > {longest} then false else {words} end)"
 
 
 def _lookup(c: str, mapping: dict[str, str]) -> str:
@@ -144,14 +146,19 @@ def _offset_tree(p: str, segments: tuple[tuple[datetime, int | None], ...], lo: 
     return f"(case when {p} < timestamp '{segments[mid][0]:%Y-%m-%d %H:%M:%S}' then {left} else {right} end)"
 
 
-def local_to_utc(p: str, zone: str) -> tuple[str, str]:
-    """(UTC value, usual) of the naive local timestamp expression ``p`` in ``zone``."""
-    if zone == "UTC":
-        return p, "true"
+def utc_offset(p: str, zone: str) -> str:
+    """The UTC offset (microseconds) of the naive local timestamp expression ``p`` in
+    ``zone``; NULL in an hour that holds a clock change or outside the years covered."""
     segments = _offset_segments(zone, datetime.now().year + _TZ_YEARS_AHEAD)
     first = segments[0][0]
     tree = _offset_tree(p, segments, 0, len(segments))
-    offset = f"(case when {p} < timestamp '{first:%Y-%m-%d %H:%M:%S}' then null::bigint else {tree} end)"
+    return f"(case when {p} < timestamp '{first:%Y-%m-%d %H:%M:%S}' then null::bigint else {tree} end)"
+
+
+def local_to_utc(p: str, offset: str, zone: str) -> tuple[str, str]:
+    """(UTC value, usual) of the naive local time ``p`` whose offset column is ``offset``."""
+    if zone == "UTC":
+        return p, "true"
     return f"({p} - to_microseconds({offset}))", f"({offset} is not null)"
 
 
@@ -169,21 +176,29 @@ def _number_cell(c: str, sql_type: str, profile: Profile) -> CellSql:
     plain = f"regexp_full_match({c}, '-?[0-9]+({mark}[0-9]+)?')"
     number = f"replace({c}, ',', '.')" if profile.decimal_mark == "," else c
     value = f"try_cast({number} as double)"
-    usual = f"({_missing(c, profile)} or ({plain} and isfinite({value})))"
+    usual = f"(case when {plain} then isfinite({value}) else {_missing(c, profile)} end)"
     return CellSql(f"(case when {plain} then {value} end)", usual, f"({c} is not null and {c} <> '')")
 
 
-def _timestamp_cell(c: str, sql_type: str, profile: Profile) -> CellSql:
+def _timestamp_cell(c: str, sql_type: str, profile: Profile, parsed: str, offset: str) -> CellSql:
+    """``parsed`` and ``offset``: the columns holding this cell's local time (``local_time``)
+    and its UTC offset (``utc_offset``), computed once in inner queries because each is read
+    several times."""
     if sql_type in ("TIMESTAMP WITH TIME ZONE",):
         return CellSql(f"timezone('UTC', {c})", "true", f"({c} is not null)")
+    utc, in_range = local_to_utc(parsed, offset, profile.timezone)
     if sql_type.startswith("TIMESTAMP"):
-        utc, in_range = local_to_utc(f"({c})::timestamp", profile.timezone)
         return CellSql(utc, f"({c} is null or {in_range})", f"({c} is not null)")
     fmt = sql_text(profile.datetime_format)
-    parsed = f"try_strptime({c}, {fmt})"
-    utc, in_range = local_to_utc(parsed, profile.timezone)
     usual = f"({_missing(c, profile)} or (strftime({parsed}, {fmt}) = {c} and {in_range}))"
     return CellSql(utc, usual, f"({c} is not null and {c} <> '')")
+
+
+def local_time(c: str, sql_type: str, profile: Profile) -> str:
+    """The naive local time of a timestamp cell (text parsed with the profile's format)."""
+    if sql_type.startswith("TIMESTAMP"):
+        return f"({c})::timestamp"
+    return f"try_strptime({c}, {sql_text(profile.datetime_format)})"
 
 
 def _date_cell(c: str, sql_type: str, profile: Profile) -> CellSql:
@@ -216,7 +231,9 @@ def _unit_cell(c: str, canonical: str, profile: Profile) -> CellSql:
     return CellSql(value, f"({_missing(c, profile)} or {value} is not null)", f"({c} is not null and {c} <> '')")
 
 
-def cell_sql(canonical: str, c: str, sql_type: str, profile: Profile) -> CellSql:
+def cell_sql(
+    canonical: str, c: str, sql_type: str, profile: Profile, parsed: str = "", offset: str = ""
+) -> CellSql:
     """The SQL of one mapped cell; a typed (Parquet) column the SQL does not know how to
     read exactly is never usual, so its rows go to the Python parser."""
     kind = profile.record.fields_by_name[canonical].kind
@@ -224,7 +241,8 @@ def cell_sql(canonical: str, c: str, sql_type: str, profile: Profile) -> CellSql
     if kind is Kind.NUMBER and (varchar or _NUMERIC_TYPES.match(sql_type)):
         return _number_cell(c, sql_type, profile)
     if kind is Kind.TIMESTAMP and (varchar or sql_type.startswith("TIMESTAMP")):
-        return _timestamp_cell(c, sql_type, profile)
+        parsed = parsed or local_time(c, sql_type, profile)
+        return _timestamp_cell(c, sql_type, profile, parsed, offset or utc_offset(parsed, profile.timezone))
     if kind is Kind.DATE and (varchar or sql_type == "DATE" or sql_type.startswith("TIMESTAMP")):
         return _date_cell(c, sql_type, profile)
     if kind is Kind.BOOLEAN and (varchar or sql_type == "BOOLEAN"):
@@ -259,8 +277,15 @@ def parse_relation(
     headers = list(refs)
     cells: dict[str, CellSql] = {}
     fallible: list[str] = []
+    inner: list[str] = []
+    offsets: list[str] = []
     for canonical, source in plan.mapped.items():
-        cells[canonical] = cell_sql(canonical, refs[source], types[source], profile)
+        parsed = offset = ""
+        if record.fields_by_name[canonical].kind is Kind.TIMESTAMP:
+            parsed, offset = f"__local_{len(inner)}", f"__offset_{len(inner)}"
+            inner.append(f"{local_time(refs[source], types[source], profile)} as {parsed}")
+            offsets.append(f"{utc_offset(parsed, profile.timezone)} as {offset}")
+        cells[canonical] = cell_sql(canonical, refs[source], types[source], profile, parsed, offset)
         if record.fields_by_name[canonical].kind is not Kind.TEXT:
             fallible.append(source)
     units = {
@@ -298,7 +323,10 @@ def parse_relation(
         f"({refs[h]} is null or regexp_full_match(({refs[h]})::varchar, '{_WS_CLASS}*'))" for h in headers
     )
     where = f"where not (({first} is null or regexp_full_match(({first})::varchar, '{_WS_CLASS}*')) and {blank_cells})"
-    select = "select\n    " + ",\n    ".join(out) + f"\nfrom {relation}\n{where}"
+    source = relation
+    if inner:
+        source = f"(select *, {', '.join(offsets)} from (select *, {', '.join(inner)} from {relation}))"
+    select = "select\n    " + ",\n    ".join(out) + f"\nfrom {source}\n{where}"
     return select, fallible
 
 
