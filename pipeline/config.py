@@ -9,6 +9,7 @@ from pathlib import Path
 from typing import Any
 
 from pipeline.audit_settings import AuditSettings, parse_audit_settings
+from pipeline.contract import ContractSettings, load_settings, settings_with
 from pipeline.errors import ConfigError
 from pipeline.profile import Profile, load_profile
 from pipeline.schema import RECORD_SPECS
@@ -59,6 +60,8 @@ class SiteConfig:
     unit_types: dict[str, str] = field(default_factory=dict)
     oxygen_targets: dict[str, OxygenTarget] = field(default_factory=dict)
     sha256: str = ""
+    # The batch contract's thresholds: the catalogue's [contract] with the site's overrides.
+    contract: ContractSettings = field(default_factory=load_settings)
 
     def unit_target_rows(self) -> list[tuple[str, str, float | None, float | None, bool]]:
         """(unit, unit type, target low, target high, assessed) for every unit the site typed."""
@@ -90,6 +93,7 @@ KNOWN_KEYS: dict[str, set[str]] = {
     "audit": set(),  # checked by pipeline.audit_settings.parse_audit_settings
     "unit_types": set(),  # unit name = unit type; any unit name
     "oxygen_targets": set(),  # [oxygen_targets.<unit type>]; checked by _parse_oxygen_targets
+    "contract": set(),  # batch contract thresholds; checked by pipeline.contract.settings_with
 }
 
 
@@ -208,6 +212,10 @@ def load_config(path: Path | str, *, store: Path | None = None, output: Path | N
     key_file = privacy.get("key_file")
     unit_types = _parse_unit_types(path, raw.get("unit_types", {}))
     oxygen_targets = _parse_oxygen_targets(path, raw.get("oxygen_targets", {}), unit_types)
+    contract_raw = raw.get("contract", {})
+    if not isinstance(contract_raw, dict):
+        raise ConfigError(f"{path}: [contract] must be a table")
+    contract = settings_with(load_settings(), contract_raw, str(path))
     return SiteConfig(
         path=path,
         site_name=str(site.get("name", "unnamed site")),
@@ -225,4 +233,5 @@ def load_config(path: Path | str, *, store: Path | None = None, output: Path | N
         unit_types=unit_types,
         oxygen_targets=oxygen_targets,
         sha256=hashlib.sha256(data).hexdigest(),
+        contract=contract,
     )

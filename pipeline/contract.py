@@ -1,8 +1,21 @@
-"""The incoming-batch contract: a great-expectations suite run on every export file.
+"""The incoming-batch contract: a great-expectations suite on every export file.
 
 Each file's batch is checked right after unit conversion: the temp table
 ``stage_converted``, every row of the file, including rows quarantined later (their
-unreadable cells are missing). The checks: every contract column present, column types,
+unreadable cells are missing). Which rows each check sees (``validate_stage``):
+
+* the structural checks (every contract column present, column types) are run by
+  great-expectations on a bounded sample, the file's first ``SAMPLE_ROWS`` rows: a column's
+  presence and type are the same in every row, and a bounded sample keeps the cost of a
+  file small and the same whatever its size (no pandas copy of the whole file);
+* every value check (required values, collection-time window, resulted after collected,
+  allowed codes, possible ranges) is counted over **every row** by one SQL aggregate query
+  (``aggregate_sql``) with great-expectations' semantics (missing values are not tested by
+  ranges and code lists; bounds inclusive; ``mostly``), and those counts decide the check
+  and the file's verdict. Tests compare the SQL counts with great-expectations' own on the
+  same rows.
+
+The checks: every contract column present, column types,
 required values filled, allowed codes, physiologically possible ranges, plausible
 collection times. They are listed once, in ``contract_checks`` (ranges and code lists in
 ``POSSIBLE_RANGES`` and ``ALLOWED_CODES``), each with our own stable ``check_id`` and a
@@ -23,9 +36,13 @@ styles from the internet and do not render offline. The audit report shows
 ``contract_results`` instead.
 
 Cost: importing great-expectations takes seconds, so it is imported lazily on the first
-validation and the context and suite are built once per process. great-expectations
-validates pandas batches only, and takes slow per-row paths unless numbers are float64 and
-timestamps ``datetime64[ns]``; ``pandas_batch`` normalises the frame accordingly.
+validation and the context and suite are built once per process and per set of
+thresholds. great-expectations validates pandas batches only, and takes slow per-row paths
+unless numbers are float64 and timestamps ``datetime64[ns]``; ``pandas_batch`` normalises
+the (sample) frame accordingly.
+
+Thresholds: ``[contract]`` of ``pipeline/catalogue.toml``; a site overrides any of them in
+its configuration's ``[contract]`` table (``settings_with``).
 """
 
 from __future__ import annotations
@@ -56,6 +73,8 @@ WARNING = "warning"
 SUITE_NAME = "incoming_batch_contract"
 # Suite parameter: the latest collection time the contract accepts, set per validation.
 LATEST_COLLECTED_PARAMETER = "latest_collected_at"
+# Rows of a file great-expectations sees (the structural checks); value checks see all rows.
+SAMPLE_ROWS = 1_000
 
 # Physiologically possible ranges, canonical units: values outside cannot come from a living
 # patient's sample (common practice). Narrower clinical limits are the rules' business.
@@ -165,12 +184,52 @@ def _describe_failure(r: CheckResult) -> str:
 
 def load_settings(path: Path = CATALOGUE_PATH) -> ContractSettings:
     raw = tomllib.loads(path.read_text(encoding="utf-8"))["contract"]
+    return settings_with(_catalogue_defaults(raw), {}, str(path))
+
+
+def _catalogue_defaults(raw: dict[str, Any]) -> ContractSettings:
     return ContractSettings(
         reject_unexpected_percent=float(raw["reject_unexpected_percent"]),
         min_failing_rows=int(raw["min_failing_rows"]),
         earliest_collected_at=raw["earliest_collected_at"],
         future_tolerance_minutes=float(raw["future_tolerance_minutes"]),
         resulted_after_collected_mostly=float(raw["resulted_after_collected_mostly"]),
+    )
+
+
+SETTING_NAMES: tuple[str, ...] = tuple(ContractSettings.__dataclass_fields__)
+
+
+def settings_with(base: ContractSettings, overrides: dict[str, Any], where: str) -> ContractSettings:
+    """``base`` with a site's ``[contract]`` overrides, each checked; ``ConfigError`` (naming
+    ``where``) for an unknown name or a value of the wrong type or outside its range."""
+    from pipeline.errors import ConfigError
+
+    unknown = sorted(set(overrides) - set(SETTING_NAMES))
+    if unknown:
+        raise ConfigError(
+            f"{where}: unknown key(s) in [contract]: {', '.join(unknown)}; known: {', '.join(SETTING_NAMES)}"
+        )
+    values = {name: getattr(base, name) for name in SETTING_NAMES} | overrides
+
+    def number(name: str, low: float, high: float) -> float:
+        value = values[name]
+        if isinstance(value, bool) or not isinstance(value, int | float) or not low <= value <= high:
+            raise ConfigError(f"{where}: [contract] {name} must be a number from {low:g} to {high:g}")
+        return float(value)
+
+    rows = values["min_failing_rows"]
+    if isinstance(rows, bool) or not isinstance(rows, int) or rows < 1:
+        raise ConfigError(f"{where}: [contract] min_failing_rows must be a whole number of at least 1")
+    earliest = values["earliest_collected_at"]
+    if isinstance(earliest, datetime) or not isinstance(earliest, date):
+        raise ConfigError(f"{where}: [contract] earliest_collected_at must be a date, e.g. 1990-01-01 (no quotes)")
+    return ContractSettings(
+        reject_unexpected_percent=number("reject_unexpected_percent", 0.0, 100.0),
+        min_failing_rows=rows,
+        earliest_collected_at=earliest,
+        future_tolerance_minutes=number("future_tolerance_minutes", 0.0, 7 * 24 * 60.0),
+        resulted_after_collected_mostly=number("resulted_after_collected_mostly", 0.0, 1.0),
     )
 
 
@@ -357,7 +416,14 @@ def _import_gx() -> tuple[Any, Any, Any]:
 def _settings_and_validator() -> tuple[ContractSettings, _Validator]:
     """Import great-expectations and build the suite once per process."""
     settings = load_settings()
-    return settings, _Validator(contract_checks(settings))
+    return settings, _validator_for(settings)
+
+
+@cache
+def _validator_for(settings: ContractSettings) -> _Validator:
+    """The suite for one set of thresholds, built once per process (sites that override
+    ``[contract]`` get their own)."""
+    return _Validator(contract_checks(settings))
 
 
 def build_validator(settings: ContractSettings) -> _Validator:
@@ -460,12 +526,123 @@ def _check_result(check: Check, item: Any, settings: ContractSettings) -> CheckR
     )
 
 
-def validate_stage(con: duckdb.DuckDBPyConnection, path: Path, run_id: str, file_sha256: str) -> ContractOutcome:
-    """Check the batch in the temp table ``stage_converted`` (one file, after unit conversion)."""
+def _sql_literal(value: object) -> str:
+    if isinstance(value, datetime):
+        return f"timestamp '{value:%Y-%m-%d %H:%M:%S.%f}'"
+    if isinstance(value, str):
+        return "'" + value.replace("'", "''") + "'"
+    return repr(float(value))  # type: ignore[arg-type]
+
+
+def aggregate_sql(checks: tuple[Check, ...], present: set[str], latest: datetime, table: str) -> tuple[str, list[str]]:
+    """One aggregate query over every row of ``table``: per value check its element,
+    unexpected and missing counts, with great-expectations' semantics (NULLs are missing,
+    not unexpected, for ranges, code lists and column pairs; range bounds inclusive).
+    Returns the SQL and the check ids it counts."""
+    parts = ["count(*) as n"]
+    counted: list[str] = []
+    for check in checks:
+        if check.kind in _STRUCTURAL or not set(check.columns) <= present:
+            continue
+        args = dict(check.arguments)
+        if check.expectation == "ExpectColumnValuesToNotBeNull":
+            c = args["column"]
+            missing, unexpected = "false", f"{c} is null"  # a NULL is what this check counts
+        elif check.expectation == "ExpectColumnValuesToBeBetween":
+            c = args["column"]
+            high = latest if isinstance(args["max_value"], dict) else args["max_value"]
+            missing = f"{c} is null"
+            unexpected = f"{c} < {_sql_literal(args['min_value'])} or {c} > {_sql_literal(high)}"
+        elif check.expectation == "ExpectColumnValuesToBeInSet":
+            c = args["column"]
+            codes = " or ".join(f"{c} = {_sql_literal(v)}" for v in args["value_set"])
+            missing, unexpected = f"{c} is null", f"not ({codes})"
+        elif check.expectation == "ExpectColumnPairValuesAToBeGreaterThanB":
+            a, b = args["column_A"], args["column_B"]
+            missing = f"{a} is null or {b} is null"
+            unexpected = f"{a} < {b}" if args.get("or_equal") else f"{a} <= {b}"
+        else:  # a new kind of check must say how SQL counts it
+            raise RuntimeError(f"no SQL count for {check.expectation}")
+        i = len(counted)
+        parts.append(f"count(*) filter (where {missing}) as m{i}")
+        parts.append(f"count(*) filter (where not ({missing}) and ({unexpected})) as u{i}")
+        counted.append(check.check_id)
+    return f"select {', '.join(parts)} from {table}", counted
+
+
+def _counted_result(check: Check, rows: int, missing: int, unexpected: int, settings: ContractSettings) -> CheckResult:
+    """A value check decided by counts over every row, as great-expectations decides it."""
+    if check.kind == "required":
+        element_count, missing_count, tested = rows, None, rows
+        percent = 100.0 * unexpected / rows if rows else 0.0
+    else:
+        element_count, missing_count, tested = rows, missing, rows - missing
+        percent = 100.0 * unexpected / tested if tested else 0.0
+    mostly = dict(check.arguments).get("mostly", 1.0)
+    success = unexpected == 0 if mostly >= 1.0 else (tested == 0 or (tested - unexpected) / tested >= mostly)
+    if check.kind == "required":
+        observed = f"{unexpected} of {element_count} rows {check.description}"
+    else:
+        observed = f"{unexpected} of {tested} values {check.description}"
+    blocking = (
+        check.severity == CRITICAL
+        and not success
+        and percent > settings.reject_unexpected_percent
+        and unexpected >= settings.min_failing_rows
+    )
+    return CheckResult(
+        check_id=check.check_id,
+        expectation_type=_snake(check.expectation),
+        column_name=", ".join(check.columns) or None,
+        severity=check.severity,
+        success=success,
+        blocking=blocking,
+        element_count=element_count,
+        unexpected_count=unexpected,
+        unexpected_percent=percent,
+        missing_count=missing_count,
+        observed=observed,
+    )
+
+
+def _snake(name: str) -> str:
+    """great-expectations' expectation type of a class name (ExpectColumn... -> expect_column...)."""
+    return "".join(f"_{c.lower()}" if c.isupper() else c for c in name).lstrip("_")
+
+
+def validate_stage(
+    con: duckdb.DuckDBPyConnection,
+    path: Path,
+    run_id: str,
+    file_sha256: str,
+    *,
+    settings: ContractSettings | None = None,
+    now: datetime | None = None,
+) -> ContractOutcome:
+    """Check the batch in the temp table ``stage_converted`` (one file, after unit conversion).
+
+    great-expectations runs the whole suite on the file's first ``SAMPLE_ROWS`` rows, which
+    decides the structural checks; every value check is then counted over all rows in SQL
+    (``aggregate_sql``) and decided from those counts (see the module docstring)."""
+    settings = settings or load_settings()
+    validator = _validator_for(settings)
+    now = now or datetime.now(UTC).replace(tzinfo=None)
     stage_columns = con.sql("select * from stage_converted limit 0").columns
     wanted = [c for c in CONTRACT_COLUMNS if c in stage_columns]
-    frame = con.sql(f"select {', '.join(wanted)} from stage_converted").pl()
-    outcome = validate_frame(frame, path.name)
+    sample = con.sql(f"select {', '.join(wanted)} from stage_converted order by source_row limit {SAMPLE_ROWS}").pl()
+    outcome = validate_frame(sample, path.name, now=now, validator=validator, settings=settings)
+    latest = now + timedelta(minutes=settings.future_tolerance_minutes)
+    query, counted = aggregate_sql(tuple(validator.checks.values()), set(wanted), latest, "stage_converted")
+    counts = con.execute(query).fetchall()[0]
+    rows = int(counts[0])
+    by_id = {r.check_id: n for n, r in enumerate(outcome.results)}
+    for i, check_id in enumerate(counted):
+        sampled = outcome.results[by_id[check_id]]
+        if sampled.observed in ("could not be evaluated", "column missing"):
+            continue  # the column's type or absence already failed the file
+        missing, unexpected = int(counts[1 + 2 * i]), int(counts[2 + 2 * i])
+        check = validator.checks[check_id]
+        outcome.results[by_id[check_id]] = _counted_result(check, rows, missing, unexpected, settings)
     outcome.run_id, outcome.file_sha256, outcome.source_file = run_id, file_sha256, str(path)
     return outcome
 
@@ -528,11 +705,13 @@ __all__ = [
     "CheckResult",
     "ContractOutcome",
     "ContractSettings",
+    "aggregate_sql",
     "build_validator",
     "contract_checks",
     "keep_results",
     "load_settings",
     "pandas_batch",
+    "settings_with",
     "validate_frame",
     "validate_stage",
 ]

@@ -30,6 +30,7 @@ from pipeline.contract import (
     load_settings,
     pandas_batch,
     validate_frame,
+    validate_stage,
 )
 from pipeline.contract import _settings_and_validator as shared_validator
 from pipeline.ingest.load import ingest_file
@@ -296,3 +297,88 @@ def test_no_identifier_reaches_the_contract_results(shared, store, tmp_path, min
     text = " ".join(str(value) for row in store.execute("select * from contract_results").fetchall() for value in row)
     text += f" {loaded.message} {rejected.message}"
     assert "ACC-5" not in text and "MRN-88" not in text
+
+
+# --- every row counted in SQL, great-expectations on a sample ------------------------
+
+
+def stage_outcome(frame: pl.DataFrame) -> ContractOutcome:
+    """The frame as a file's stage table, checked the way a load checks it."""
+    con = duckdb.connect()
+    try:
+        staged = frame.with_row_index("source_row", offset=1)
+        con.register("frame", staged.to_arrow())
+        con.execute("create temp table stage_converted as select * from frame")
+        return validate_stage(con, Path("export.csv"), "r1", "abc", now=NOW)
+    finally:
+        con.close()
+
+
+FRAMES = {
+    "clean": lambda: clean_frame(),
+    "ph mostly bad": lambda: with_values(clean_frame(10), "ph", 6.2, 8),
+    "pao2 half": lambda: with_values(clean_frame(10), "pao2_mmhg", 900.0, 5),
+    "pao2 few": lambda: with_values(clean_frame(4), "pao2_mmhg", 900.0, 4),
+    "spo2 warning": lambda: with_values(clean_frame(10), "spo2_pct", 30.0, 10),
+    "missing values": lambda: with_values(with_values(clean_frame(10), "fio2", None, 7), "collected_at", None, 2),
+    "bounds": lambda: with_values(with_values(clean_frame(), "ph", 6.5, 2), "ph", 8.0, 1),
+    "early": lambda: with_values(clean_frame(20), "collected_at", datetime(1989, 12, 31), 1),
+    "future": lambda: with_values(clean_frame(20), "collected_at", NOW + timedelta(minutes=11), 2),
+    "resulted early": lambda: with_values(clean_frame(20), "resulted_at", NOW - timedelta(days=30), 2),
+    "unknown code": lambda: with_values(clean_frame(10), "o2_device", "jetpack", 6),
+    "missing column": lambda: clean_frame().drop("collected_at"),
+}
+
+
+@pytest.mark.parametrize("name", list(FRAMES))
+def test_sql_counts_over_every_row_agree_with_great_expectations(shared, name):
+    # The oracle is great-expectations itself, validating the whole frame.
+    frame = FRAMES[name]()
+    expected, got = validate(frame), stage_outcome(frame)
+    assert [vars(r) for r in got.results] == [vars(r) for r in expected.results]
+    assert got.rejected == expected.rejected
+
+
+def test_value_checks_see_rows_beyond_the_sample(shared, monkeypatch):
+    import pipeline.contract as contract_module
+
+    monkeypatch.setattr(contract_module, "SAMPLE_ROWS", 5)
+    # The first 5 rows are clean; 8 of the 10 later ones have an impossible pH.
+    frame = pl.concat([clean_frame(5), with_values(clean_frame(10), "ph", 6.2, 8)])
+    outcome = stage_outcome(frame)
+    ph = result(outcome, "ph_range")
+    assert (ph.element_count, ph.unexpected_count) == (15, 8)
+    assert ph.unexpected_percent == pytest.approx(100 * 8 / 15)
+    # 8 of 15 is more than half, and at least 5 rows: rejected (common practice thresholds),
+    # although the sample great-expectations saw was clean.
+    assert ph.blocking and outcome.rejected
+
+
+def test_a_site_can_override_the_contract_thresholds(tmp_path):
+    from pipeline.config import load_config
+    from pipeline.errors import ConfigError
+
+    profile = FIXTURES / "profiles" / "minimal.toml"
+    base = f'[[inputs]]\npath = "in"\nprofile = "{profile.as_posix()}"\n'
+    site = tmp_path / "site.toml"
+    site.write_text(base + "[contract]\nreject_unexpected_percent = 20.0\nmin_failing_rows = 2\n", encoding="utf-8")
+    settings = load_config(site).contract
+    assert (settings.reject_unexpected_percent, settings.min_failing_rows) == (20.0, 2)
+    assert settings.earliest_collected_at == load_settings().earliest_collected_at  # the rest from the catalogue
+    outcome = validate_stage_with(with_values(clean_frame(10), "pao2_mmhg", 900.0, 3), settings)
+    assert outcome.rejected  # 30 % of rows, 3 rows: rejected under the site's thresholds, not the defaults
+    for bad in ("reject_unexpected_percent = 150", 'min_failing_rows = "5"', "earliest = 1990-01-01",
+                'earliest_collected_at = "1990"'):  # fmt: skip
+        site.write_text(base + f"[contract]\n{bad}\n", encoding="utf-8")
+        with pytest.raises(ConfigError, match=r"\[contract\]"):
+            load_config(site)
+
+
+def validate_stage_with(frame: pl.DataFrame, settings) -> ContractOutcome:
+    con = duckdb.connect()
+    try:
+        con.register("frame", frame.with_row_index("source_row", offset=1).to_arrow())
+        con.execute("create temp table stage_converted as select * from frame")
+        return validate_stage(con, Path("export.csv"), "r1", "abc", now=NOW, settings=settings)
+    finally:
+        con.close()

@@ -25,7 +25,7 @@ from typing import Protocol
 import duckdb
 import polars as pl
 
-from pipeline.contract import ContractOutcome, keep_results, validate_stage
+from pipeline.contract import ContractOutcome, ContractSettings, keep_results, validate_stage
 from pipeline.errors import FileRejected
 from pipeline.ingest import engine
 from pipeline.ingest.parse import (
@@ -470,11 +470,14 @@ def ingest_file(
     *,
     keep_patient_id: bool = True,
     replacing: Replacing | None = None,
+    contract_settings: ContractSettings | None = None,
 ) -> FileOutcome:
     """Load one file; never raises for a problem of the file itself (see ``outcome``).
 
     ``replacing`` loads a file the ledger already holds again, in place of what it loaded
-    (``abg-audit reload``): its hooks run inside the file's transaction (``Replacing``)."""
+    (``abg-audit reload``): its hooks run inside the file's transaction (``Replacing``).
+    ``contract_settings``: the site's batch contract thresholds (``SiteConfig.contract``;
+    the catalogue's when None)."""
     record = profile.record
     result = FileOutcome(path=path, profile=profile.name, kind=record.kind)
     try:
@@ -516,7 +519,7 @@ def ingest_file(
         if replacing is not None:
             replacing.before_merge(con, result)
         if record.batch_contract:
-            contract = validate_stage(con, path, run_id, result.sha256)
+            contract = validate_stage(con, path, run_id, result.sha256, settings=contract_settings)
             keep_results(con, contract)
             contract.raise_if_rejected()
         run_sql(con, "ingest/30_classify.sql")
