@@ -9,19 +9,25 @@ moves every collection time five hours later, and 02:30 on 8 March does not exis
 from __future__ import annotations
 
 import io
+import signal
+import subprocess
+import time
 from datetime import datetime
 from pathlib import Path
 
 import duckdb
+import pytest
 from click.testing import CliRunner
 
 from pipeline.cli import main
 from pipeline.config import load_config
+from pipeline.ingest.load import ingest_file
 from pipeline.log import Log
 from pipeline.profile import load_profile
-from pipeline.reload import REASON, ReloadLoader
+from pipeline.reload import REASON, HeldFile, ReloadLoader, Replacement
 from pipeline.run import RunResult, run_pipeline
-from tests.nightly_site import HEADER, env, keep_umask, make_site
+from pipeline.store import open_store
+from tests.nightly_site import HEADER, cli, env, keep_umask, make_site
 
 __all__ = ["keep_umask"]  # an autouse fixture
 
@@ -283,3 +289,96 @@ def test_reload_from_the_command_line_records_a_reload_run(tmp_path):
     assert rows(config_path, "select count(*) from superseded_records where superseded_reason like '%: zone'") == [
         (30,)
     ]
+
+
+@pytest.mark.slow
+def test_a_reload_killed_inside_a_file_leaves_that_file_as_it_was_and_can_run_again(tmp_path):
+    root = tmp_path / "site"
+    config_path = site_in_wrong_zone(root, days=2)
+    run(config_path)
+    fix_zone(root)
+    store = load_config(config_path).store_path
+    before = rows(config_path, "select sample_id, collected_at, version from records order by 1")
+    signal_file = tmp_path / "paused"
+    child = subprocess.Popen(
+        cli("reload", "--config", str(config_path), "--profile", "test_minimal"),
+        env=env(ABG_AUDIT_TEST_PAUSE_AT="load:2", ABG_AUDIT_TEST_PAUSE_SIGNAL=str(signal_file)),
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+    )
+    deadline = time.monotonic() + 180  # a safety net for a hung child, not a timing assertion
+    while not signal_file.exists() and child.poll() is None and time.monotonic() < deadline:
+        time.sleep(0.05)
+    child.send_signal(signal.SIGKILL)
+    child.communicate()
+    assert signal_file.exists(), "the reload never reached the second file"
+
+    # The first file's reload committed; the second file's, killed inside its transaction, did not.
+    after = {s: (at, v) for s, at, v in rows(config_path, "select sample_id, collected_at, version from records")}
+    assert {s for s, (_at, v) in after.items() if v == 2} == {s for s, _at, _v in before if s.startswith("S1-")}
+    assert {s for s, (_at, v) in after.items() if v == 1} == {s for s, _at, _v in before if s.startswith("S2-")}
+    assert rows(config_path, "select count(*) from ingested_files where reloaded_at is not null") == [(1,)]
+    assert rows(config_path, "select count(*) - count(distinct sample_id) from records") == [(0,)]
+    assert store.exists()
+
+    # Reloading again finishes the work: every record once, in the right zone.
+    assert reload(config_path, profile_name="test_minimal").exit_code == 0
+    totals = "select count(*), count(distinct sample_id), min(version), max(version) from records"
+    assert rows(config_path, totals) == [(60, 60, 2, 2)]
+    assert rows(config_path, "select collected_at from records where sample_id = 'S2-1'") == [
+        (datetime(2026, 3, 2, 15, 1),)
+    ]
+    assert rows(config_path, "select outcome from runs where command = 'reload' order by started_at") == [
+        ("interrupted",),
+        ("succeeded",),
+    ]
+
+
+RX_PROFILE = """\
+[profile]
+name = "test_rx"
+kind = "prescriptions"
+datetime_format = "%Y-%m-%d %H:%M"
+timezone = "{zone}"
+
+[columns]
+prescription_id = "id"
+patient_id = "mrn"
+start_at = "start"
+end_at = "end"
+"""
+RX_EXPORT = "id,mrn,start,end\nRX1,P1,2026-03-02 09:00,\nRX2,P2,2026-03-02 10:00,2026-03-02 12:00\n"
+
+
+def test_a_prescriptions_file_is_read_again_the_same_way(tmp_path):
+    profile_path = tmp_path / "rx.toml"
+    profile_path.write_text(RX_PROFILE.format(zone="UTC"), encoding="utf-8")
+    export = tmp_path / "rx.csv"
+    export.write_text(RX_EXPORT, encoding="utf-8")
+    con = open_store(tmp_path / "store" / "s.duckdb")
+    try:
+        wrong = load_profile(profile_path)
+        first = ingest_file(con, export, wrong, "r1", b"reload-test-key-0123456789abcdef")
+        assert first.rows_loaded == 2
+        loaded_at = con.execute("select loaded_at from ingested_files").fetchall()[0][0]
+        profile_path.write_text(RX_PROFILE.format(zone="America/New_York"), encoding="utf-8")
+        fixed = load_profile(profile_path)
+        held = HeldFile(first.sha256, export, fixed, loaded_at, wrong.sha256)
+        replacement = Replacement(held, "r2", held.reason("zone"))
+        again = ingest_file(con, export, fixed, "r2", b"reload-test-key-0123456789abcdef", replacing=replacement)
+        assert again.outcome == "loaded" and replacement.counts["changed"] == 2
+        current = "select prescription_id, start_at, end_at, version from prescriptions order by 1"
+        assert con.execute(current).fetchall() == [
+            ("RX1", datetime(2026, 3, 2, 14, 0), None, 2),
+            ("RX2", datetime(2026, 3, 2, 15, 0), datetime(2026, 3, 2, 17, 0), 2),
+        ]
+        old = con.execute(
+            "select prescription_id, start_at, superseded_reason from superseded_prescriptions order by 1"
+        ).fetchall()
+        assert [(p, at) for p, at, _ in old] == [("RX1", datetime(2026, 3, 2, 9)), ("RX2", datetime(2026, 3, 2, 10))]
+        assert all(reason.startswith(f"{REASON} (test_rx ") and reason.endswith(": zone") for *_, reason in old)
+        assert con.execute("select loaded_at, profile_sha256, run_id from ingested_files").fetchall() == [
+            (loaded_at, fixed.sha256, "r2")
+        ]
+    finally:
+        con.close()
