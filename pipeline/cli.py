@@ -383,8 +383,14 @@ def format_run(run: dict[str, Any]) -> str:
 @main.command("check-profile", epilog=EXIT_CODES_HELP)
 @click.argument("profile_path", type=click.Path(dir_okay=False, path_type=Path))
 @click.argument("export_files", nargs=-1, type=click.Path(dir_okay=False, path_type=Path))
+@click.option(
+    "--config",
+    "config_path",
+    type=click.Path(dir_okay=False, path_type=Path),
+    help="Site configuration whose [contract] thresholds apply (default: the catalogue's).",
+)
 @handle_errors
-def check_profile(profile_path: Path, export_files: tuple[Path, ...]) -> None:
+def check_profile(profile_path: Path, export_files: tuple[Path, ...], config_path: Path | None) -> None:
     """Check a mapping profile, and try it on export files exactly as a run would load them.
 
     Each file is loaded into a scratch store held in memory (the site's store is not
@@ -399,10 +405,12 @@ def check_profile(profile_path: Path, export_files: tuple[Path, ...]) -> None:
     Example:
       abg-audit check-profile profiles/demo_us_style.toml exports/2026-11-30.csv
     """
+    from pipeline.config import load_config
     from pipeline.errors import NoInputError
     from pipeline.preflight import try_profile
     from pipeline.profile import load_profile
 
+    contract = load_config(config_path).contract if config_path else None
     profile = load_profile(profile_path)
     click.echo(
         f"profile {profile.name}: {len(profile.columns)} columns mapped, format {profile.format}, "
@@ -411,7 +419,7 @@ def check_profile(profile_path: Path, export_files: tuple[Path, ...]) -> None:
     )
     missing = [path for path in export_files if not path.is_file()]
     failed = False
-    for trial in try_profile(profile, [path for path in export_files if path.is_file()]):
+    for trial in try_profile(profile, [path for path in export_files if path.is_file()], contract):
         f = trial.outcome
         if f.outcome == "rejected":
             click.echo(f"  {f.path.name}: would be REJECTED ({f.reason_code}): {f.message}")

@@ -18,6 +18,7 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
+from pipeline.contract import ContractSettings
 from pipeline.errors import ConfigError, StorageError
 from pipeline.ingest.load import FileOutcome, ingest_file
 from pipeline.profile import Profile
@@ -101,21 +102,26 @@ class ProfileTrial:
     contract_warnings: list[str]  # batch-contract checks that failed without rejecting the file
 
 
-def try_profile(profile: Profile, paths: Sequence[Path]) -> list[ProfileTrial]:
+def try_profile(
+    profile: Profile, paths: Sequence[Path], contract_settings: ContractSettings | None = None
+) -> list[ProfileTrial]:
     """Load the files with the profile into a scratch in-memory store, exactly as a run loads
     them (``ingest_file``: dialect, columns, codes, dates, unit sanity, the batch contract,
     quarantine, duplicates), and report each outcome; nothing reaches the site's store.
 
     Pseudonyms are made with a throwaway key (nothing made here is kept, so the site's key is
     not needed) and identifiers are not kept. Files are loaded in the order given, into the
-    same scratch store, so a repeated row counts as a duplicate as it would on a night."""
+    same scratch store, so a repeated row counts as a duplicate as it would on a night.
+    ``contract_settings``: a site's batch-contract thresholds (default: the catalogue's)."""
     key = secrets.token_hex(32).encode()
     trials = []
     with tempfile.TemporaryDirectory(prefix="abg-audit-check-") as scratch:
         con = open_scratch_store(Path(scratch) / "spill")
         try:
             for path in paths:
-                outcome = ingest_file(con, path, profile, "check-profile", key, keep_patient_id=False)
+                outcome = ingest_file(
+                    con, path, profile, "check-profile", key, keep_patient_id=False, contract_settings=contract_settings
+                )
                 reasons = con.execute(
                     "select reason_code, count(*) from quarantine where file_sha256 = ? group by all "
                     "order by count(*) desc, reason_code",

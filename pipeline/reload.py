@@ -221,6 +221,7 @@ class ReloadLoader:
                 key,
                 keep_patient_id=self.config.keep_patient_id,
                 replacing=replacement,
+                contract_settings=self.config.contract,
             )
             if outcome.outcome == "loaded":
                 counts = replacement.counts

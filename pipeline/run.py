@@ -473,7 +473,13 @@ def _run_stages(
                 )
             else:
                 outcome = ingest_file(
-                    con, path, source.profile, result.run_id, key, keep_patient_id=config.keep_patient_id
+                    con,
+                    path,
+                    source.profile,
+                    result.run_id,
+                    key,
+                    keep_patient_id=config.keep_patient_id,
+                    contract_settings=config.contract,
                 )
                 if before is not None and outcome.outcome != "rejected":
                     _remember_fingerprint(con, path, before, outcome.sha256)

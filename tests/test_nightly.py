@@ -467,6 +467,22 @@ def test_an_older_store_gains_the_flag_kind_columns_of_runs(tmp_path):
     assert {"flags_data_quality", "flags_documentation", "flags_clinical"} <= names
 
 
+def test_the_sites_contract_thresholds_apply_to_runs_and_to_check_profile(tmp_path):
+    # Every sample of the site is collected in March 2026: a site that starts its window on
+    # 2026-04-01 rejects the file by its batch contract (collected_at_window is critical).
+    config_path = make_site(tmp_path / "site", days=1, rejected_file=False)
+    with config_path.open("a", encoding="utf-8") as handle:
+        handle.write("\n[contract]\nearliest_collected_at = 2026-04-01\n")
+    result = run_here(config_path)
+    assert [(f.outcome, f.reason_code) for f in result.files] == [("rejected", "CONTRACT_FAILED")]
+    day = str(config_path.parent / "exports" / "day01.csv")
+    profile = str(config_path.parent / "profile.toml")
+    with_site = CliRunner().invoke(main, ["check-profile", profile, day, "--config", str(config_path)])
+    assert with_site.exit_code == 65 and "(CONTRACT_FAILED)" in with_site.output
+    without = CliRunner().invoke(main, ["check-profile", profile, day])
+    assert without.exit_code == 0, without.output
+
+
 def test_unexpected_error_is_one_line_without_its_message_and_the_run_is_marked_failed(tmp_path, monkeypatch):
     config_path = make_site(tmp_path / "site", rejected_file=False)
 
