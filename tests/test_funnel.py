@@ -169,6 +169,29 @@ def test_additive_tau2_is_the_dersimonian_laird_estimate(units, pct):
     assert {r["overdispersion"] for r in got} == {"additive"}
 
 
+def test_estimate_macros_directly_against_dersimonian_laird():
+    # The three estimate macros called on their own, on the sums the funnel SQL passes them. Oracle: statsmodels
+    # combine_effects(method_re="dl") (Q = sum z^2 and tau^2), and w = 1 / s^2 with s^2 = p0 (1 - p0) / n.
+    p0, z, variance = z_scores(SPREAD)
+    dl = dersimonian_laird(SPREAD)
+    con = duckdb.connect()
+    install_macros(con)
+    weights = [con.execute("select funnel_weight(?, ?)", [p0, u.n]).fetchone()[0] for u in SPREAD]
+    assert weights == pytest.approx(list(1 / variance), rel=1e-12)
+    sum_z2, units, sum_w, sum_w2 = (
+        float((z**2).sum()),
+        len(SPREAD),
+        float(sum(weights)),
+        float(sum(w * w for w in weights)),
+    )
+    phi, tau2 = con.execute(
+        "select overdispersion_phi(?, ?), overdispersion_tau2(?, ?, ?, ?)",
+        [sum_z2, units, sum_z2, units, sum_w, sum_w2],
+    ).fetchone()
+    assert phi == pytest.approx(dl.q / units, rel=1e-9)
+    assert tau2 == pytest.approx(dl.tau2, rel=1e-9)
+
+
 def test_tau2_is_zero_when_units_vary_less_than_chance():
     # Oracle: statsmodels combine_effects(method_re="dl") returns the moment estimate untruncated (negative here:
     # Q < I - 1); DerSimonian and Laird, and Spiegelhalter 2005 (from memory), take max(0, .). The limits are

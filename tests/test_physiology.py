@@ -27,7 +27,7 @@ from pipeline.sql_files import SQL_DIR, install_macros
 MACRO_FILES = sorted((SQL_DIR / "macros").glob("*.sql"))
 TEST_FILES = [
     Path(__file__).with_name(name)
-    for name in ("test_units.py", "test_physiology.py", "test_devices.py", "test_audit.py")
+    for name in ("test_units.py", "test_physiology.py", "test_devices.py", "test_audit.py", "test_funnel.py")
 ]
 MACRO_RE = re.compile(
     r"CREATE\s+(?:OR\s+REPLACE\s+)?(?:TEMP(?:ORARY)?\s+)?MACRO\s+(\w+)\s*\(([^)]*)\)\s*AS", re.IGNORECASE
@@ -125,6 +125,7 @@ STRING_PARAMS = {
     "unit": ["mmHg", "kPa", "fraction", "percent", "C", "F", "g/dL", "g/L", "mmol/L", "mg/dL", "zzz"],
     "method": ["age_over_4_plus_4", "age_plus_10_over_4", "mellemgaard_1966", "zzz"],
     "device": [*OXYGEN_DEVICES, "zzz"],
+    "overdispersion": ["none", "additive", "multiplicative", "zzz"],
 }
 EDGE_NUMBERS = [0.0, -1.0, 0.5, 100.0]
 

@@ -174,13 +174,13 @@ CREATE OR REPLACE TEMP MACRO overdispersion_phi(sum_z2, units) AS
 --            (z_i winsorised) and w_i = funnel_weight(p0, n_i): the between-unit variance, on the
 --            proportion scale, of an additive random-effects model
 --   Units:   standard deviations^2, count, weights -> proportion^2
---   Valid:   units >= 2 and sum_w - sum_w2 / sum_w > 0 (NULL otherwise)
+--   Valid:   units >= 2, sum_w > 0 and sum_w - sum_w2 / sum_w > 0 (NULL otherwise)
 --   Source:  Spiegelhalter 2005 (from memory); the DerSimonian R, Laird N 1986 (Control Clin Trials
 --            7:177) moment estimator with Q = sum z_i^2, its fixed-effect mean being p0 (citation
 --            from memory)
 --   Status:  verified against statsmodels combine_effects(method_re='dl') (tests/test_funnel.py)
 CREATE OR REPLACE TEMP MACRO overdispersion_tau2(sum_z2, units, sum_w, sum_w2) AS
-    CASE WHEN CAST(units AS DOUBLE) >= 2.0
+    CASE WHEN CAST(units AS DOUBLE) >= 2.0 AND CAST(sum_w AS DOUBLE) > 0.0
               AND CAST(sum_w AS DOUBLE) - CAST(sum_w2 AS DOUBLE) / CAST(sum_w AS DOUBLE) > 0.0 THEN
         greatest(0.0, (CAST(sum_z2 AS DOUBLE) - (CAST(units AS DOUBLE) - 1.0))
                       / (CAST(sum_w AS DOUBLE) - CAST(sum_w2 AS DOUBLE) / CAST(sum_w AS DOUBLE)))
