@@ -478,8 +478,8 @@ def reload(
     each file loaded, one transaction per file: a record whose values change keeps its
     earlier version in superseded_records with the reason; a record the re-read no longer
     holds (its row is quarantined now) leaves records the same way, and an earlier delivery's
-    version of it from another file becomes current again; files loaded later that hold a
-    record one of these files delivered are read again too, so a later delivery still wins.
+    version of it from another file becomes current again; a record whose current version
+    came later from another file stays as it is (the re-read of it is kept as history).
     Then metrics, flags, audit tables and outputs are brought up to date as in a run
     (runs.command = 'reload'). A file the current profile rejects is left as it was (exit 65).
 

@@ -18,9 +18,12 @@ and what the file loaded before is replaced in the same transaction (one per fil
   re-read; the ledger keeps the file's first ``loaded_at`` and records the new profile hash,
   ``reloaded_at`` and ``reload_reason``.
 
-Files are read again in the order they were first loaded, and a file loaded later that holds
-the current version of a record one of them delivered is read again too, so a later
-delivery still wins. A file whose content or profile now fails (rejected) is left as it was.
+- a record the file delivered whose current version a file loaded after it holds stays as it
+  is (a later delivery wins, as it did); the re-read of it is kept as history in the
+  superseded table when it differs from the file's earlier reading.
+
+Files are read again in the order they were first loaded. A file whose content or profile
+now fails (rejected) is left as it was.
 The run that does this is an ordinary run (``runs.command = 'reload'``) that then analyses,
 audits and writes the outputs (``pipeline.run.run_pipeline`` with a loader).
 """
@@ -169,7 +172,6 @@ class ReloadLoader:
                         "changed since); `abg-audit run` loads new files"
                     )
                 entries[sha256] = (row[0], path)
-        self._add_later_holders(con, entries)
         for (sha256, _source_path, name, loaded_at, recorded), path in sorted(
             entries.values(), key=lambda item: (item[0][3], item[0][0])
         ):
@@ -180,33 +182,6 @@ class ReloadLoader:
         if not self.planned:
             raise NoInputError(f"no file to read again: {', '.join(self.missing)} not found")
         return sum(held.path.stat().st_size for held in self.planned)
-
-    def _add_later_holders(
-        self, con: duckdb.DuckDBPyConnection, entries: dict[str, tuple[tuple, Path]]
-    ) -> None:
-        """Add, until none is left, the files loaded later that hold the current version of a
-        record a planned file delivered (05_later_holders.sql): re-read alone, the earlier
-        file would replace the later delivery."""
-        kinds = {
-            row[0]: self._profile(row[2]).record for row, _path in entries.values()
-        }
-        for record in {spec.kind: spec for spec in kinds.values()}.values():
-            while True:
-                planned = [sha for sha, spec in kinds.items() if spec.kind == record.kind]
-                con.execute("create or replace temp table reload_set (file_sha256 varchar)")
-                con.executemany("insert into reload_set values (?)", [[sha] for sha in planned])
-                later = [row[0] for row in con.execute(_sql("reload/05_later_holders.sql", record)).fetchall()]
-                if not later:
-                    break
-                for sha256 in later:
-                    row = con.execute(
-                        "select file_sha256, source_path, profile, loaded_at, profile_sha256 from ingested_files "
-                        "where file_sha256 = ?",
-                        [sha256],
-                    ).fetchall()[0]
-                    entries[sha256] = (row, Path(row[1]))
-                    kinds[sha256] = self._profile(row[2]).record
-        con.execute("drop table if exists reload_set")
 
     def load(self, con: duckdb.DuckDBPyConnection, key: bytes, run_id: str, log: Log) -> Iterator[FileOutcome]:
         """Read each planned file again, one transaction each; yield its outcome."""
@@ -229,7 +204,8 @@ class ReloadLoader:
                     f"{held.path.name}: read again with profile {held.profile.name} "
                     f"({held.profile.sha256[:12]}): {counts.get('changed', 0)} records changed, "
                     f"{counts.get('unchanged', 0)} unchanged, {counts.get('gone', 0)} no longer records "
-                    f"({counts.get('restored', 0)} of them back to an earlier delivery's version)",
+                    f"({counts.get('restored', 0)} of them back to an earlier delivery's version), "
+                    f"{counts.get('later', 0)} held by a later delivery and left as they were",
                     file=held.path.name,
                     **{f"records_{name}": value for name, value in counts.items()},
                 )
@@ -243,8 +219,9 @@ class ReloadLoader:
 
 class Replacement:
     """The ``replacing`` hook of ``ingest_file`` for one held file: ``before_merge`` takes out
-    what the file loaded (10_retire.sql), ``after_merge`` keeps the earlier versions with the
-    reason and settles the records the re-read no longer holds (20_settle.sql). Both run
+    what the file loaded and sets aside the records later deliveries hold (10_retire.sql),
+    ``after_merge`` keeps the earlier versions with the reason, settles the records the
+    re-read no longer holds and puts the later deliveries back (20_settle.sql). Both run
     inside the file's transaction, so a failure leaves the file as it was."""
 
     def __init__(self, held: HeldFile, run_id: str, reason: str) -> None:
@@ -273,5 +250,6 @@ class Replacement:
         )
         self.counts = dict(con.execute("select outcome, count(*) from reload_outcomes group by all").fetchall())
         self.counts["restored"] = con.execute("select count(*) from reload_restored").fetchall()[0][0]
-        for table in ("reload_previous", "reload_ledger", "reload_outcomes", "reload_restored"):
+        self.counts["later"] = con.execute("select count(*) from reload_later").fetchall()[0][0]
+        for table in ("reload_previous", "reload_ledger", "reload_later", "reload_outcomes", "reload_restored"):
             con.execute(f"drop table if exists {table}")

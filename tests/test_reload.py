@@ -215,20 +215,38 @@ def test_a_record_gone_without_an_earlier_delivery_leaves_every_derived_table(tm
     assert rows(config_path, "select count(*) from superseded_records where sample_id = 'G-1'") == [(1,)]
 
 
-def test_reloading_an_earlier_file_reads_the_later_delivery_again_so_it_still_wins(tmp_path):
+def test_reloading_an_earlier_file_leaves_a_later_delivery_current_and_keeps_the_reread_as_history(tmp_path):
     root = tmp_path / "site"
     config_path = site_in_wrong_zone(root, days=1)
     earlier = write_export(root, "day08a.csv", [EARLIER.replace("2026-03-08 03:30", "2026-03-08 06:30")])
     run(config_path)
     write_export(root, "day08b.csv", [EARLIER.replace(",91,", ",95,"), OTHER])
-    run(config_path)
+    run(config_path)  # the later file corrects G-1 (PaO2 91 -> 95)
+    before = rows(config_path, "select * from records where sample_id = 'G-1'")
     fix_zone(root)
-    result = reload(config_path, files=[earlier])
+    result = reload(config_path, files=[earlier], operator_reason="zone")
     assert result.exit_code == 0
-    assert [f.path.name for f in result.files] == ["day08a.csv", "day08b.csv"]
-    assert rows(config_path, "select pao2_mmhg, collected_at from records where sample_id = 'G-1'") == [
-        (95.0, datetime(2026, 3, 8, 7, 30))  # 03:30 EDT (UTC-4, after the change at 02:00)
+    assert [f.path.name for f in result.files] == ["day08a.csv"]
+    # The later delivery is still the record, exactly as it was (it was not read again).
+    assert rows(config_path, "select * from records where sample_id = 'G-1'") == before
+    # The earlier file's new reading (06:30 EDT = 10:30 UTC) is history, superseded by the later file.
+    history = rows(
+        config_path,
+        "select collected_at, pao2_mmhg, superseded_by_file like '%day08b%', superseded_reason is not null "
+        "from superseded_records where sample_id = 'G-1' order by superseded_reason nulls first",
+    )
+    assert history == [
+        (datetime(2026, 3, 8, 6, 30), 91.0, True, False),  # the first reading, replaced by the correction
+        (datetime(2026, 3, 8, 10, 30), 91.0, True, True),  # the re-read, with the reason
     ]
+    # Read again with the same profile: nothing new to keep.
+    assert reload(config_path, files=[earlier]).exit_code == 0
+    assert rows(config_path, "select count(*) from superseded_records where sample_id = 'G-1'") == [(2,)]
+    assert rows(config_path, "select * from records where sample_id = 'G-1'") == before
+    # The later file (and day 1) were loaded with the old profile too, and the runs say so.
+    stream = io.StringIO()
+    run(config_path, stream)
+    assert "2 file(s) in the store were loaded with an earlier version of profile 'test_minimal'" in stream.getvalue()
 
 
 def test_reload_refuses_a_file_the_store_does_not_hold_and_names_missing_ones(tmp_path):

@@ -2,7 +2,7 @@
 -- entry written: keep each earlier version with the reason, number the versions on, and
 -- settle the records the re-read no longer holds. Parameters: $file_sha256, $source_file,
 -- $run_id, $reason. {table}, {superseded_table} and {key}: see 10_retire.sql.
--- Every record in reload_previous ends in exactly one of: unchanged (same values: kept as it
+-- Every record in reload_previous (the file's current records) ends in exactly one of: unchanged (same values: kept as it
 -- was, not stored twice), changed (the earlier version to {superseded_table} with the reason,
 -- the re-read as version + 1) or gone (no record in the re-read: its row is quarantined now,
 -- or no longer in the file; the earlier version to {superseded_table} with the reason, and the
@@ -73,6 +73,35 @@ select
     $run_id as run_id
 from reload_restored as r
 join reload_outcomes as o on o.record_key = r.{key};
+
+-- Records a later delivery holds (reload_later, 10_retire.sql): this file's re-read of them is
+-- kept as history (superseded by that delivery, with the reason) when it differs from this
+-- file's earlier reading, and the later delivery is put back as it was.
+insert into {superseded_table} by name
+select
+    n.* replace (coalesce(e.version, n.version) as version),
+    l.source_file as superseded_by_file,
+    l.source_row as superseded_by_row,
+    $run_id as superseded_in_run,
+    $reason as superseded_reason
+from {table} as n
+join reload_later as l on l.{key} = n.{key}
+left join (
+    -- this file's latest reading of each (the first load's, or an earlier reload's)
+    select {key}, arg_max(content_hash, rowid) as content_hash, max(version) as version
+    from {superseded_table}
+    where file_sha256 = $file_sha256 and version >= 1
+    group by {key}
+) as e on e.{key} = n.{key}
+where n.file_sha256 = $file_sha256
+  and n.content_hash is distinct from e.content_hash;
+
+delete from {table}
+where {key} in (select {key} from reload_later)
+  and file_sha256 = $file_sha256;
+
+insert into {table} by name
+select * from reload_later;
 
 -- Earlier versions of other files that the re-read corrected (the merge moved them): the reason.
 update {superseded_table}
