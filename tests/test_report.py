@@ -427,7 +427,7 @@ def chromium(page: Path, tmp: Path, *extra: str) -> tuple[str, list[str]]:
     traffic (update and time checks), failing here too.
     """
     if not Path(CHROMIUM).exists():
-        pytest.fail("chromium is not installed (Debian: apt-get install chromium chromium-driver; .ci/run does it)")
+        pytest.fail("chromium is not installed (Debian: apt-get install chromium; scripts/install-test-deps does it)")
     netlog = tmp / f"{page.stem}-net.json"
     command = [
         CHROMIUM,
