@@ -336,7 +336,7 @@ STORE_TABLES = {
 }
 
 
-@settings(max_examples=40, deadline=None, suppress_health_check=list(HealthCheck))
+@settings(max_examples=25, deadline=None, suppress_health_check=list(HealthCheck))
 @given(content=typed_rows())
 def test_sql_parsing_agrees_with_the_python_parser_cell_by_cell(content: str) -> None:
     """Every cell either parsed in SQL to exactly what the Python parser gives, or was
