@@ -602,3 +602,18 @@ def test_a_merge_that_would_repeat_a_key_rolls_the_file_back(store, tmp_path, mi
         ingest_file(store, path, minimal, "r2", KEY)
     assert store.execute("select count(*), count(distinct sample_id) from records").fetchall() == [(2, 2)]
     assert store.execute("select count(*) from ingested_files").fetchall() == [(1,)]
+
+
+def test_cp1252_export_is_read_by_the_python_reader_and_loads(store, tmp_path):
+    # DuckDB has no cp1252 decoder without an extension; the Python reader decodes the file
+    # and the same SQL types its cells. Byte 0x80 is the euro sign in cp1252 (the Windows-1252
+    # code page table, as Python's codec implements it).
+    text = (FIXTURES / "profiles" / "minimal.toml").read_text(encoding="utf-8")
+    path = tmp_path / "cp1252.toml"
+    path.write_text(text.replace('encoding = "utf-8"', 'encoding = "cp1252"'), encoding="utf-8")
+    profile = load_profile(path)
+    content = (HEADER + good_rows(2).replace("W1", "Ward \u20ac")).encode("cp1252")
+    assert b"\x80" in content
+    f = load(store, tmp_path, content, profile)
+    assert (f.outcome, f.rows_loaded) == ("loaded", 2)
+    assert store.execute("select distinct unit from records").fetchall() == [("Ward \u20ac",)]
