@@ -210,10 +210,22 @@ class RecordSpec:
     superseded_table: str
     convert_sql: str  # stage 1 (units, hard limits, row checks) -> stage_units
     keys_sql: str  # stage 1b (pseudonyms, content hash) -> stage_converted
-    merge_sql: str  # stage 3: into the kind's tables
-    unique_keys_sql: str  # after stage 3: rows beyond one per key among the file's keys (must be 0)
+    value_notes: bool  # keep qualified values and text results in record_value_notes
     unit_sanity_sql: str | None  # file-level unit medians (pipeline.ingest.load.UNIT_SANITY)
     batch_contract: bool  # run the great-expectations batch contract (pipeline/contract.py)
+
+    @cached_property
+    def sql_names(self) -> dict[str, str]:
+        """The kind's names for the shared stage SQL that has them in braces (40_merge.sql,
+        45_unique_keys.sql): table names cannot be query parameters."""
+        return {
+            "table": self.table,
+            "superseded_table": self.superseded_table,
+            "key": self.key_field,
+            "record_kind": self.record_kind,
+            # merged_duplicates.sample_id holds the key of a sample and nothing for other kinds
+            "sample_id": self.key_field if self.key_field == "sample_id" else "null",
+        }
 
     @cached_property
     def fields_by_name(self) -> dict[str, Field]:
@@ -241,9 +253,8 @@ SAMPLES = RecordSpec(
     superseded_table="superseded_records",
     convert_sql="ingest/10_convert.sql",
     keys_sql="ingest/15_keys_and_hash.sql",
-    merge_sql="ingest/40_merge.sql",
-    unique_keys_sql="ingest/45_unique_keys.sql",
     unit_sanity_sql="ingest/20_unit_sanity.sql",
+    value_notes=True,
     batch_contract=True,
 )
 # The batch contract is the sample record's (analyte ranges, sample codes); a prescription
@@ -258,9 +269,8 @@ PRESCRIPTIONS = RecordSpec(
     superseded_table="superseded_prescriptions",
     convert_sql="ingest/10_convert_prescriptions.sql",
     keys_sql="ingest/15_keys_and_hash_prescriptions.sql",
-    merge_sql="ingest/40_merge_prescriptions.sql",
-    unique_keys_sql="ingest/45_unique_keys_prescriptions.sql",
     unit_sanity_sql="ingest/20_unit_sanity_prescriptions.sql",
+    value_notes=False,
     batch_contract=False,
 )
 RECORD_SPECS: dict[str, RecordSpec] = {spec.kind: spec for spec in (SAMPLES, PRESCRIPTIONS)}

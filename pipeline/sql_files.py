@@ -6,6 +6,7 @@ SQL engine over Parquet) and reviewable on its own.
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from functools import cache
 from pathlib import Path
 
@@ -20,9 +21,18 @@ def read_sql(relative_path: str) -> str:
     return (SQL_DIR / relative_path).read_text(encoding="utf-8")
 
 
-def run_sql(con: duckdb.DuckDBPyConnection, relative_path: str, **params: object) -> None:
-    """Execute every statement of a SQL file, binding the ``$name`` parameters it uses."""
-    for statement in con.extract_statements(read_sql(relative_path)):
+def run_sql(
+    con: duckdb.DuckDBPyConnection, relative_path: str, *, sql_names: Mapping[str, str] | None = None, **params: object
+) -> None:
+    """Execute every statement of a SQL file, binding the ``$name`` parameters it uses.
+
+    ``sql_names`` fill the ``{name}`` placeholders of a file shared by several record kinds
+    (table and column names, which cannot be query parameters; pipeline/schema.py
+    RecordSpec.sql_names)."""
+    text = read_sql(relative_path)
+    if sql_names is not None:
+        text = text.format_map(sql_names)
+    for statement in con.extract_statements(text):
         names = statement.named_parameters
         missing = names - params.keys()
         if missing:

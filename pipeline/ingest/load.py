@@ -547,7 +547,9 @@ def ingest_file(
             keep_results(con, contract)
             contract.raise_if_rejected()
         run_sql(con, "ingest/30_classify.sql")
-        run_sql(con, record.merge_sql, **names)
+        run_sql(con, "ingest/40_merge.sql", sql_names=record.sql_names, **names)
+        if record.value_notes:
+            run_sql(con, "ingest/40_merge_value_notes.sql", **names)
         _check_unique_keys(con, path, record)
         counts = con.execute(read_sql("ingest/50_counts.sql")).fetchall()[0]
         _parsed, quarantined, dup_in_file, superseded, new, corrected, dup_store = counts
@@ -618,7 +620,7 @@ class DuplicateKeyError(RuntimeError):
 def _check_unique_keys(con: duckdb.DuckDBPyConnection, path: Path, record: RecordSpec) -> None:
     """The kind's table has no primary key (sql/schema/10_store.sql): prove the merge kept
     each key once among the keys of this file, before the file's transaction commits."""
-    extra = con.execute(read_sql(record.unique_keys_sql)).fetchall()[0][0]
+    extra = con.execute(read_sql("ingest/45_unique_keys.sql").format_map(record.sql_names)).fetchall()[0][0]
     if extra:
         raise DuplicateKeyError(
             f"{path.name}: after the merge {record.table} would hold {extra} row(s) beyond one per "
