@@ -26,10 +26,12 @@ from pathlib import Path
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 from pipeline.errors import ConfigError
+from pipeline.ingest.feeds import FEED_FORMATS, FHIR_NDJSON
+from pipeline.ingest.feeds.mapping import FeedMapping, read_feed_mapping
 from pipeline.schema import CODE_LISTS, RECORD_SPECS, UNIT_CHOICES, RecordSpec
 
 ENCODINGS = ("utf-8", "latin-1", "cp1252")
-FORMATS = ("csv", "parquet")
+FORMATS = ("csv", "parquet", *FEED_FORMATS)
 
 
 @dataclass(frozen=True)
@@ -59,6 +61,9 @@ class Profile:
     # Source headers of [columns] that a file may lack (stored casefolded and stripped, as
     # headers are matched); any other mapped column missing rejects the file.
     optional_columns: frozenset[str] = frozenset()
+    # FHIR and HL7 v2 feeds: the observation codes and the rest of the feed keys
+    # (pipeline/ingest/feeds/mapping.py); None for CSV and Parquet.
+    feed: FeedMapping | None = None
 
     @property
     def record(self) -> RecordSpec:
@@ -110,13 +115,24 @@ def load_profile(path: Path | str) -> Profile:
     units = {str(k): str(v) for k, v in _table(raw, "units", path).items()}
     unit_columns = {str(k): str(v) for k, v in _table(raw, "unit_columns", path).items()}
     kind = str(head.get("kind", "samples"))
+    fmt = str(head.get("format", "csv"))
+    feed: FeedMapping | None = None
+    feed_problems: list[str] = []
+    if fmt in FEED_FORMATS:
+        # A feed's reader lays records out under canonical names: its columns come from the
+        # codes it maps, and its times reach the loader as UTC text (feeds/timestamps.py).
+        code_tables = set(_table(raw, "codes", path))
+        source_zone = str(head.get("timezone", "UTC"))
+        feed, columns, unit_headers = read_feed_mapping(raw, fmt, source_zone, code_tables, feed_problems)
+        unit_columns = dict(unit_headers)
+        units = {}
     if kind not in RECORD_SPECS:
         raise ConfigError(f"{path}: [profile] kind = {kind!r}; expected one of {', '.join(RECORD_SPECS)}")
     record = RECORD_SPECS[kind]
     fields_by_name = record.fields_by_name
     codes_raw = _table(raw, "codes", path)
     codes: dict[str, dict[str, str]] = {}
-    problems: list[str] = []
+    problems: list[str] = list(feed_problems)
     for code_list, table in codes_raw.items():
         if not isinstance(table, dict):
             raise ConfigError(f"{path}: [codes.{code_list}] must be a table")
@@ -151,7 +167,6 @@ def load_profile(path: Path | str) -> Profile:
             choices = ", ".join(UNIT_CHOICES[spec.unit_family])
             problems.append(f"[units] {name} = {unit!r}; expected one of {choices}")
 
-    fmt = str(head.get("format", "csv"))
     if fmt not in FORMATS:
         problems.append(f"format = {fmt!r}; expected one of {FORMATS}")
     encoding = str(head.get("encoding", "utf-8")).lower().replace("_", "-")
@@ -161,6 +176,8 @@ def load_profile(path: Path | str) -> Profile:
         encoding = "latin-1"
     if encoding not in ENCODINGS:
         problems.append(f"encoding = {encoding!r}; expected one of {ENCODINGS}")
+    if fmt == FHIR_NDJSON and encoding != "utf-8":
+        problems.append("FHIR JSON is UTF-8 (FHIR R4 JSON representation, json.html); encoding must be utf-8")
     delimiter = str(head.get("delimiter", ","))
     if delimiter == "\\t":
         delimiter = "\t"
@@ -196,6 +213,11 @@ def load_profile(path: Path | str) -> Profile:
             problems.append(f"[codes.{name}] is needed because {name} is mapped")
     if problems:
         raise ConfigError(f"{path}: " + "; ".join(problems))
+    if feed is not None:
+        # No CSV dialect applies to a feed's cells (an empty quote character also keeps the
+        # loader from reading the file as CSV itself); times are UTC text.
+        head = {**head, "quote_char": "", "datetime_format": "%Y-%m-%d %H:%M:%S", "date_format": "%Y-%m-%d"}
+        timezone = "UTC"
 
     return Profile(
         name=str(head.get("name", path.stem)),
@@ -215,4 +237,5 @@ def load_profile(path: Path | str) -> Profile:
         kind=kind,
         sha256=hashlib.sha256(data).hexdigest(),
         optional_columns=frozenset(optional_folded),
+        feed=feed,
     )

@@ -294,6 +294,11 @@ def _number_records(frame: pl.DataFrame, header: list[str], before: int) -> pl.D
 def open_export(path: Path, profile: Profile) -> ExportReader | ParquetExport:
     """Check one file under its profile and get it ready to read. Raises FileRejected for
     whole-file faults (empty, wrong encoding, wrong delimiter, duplicated columns)."""
+    if profile.feed is not None:
+        # FHIR and HL7 v2 feeds: grouped into rows of text cells (imported here: feeds use this module)
+        from pipeline.ingest.feeds.reader import open_feed
+
+        return open_feed(path, profile)
     size = _stat_size(path)
     if profile.format == "parquet":
         return ParquetExport(path, _parquet_header(path))
