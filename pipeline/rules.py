@@ -11,8 +11,10 @@ from __future__ import annotations
 
 import hashlib
 import json
+import re
 import tomllib
 from dataclasses import dataclass, field
+from functools import cache
 from pathlib import Path
 from typing import Any
 
@@ -171,10 +173,29 @@ def store_catalogue(con: duckdb.DuckDBPyConnection, catalogue: Catalogue) -> Non
         con.unregister("catalogue_frame")
 
 
+def rule_input_columns(con: duckdb.DuckDBPyConnection) -> dict[str, str]:
+    """The columns of ``records`` and ``derived`` that some rule's SQL names (by whole word),
+    as the select lists of ``rules/00_rule_input.sql``; ``sample_id`` always."""
+    used = set(re.findall(r"[a-z_][a-z0-9_]*", _rules_sql_text()))
+
+    def columns(table: str, alias: str) -> str:
+        names = [row[0] for row in con.execute(f"describe {table}").fetchall()]
+        return ", ".join(f"{alias}.{n}" for n in names if n in used and (n != "sample_id" or alias == "r"))
+
+    return {"record_columns": columns("records", "r"), "derived_columns": columns("derived", "d")}
+
+
+@cache
+def _rules_sql_text() -> str:
+    """The SQL of every rule and shared rule step that reads ``rule_input``, in lower case."""
+    paths = [p for p in (SQL_DIR / "rules").glob("*.sql") if p.name != "00_rule_input.sql"]
+    return "\n".join(p.read_text(encoding="utf-8") for p in sorted(paths)).lower() + "\nsample_id"
+
+
 def evaluate_rules(con: duckdb.DuckDBPyConnection, catalogue: Catalogue, run_id: str) -> dict[str, int]:
     """Replace flags and audit status of the samples in ``scope_samples``; return flag counts per rule."""
     store_catalogue(con, catalogue)
-    run_sql(con, "rules/00_rule_input.sql")
+    run_sql(con, "rules/00_rule_input.sql", sql_names=rule_input_columns(con))
     # The delta checks of three rules share one pass over each patient's results.
     run_sql(con, "rules/05_delta_neighbours.sql", **catalogue.rule("wrong_blood_in_tube").parameters)
     con.execute(read_sql("rules/10_flags_table.sql"))

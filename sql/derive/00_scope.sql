@@ -29,6 +29,10 @@ where $rebuild
        and not exists (select 1 from prescriptions where run_id not in (select run_id from scope_runs)));
 
 -- Whether this is a rebuild, for stages that keep their own incremental state
--- (analyser_patient_median_shift keeps its complete blocks).
+-- (analyser_patient_median_shift keeps its complete blocks) and for those that can recreate a
+-- table instead of replacing rows in it. A scope that holds every record (a first load, the
+-- first delivery of a prescriptions feed) is a rebuild too: the result is the same, and
+-- recreating costs a fraction of deleting and re-inserting every row.
 create or replace temp table scope_settings as
-select $rebuild::boolean as rebuild;
+select $rebuild::boolean
+       or (select count(*) from scope_samples) = (select count(*) from records) as rebuild;

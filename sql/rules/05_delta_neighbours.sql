@@ -9,7 +9,8 @@
 -- Stable analyte groups: haemoglobin; sodium and chloride (one group: they move together).
 -- Glucose is labile: it never suggests another patient's blood and only shows a dilution by a
 -- glucose infusion. Potassium (haemolysis, treatment) is too labile to be compared at all.
--- Grain of delta_values: one row per (sample in scope, analyte with a value).
+-- Grain of delta_values: one row per (sample in scope, analyte with a value and a result of
+-- that analyte before or after it within $window_hours).
 create or replace temp table delta_values as
 with patients as (
     select distinct r.patient_key
@@ -89,6 +90,9 @@ windowed as (
             as hours_next_to_next2
     from ordered
     join analytes using (analyte)
+    -- a result with no neighbour in the window can show no pattern: leaving it out changes no
+    -- judgement (every pattern below needs a neighbour) and keeps the table to the comparisons
+    where hours_since_prev <= $window_hours or hours_to_next <= $window_hours
 ),
 limits as (
 select
@@ -286,10 +290,14 @@ select
     string_agg(words, '; ' order by analyte) filter (where out_of_line or away_and_back or moved_one_sided)
         as words_changed,
     string_agg(words, '; ' order by analyte) as words_all,
-    json_group_object(analyte, json_object('value', value, 'previous', prev_value, 'next', next_value,
-                                           'hours_since_previous', round(hours_since_prev, 1),
-                                           'hours_to_next', round(hours_to_next, 1),
-                                           'limit_previous', round(limit_prev, 2),
-                                           'limit_next', round(limit_next, 2))) as evidence
+    -- keys in analyte order (a grouped JSON object has no order of its own)
+    to_json(map(
+        list(analyte order by analyte),
+        list(json_object('value', value, 'previous', prev_value, 'next', next_value,
+                         'hours_since_previous', round(hours_since_prev, 1),
+                         'hours_to_next', round(hours_to_next, 1),
+                         'limit_previous', round(limit_prev, 2),
+                         'limit_next', round(limit_next, 2)) order by analyte)
+    )) as evidence
 from described
 group by sample_id;
