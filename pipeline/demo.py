@@ -52,6 +52,16 @@ profile = "{profiles}/demo_parquet.toml"
 pattern = "*.parquet"
 
 [[inputs]]
+path = "exports/fhir"
+profile = "{profiles}/demo_fhir.toml"
+pattern = "*.ndjson"
+
+[[inputs]]
+path = "exports/hl7v2"
+profile = "{profiles}/demo_hl7v2.toml"
+pattern = "*.hl7"
+
+[[inputs]]
 kind = "prescriptions"
 path = "exports/prescriptions"
 profile = "{profiles}/demo_prescriptions.toml"
@@ -89,6 +99,7 @@ def prepare_demo(workdir: Path, *, rows: int, seed: int, log: Log) -> Path:
             lookalikes=demo.lookalikes,
             prescriptions=demo.prescriptions,
             oxygen=demo.oxygen,
+            feeds=True,
         )
         marker.touch()
     else:

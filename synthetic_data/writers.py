@@ -416,17 +416,26 @@ def write_exports(
     lookalikes: pl.DataFrame | None = None,
     prescriptions: pl.DataFrame | None = None,
     oxygen: pl.DataFrame | None = None,
+    feeds: bool = False,
 ) -> dict[str, list[Path]]:
     """Write every source's export files, the ground truth of faults, the look-alikes and a README;
     return the files per source. ``lookalikes`` None writes an empty look-alike file; ``prescriptions``
     (``prescribing.PRESCRIPTION_SCHEMA``) adds the prescriptions feed (key ``prescriptions``) and its
-    truth, ``oxygen`` the per-sample oxygen truth."""
+    truth, ``oxygen`` the per-sample oxygen truth. ``feeds`` writes two analysers' samples as a FHIR
+    and an HL7 v2 feed (keys ``fhir`` and ``hl7v2``, ``feed_writers.py``) instead of their source's export."""
+    from synthetic_data.feed_writers import split_feed_rows, write_feed  # it builds on this module
+
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
     with_source = canonical.with_columns(source_of(pl.col("sample_id")).alias("_source"))
     written: dict[str, list[Path]] = {}
     for source in SOURCES:
         rows = with_source.filter(pl.col("_source") == source).drop("_source")
+        if feeds:
+            rows, feed_rows = split_feed_rows(rows)
+            for feed, part in feed_rows.items():
+                feed_truth = ground_truth.join(part.select("sample_id"), on="sample_id", how="semi")
+                written[feed] = write_feed(feed, part, feed_truth, out_dir, single_file, profiles_dir)
         ids = rows.select("sample_id")
         truth = ground_truth.join(ids, on="sample_id", how="semi")
         written[source] = _write_source(rows, truth, source, out_dir, single_file, profiles_dir)

@@ -87,12 +87,16 @@ def _messages(text: str) -> tuple[list[tuple[str, str]], list[tuple[str, str, st
 
 def _text(segment: hl7.Segment, field: int, component: int = 1, repetition: int = 1) -> str | None:
     """One component of one field as text, None when absent or empty (the ``hl7`` accessor
-    follows the first child where the tree is deeper, HL7 v2 "compatibility rules")."""
+    follows the first child where the tree is deeper, HL7 v2 "compatibility rules"); escape
+    sequences (\\F\\, \\S\\, ... HL7 v2.5.1 section 2.7.4) are resolved by ``hl7``."""
     try:
         value = segment.extract_field(1, field, repetition, component, 1)
     except (IndexError, KeyError, HL7Exception):
         return None
-    return str(value) if value not in (None, "") else None
+    if value in (None, ""):
+        return None
+    text = str(value)
+    return _MESSAGE.unescape(text) if "\\" in text else text
 
 
 def _has(segment: hl7.Segment, field: int) -> bool:
@@ -107,6 +111,11 @@ def _value(obx: hl7.Segment) -> tuple[str | None, bool]:
         number = _text(obx, 5, 2)
         return (f"{comparator}{number}" if number is not None else None), True
     return _text(obx, 5), kind == "NM"
+
+
+# The message whose escape character ``_text`` resolves: HL7 v2 escape sequences depend on
+# the separators of the message's own MSH (set by ``Hl7Reader`` for each message it reads).
+_MESSAGE: hl7.Message = hl7.parse("MSH|^~\\&|\r")
 
 
 class Hl7Reader:
@@ -131,9 +140,11 @@ class Hl7Reader:
         self.grouper.fault(Fault(self.order, reason, where, detail, original, accession))
 
     def _message(self, where: str, text: str) -> None:
+        global _MESSAGE
         try:
             message = hl7.parse(text)
             msh = message.segment("MSH")
+            _MESSAGE = message
         except (HL7Exception, KeyError, IndexError, ValueError):
             self._fault("SEGMENT_MISSING", where, "no readable MSH segment", text)
             return
