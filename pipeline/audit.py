@@ -242,8 +242,9 @@ def layer_sha256(config: SiteConfig) -> str:
     return hashlib.sha256(json.dumps(basis, sort_keys=True).encode()).hexdigest()
 
 
-def _layer_current(con: duckdb.DuckDBPyConnection, sha256: str) -> bool:
-    """True when the layer holds every analysed run except this run's scope, with these settings."""
+def _layer_current(con: duckdb.DuckDBPyConnection, sha256: str, *, with_scope: bool = False) -> bool:
+    """True when the layer holds every analysed run except this run's scope (``with_scope``:
+    this run's scope too, as after the first audience's build), with these settings."""
     tables = _existing_tables(con)
     if any(t not in tables for t in LAYER_TABLES):
         return False
@@ -255,7 +256,8 @@ def _layer_current(con: duckdb.DuckDBPyConnection, sha256: str) -> bool:
         return False
     missing = con.execute(
         "select count(*) from runs where analysed_at is not null "
-        "and run_id not in (select run_id from audit_layer_runs) and run_id not in (select run_id from scope_runs)"
+        "and run_id not in (select run_id from audit_layer_runs)"
+        + ("" if with_scope else " and run_id not in (select run_id from scope_runs)")
     ).fetchall()[0][0]
     return missing == 0
 
@@ -292,8 +294,11 @@ def build_audit(
             store_catalogue(con, catalogue)
         store_unit_types(con, config)
         updated = incremental and _layer_current(con, sha256)
-        run_sql(con, _LAYER_SCOPE if updated else _LAYER_RESET)
-        run_sql(con, _LAYER_UPDATE, period=config.audit.period, layer_sha256=sha256)
+        # A second audience of the same run finds the layer holding this run already: its
+        # facts are those the first build folded in, so there is nothing to recompute.
+        if not (updated and _layer_current(con, sha256, with_scope=True)):
+            run_sql(con, _LAYER_SCOPE if updated else _LAYER_RESET)
+            run_sql(con, _LAYER_UPDATE, period=config.audit.period, layer_sha256=sha256)
         for path in _WORK_FILES:
             run_sql(con, path, **params)
         suppress_complementary(con)

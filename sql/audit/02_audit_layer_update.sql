@@ -183,22 +183,34 @@ create table if not exists audit_sample_fact as select * from audit_fact_now wit
 create table if not exists audit_sample_flag as select * from audit_flag_now with no data;
 
 -- The (unit, period) pairs whose facts changed: the pair a changed fact is in now and the
--- pair its previous version was in.
+-- pair its previous version was in. An empty layer (a reset) held nothing before: every pair
+-- of the facts now, without comparing each fact with nothing.
 create or replace temp table audit_touched as
-with fact_before as (
+with layer as (
+    select exists (select 1 from audit_sample_fact) as held
+),
+fact_before as (
     select * from audit_sample_fact semi join audit_layer_scope using (sample_id)
 ),
 flag_before as (
     select * from audit_sample_flag semi join audit_layer_scope using (sample_id)
 ),
+compared_now as (
+    select * from audit_fact_now where (select held from layer)
+),
+compared_flags_now as (
+    select * from audit_flag_now where (select held from layer)
+),
 changed as (
-    select unit, period_start from (select * from audit_fact_now except select * from fact_before)
+    select unit, period_start from audit_fact_now where not (select held from layer)
     union all
-    select unit, period_start from (select * from fact_before except select * from audit_fact_now)
+    select unit, period_start from (select * from compared_now except select * from fact_before)
     union all
-    select unit, period_start from (select * from audit_flag_now except select * from flag_before)
+    select unit, period_start from (select * from fact_before except select * from compared_now)
     union all
-    select unit, period_start from (select * from flag_before except select * from audit_flag_now)
+    select unit, period_start from (select * from compared_flags_now except select * from flag_before)
+    union all
+    select unit, period_start from (select * from flag_before except select * from compared_flags_now)
 )
 select distinct unit, period_start from changed;
 
