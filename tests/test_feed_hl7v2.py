@@ -188,6 +188,11 @@ def local_time_skipped(m: list[str]) -> list[str]:
     return [[set_field(s, 7, "202603080230") if s.startswith("OBR|") else s for s in m]]
 
 
+def escaped_text(m: list[str]) -> list[str]:
+    # \\T\\ is the escape sequence of the subcomponent separator & (HL7 v2.5.1 section 2.7.4)
+    return [[s.replace("Heron ICU", "Heron \\T\\ Egret ICU") if s.startswith("PV1|") else s for s in m]]
+
+
 # (case, reason its record or message is quarantined with, or None when it loads)
 CASES = [
     (unknown_code, "UNKNOWN_OBSERVATION_CODE"),
@@ -202,6 +207,7 @@ CASES = [
     (not_a_result, "MESSAGE_TYPE_UNSUPPORTED"),
     (no_accession, "ACCESSION_MISSING"),
     (local_time_skipped, "DST_NONEXISTENT"),
+    (escaped_text, None),
 ]
 
 
@@ -228,6 +234,8 @@ def test_each_fault_in_one_file_reaches_its_own_outcome(con, tmp_path):
     assert [r for r, text in rows if "C00099" in text] == ["MESSAGE_TRUNCATED"]
     assert con.execute("select ph from records where sample_id = 'LAB0900005'").fetchall() == [(7.38,)]
     assert con.execute("select na_mmol_l from records where sample_id = 'LAB0900007'").fetchall() == [(None,)]
+    escaped = f"LAB09{len(CASES):05d}"
+    assert con.execute("select unit from records where sample_id = ?", [escaped]).fetchall() == [("Heron & Egret ICU",)]
     notes = " | ".join(outcome.notes)
     assert "duplicate observations merged: 1" in notes and "entered in error or cancelled: 1" in notes
 

@@ -85,7 +85,9 @@ def _messages(text: str) -> tuple[list[tuple[str, str]], list[tuple[str, str, st
     return messages, faults
 
 
-def _text(segment: hl7.Segment, field: int, component: int = 1, repetition: int = 1) -> str | None:
+def _text(
+    message: hl7.Message, segment: hl7.Segment, field: int, component: int = 1, repetition: int = 1
+) -> str | None:
     """One component of one field as text, None when absent or empty (the ``hl7`` accessor
     follows the first child where the tree is deeper, HL7 v2 "compatibility rules"); escape
     sequences (\\F\\, \\S\\, ... HL7 v2.5.1 section 2.7.4) are resolved by ``hl7``."""
@@ -96,26 +98,21 @@ def _text(segment: hl7.Segment, field: int, component: int = 1, repetition: int 
     if value in (None, ""):
         return None
     text = str(value)
-    return _MESSAGE.unescape(text) if "\\" in text else text
+    return message.unescape(text) if "\\" in text else text
 
 
 def _has(segment: hl7.Segment, field: int) -> bool:
     return len(segment) > field and str(segment[field]) != ""
 
 
-def _value(obx: hl7.Segment) -> tuple[str | None, bool]:
+def _value(message: hl7.Message, obx: hl7.Segment) -> tuple[str | None, bool]:
     """OBX-5 as text and whether it is a number (NM, SN); SN keeps its comparator."""
-    kind = _text(obx, 2)
+    kind = _text(message, obx, 2)
     if kind == "SN":
-        comparator = _text(obx, 5, 1) or ""
-        number = _text(obx, 5, 2)
+        comparator = _text(message, obx, 5, 1) or ""
+        number = _text(message, obx, 5, 2)
         return (f"{comparator}{number}" if number is not None else None), True
-    return _text(obx, 5), kind == "NM"
-
-
-# The message whose escape character ``_text`` resolves: HL7 v2 escape sequences depend on
-# the separators of the message's own MSH (set by ``Hl7Reader`` for each message it reads).
-_MESSAGE: hl7.Message = hl7.parse("MSH|^~\\&|\r")
+    return _text(message, obx, 5), kind == "NM"
 
 
 class Hl7Reader:
@@ -125,6 +122,7 @@ class Hl7Reader:
         self.mapping = mapping
         self.grouper = grouper
         self.order = 0
+        self.message: hl7.Message = hl7.parse("MSH|^~\\&|\r")
 
     def read(self, text: str) -> list[str]:
         messages, faults = _messages(text)
@@ -140,18 +138,17 @@ class Hl7Reader:
         self.grouper.fault(Fault(self.order, reason, where, detail, original, accession))
 
     def _message(self, where: str, text: str) -> None:
-        global _MESSAGE
         try:
             message = hl7.parse(text)
             msh = message.segment("MSH")
-            _MESSAGE = message
+            self.message = message  # its separators and escape character read its fields
         except (HL7Exception, KeyError, IndexError, ValueError):
             self._fault("SEGMENT_MISSING", where, "no readable MSH segment", text)
             return
-        control = _text(msh, 10)
+        control = _text(self.message, msh, 10)
         if control:
             where = f"{where} (MSH-10 {control})"
-        if (_text(msh, 9, 1), _text(msh, 9, 2)) != ("ORU", "R01"):
+        if (_text(self.message, msh, 9, 1), _text(self.message, msh, 9, 2)) != ("ORU", "R01"):
             self._fault("MESSAGE_TYPE_UNSUPPORTED", where, "not an ORU^R01 message", text)
             return
         segments = list(message)
@@ -174,9 +171,12 @@ class Hl7Reader:
         for segment in segments:
             name = str(segment[0])
             if name == "PID":
-                patient = {"patient_id": _text(segment, 3), "birth_date": _date(_text(segment, 7))}
+                patient = {
+                    "patient_id": _text(self.message, segment, 3),
+                    "birth_date": _date(_text(self.message, segment, 7)),
+                }
             elif name == "PV1":
-                patient |= {"unit": _text(segment, 3), "encounter_id": _text(segment, 19)}
+                patient |= {"unit": _text(self.message, segment, 3), "encounter_id": _text(self.message, segment, 19)}
             elif name == "OBR":
                 order_groups.append([segment])
             elif order_groups:
@@ -195,14 +195,14 @@ class Hl7Reader:
 
     def _order(self, where: str, text: str, patient: dict[str, str | None], group: list[hl7.Segment]) -> None:
         obr = group[0]
-        accession = _text(obr, 3 if self.mapping.group_by == "OBR-3" else 2)
+        accession = _text(self.message, obr, 3 if self.mapping.group_by == "OBR-3" else 2)
         if accession is None:
             self._fault("ACCESSION_MISSING", where, f"{self.mapping.group_by} is empty", text)
             return
         zone = self.mapping.source_timezone
         try:
-            collected = hl7_to_utc(_text(obr, 7), zone)
-            resulted = hl7_to_utc(_text(obr, 22), zone)
+            collected = hl7_to_utc(_text(self.message, obr, 7), zone)
+            resulted = hl7_to_utc(_text(self.message, obr, 22), zone)
         except TimeProblem as problem:
             self._fault(problem.reason, where, str(problem), text)
             return
@@ -210,20 +210,20 @@ class Hl7Reader:
             **patient,
             "collected_at": collected,
             "resulted_at": resulted,
-            "operator_id": _text(obr, 10),
-            "sample_type": _text(obr, 15),
+            "operator_id": _text(self.message, obr, 10),
+            "sample_type": _text(self.message, obr, 15),
         }
         for spm in (s for s in group if str(s[0]) == "SPM"):
-            attributes["sample_type"] = _text(spm, 4) or attributes["sample_type"]
-            attributes["collection_method"] = _text(spm, 7)
+            attributes["sample_type"] = _text(self.message, spm, 4) or attributes["sample_type"]
+            attributes["collection_method"] = _text(self.message, spm, 7)
         for obx in (s for s in group if str(s[0]) == "OBX"):
             self._observation(where, text, accession, attributes, obx)
 
     def _observation(
         self, where: str, text: str, accession: str, attributes: dict[str, str | None], obx: hl7.Segment
     ) -> None:
-        code, system = _text(obx, 3, 1), _text(obx, 3, 3)
-        set_id = _text(obx, 1) or "?"
+        code, system = _text(self.message, obx, 3, 1), _text(self.message, obx, 3, 3)
+        set_id = _text(self.message, obx, 1) or "?"
         place = f"{where} OBX {set_id}"
         if not self._complete(obx):
             self._fault("SEGMENT_MISSING", place, "OBX without OBX-3 or OBX-11", text, accession)
@@ -246,11 +246,11 @@ class Hl7Reader:
                 accession,
             )
             return
-        status = STATUS_CLASS.get(_text(obx, 11) or "")
+        status = STATUS_CLASS.get(_text(self.message, obx, 11) or "")
         if status is None:
             self._fault("SEGMENT_MISSING", place, "OBX-11 is not a result status of HL7 table 0085", text, accession)
             return
-        value, quantity = _value(obx)
+        value, quantity = _value(self.message, obx)
         self.grouper.add(
             Observation(
                 accession=accession,
@@ -259,11 +259,11 @@ class Hl7Reader:
                 field=name,
                 value=value,
                 quantity=quantity,
-                ucum=_text(obx, 6),
+                ucum=_text(self.message, obx, 6),
                 status=status,
-                identity=f"{code}|{_text(obx, 4) or ''}",
+                identity=f"{code}|{_text(self.message, obx, 4) or ''}",
                 code=code if system == LOINC_CODING_SYSTEM else None,
-                attributes={**attributes, "analyser_id": _text(obx, 18)},
+                attributes={**attributes, "analyser_id": _text(self.message, obx, 18)},
             )
         )
 
