@@ -309,6 +309,31 @@ def test_entered_in_error_removes_nothing_silently(con, tmp_path):
     assert "LAB0000102" in con.execute("select original_text from quarantine").fetchall()[0][0]
 
 
+def test_records_grouped_by_an_identifier_the_profile_names(con, tmp_path):
+    # Observation.identifier (observation.html): the laboratory's accession with its own system
+    system = "https://saltmarsh-valley.example/accession"
+    text = (
+        (ROOT / "profiles" / "demo_fhir.toml")
+        .read_text(encoding="utf-8")
+        .replace(
+            'ignored_codes = ["24336-0"]',
+            f'ignored_codes = ["24336-0"]\ngroup_by = "identifier"\naccession_system = "{system}"',
+        )
+    )
+    (tmp_path / "by_identifier.toml").write_text(text, encoding="utf-8")
+    profile = load_profile(tmp_path / "by_identifier.toml")
+    items = [r for r in resources() if r["resourceType"] != "Specimen"]  # no Specimen resources at all
+    for r in items:
+        if r["resourceType"] == "Observation":
+            number = r["specimen"]["reference"].removeprefix("Specimen/spec-")
+            r["identifier"] = [{"system": system, "value": f"ACC-{number}"}]
+            del r["specimen"]
+    outcome = ingest_file(con, write(tmp_path, "by_identifier.ndjson", items), profile, "run-1", KEY)
+    assert outcome.balanced and counts(outcome) == (3, 3, 0, 0, 0)
+    ids = [r[0] for r in con.execute("select sample_id from records order by sample_id").fetchall()]
+    assert ids == ["ACC-1", "ACC-2", "ACC-3"]
+
+
 def test_the_same_file_again_loads_nothing(con, tmp_path):
     load(con, FIXTURE)
     again = ingest_file(con, FIXTURE, PROFILE, "run-2", KEY)

@@ -225,8 +225,21 @@ class FhirReader:
         else:
             self._observation(order, where, resource)
 
+    def _accession_key(self, obs: dict[str, Any]) -> str | None:
+        """The group key: the specimen reference, or the identifier the profile names."""
+        if self.mapping.group_by == "identifier":
+            for ident in obs.get("identifier") or []:
+                if (
+                    isinstance(ident, dict)
+                    and ident.get("system") == self.mapping.accession_system
+                    and ident.get("value")
+                ):
+                    return f"identifier|{ident['value']}"
+            return None
+        return _reference(obs.get("specimen"))
+
     def _observation(self, order: int, where: str, obs: dict[str, Any]) -> None:
-        specimen = _reference(obs.get("specimen"))
+        specimen = self._accession_key(obs)
         status = STATUS_CLASS.get(str(obs.get("status")))
         if status is None:
             self.grouper.fault(
@@ -278,9 +291,8 @@ class FhirReader:
             )
             return
         if specimen is None:
-            self.grouper.fault(
-                Fault(order, "ACCESSION_MISSING", where, "Observation.specimen is missing", json.dumps(obs))
-            )
+            missing = "Observation.specimen" if self.mapping.group_by == "specimen" else "the accession identifier"
+            self.grouper.fault(Fault(order, "ACCESSION_MISSING", where, f"{missing} is missing", json.dumps(obs)))
             return
         value, quantity, ucum = _value(obs)
         device = obs.get("device") or {}

@@ -168,6 +168,7 @@ class Hl7Reader:
             return
         patient: dict[str, str | None] = {}
         order_groups: list[list[hl7.Segment]] = []
+        order: hl7.Segment | None = None
         for segment in segments:
             name = str(segment[0])
             if name == "PID":
@@ -177,8 +178,11 @@ class Hl7Reader:
                 }
             elif name == "PV1":
                 patient |= {"unit": _text(self.message, segment, 3), "encounter_id": _text(self.message, segment, 19)}
+            elif name == "ORC":
+                order = segment  # the common order segment precedes its OBR (ORU^R01 ORDER_OBSERVATION)
             elif name == "OBR":
-                order_groups.append([segment])
+                order_groups.append([segment, *([order] if order is not None else [])])
+                order = None
             elif order_groups:
                 order_groups[-1].append(segment)
         for group in order_groups:
@@ -195,9 +199,12 @@ class Hl7Reader:
 
     def _order(self, where: str, text: str, patient: dict[str, str | None], group: list[hl7.Segment]) -> None:
         obr = group[0]
-        accession = _text(self.message, obr, 3 if self.mapping.group_by == "OBR-3" else 2)
+        number = 3 if self.mapping.group_by == "OBR-3" else 2
+        # the filler (placer) order number is OBR-3 (OBR-2), and ORC-3 (ORC-2) of the same order
+        orc = next((s for s in group[1:2] if str(s[0]) == "ORC"), None)
+        accession = _text(self.message, obr, number) or (_text(self.message, orc, number) if orc else None)
         if accession is None:
-            self._fault("ACCESSION_MISSING", where, f"{self.mapping.group_by} is empty", text)
+            self._fault("ACCESSION_MISSING", where, f"{self.mapping.group_by} and ORC-{number} are empty", text)
             return
         zone = self.mapping.source_timezone
         try:

@@ -11,15 +11,17 @@ made here from what it maps. Keys (see docs/standard-feeds.md):
   code of ``[codes.sample_type]``), used when the record names no specimen type itself;
 - ``[profile] ignored_codes``: codes the feed sends that the audit does not load; any other
   code the profile does not map quarantines its record (``UNKNOWN_OBSERVATION_CODE``);
-- ``[profile] group_by`` (HL7 v2 only): ``"OBR-3"`` (filler order number, the default) or
-  ``"OBR-2"`` (placer order number) is the record's accession.
+- ``[profile] group_by``: what the record's accession is. HL7 v2: ``"OBR-3"`` (filler order
+  number, the default; ORC-3 when OBR-3 is empty) or ``"OBR-2"`` (placer order number).
+  FHIR: ``"specimen"`` (Observation.specimen, the default) or ``"identifier"`` (the
+  Observation.identifier whose system is ``[profile] accession_system``).
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass, field
 
-from pipeline.ingest.feeds import FEED_FORMATS, HL7V2
+from pipeline.ingest.feeds import FEED_FORMATS, FHIR_NDJSON, HL7V2
 from pipeline.ingest.feeds.loinc import is_loinc_code
 from pipeline.schema import FIELDS_BY_NAME, UNIT_CHOICES, Kind
 
@@ -39,7 +41,7 @@ RECORD_ATTRIBUTES: tuple[str, ...] = (
     "collection_method",
 )
 UNIT_HEADER = "{} unit"
-GROUP_KEYS = {HL7V2: ("OBR-3", "OBR-2")}
+GROUP_KEYS = {HL7V2: ("OBR-3", "OBR-2"), FHIR_NDJSON: ("specimen", "identifier")}
 LOINC = "loinc"
 LOCAL = "local"
 
@@ -55,6 +57,7 @@ class FeedMapping:
     local_code_system: str | None = None
     source_timezone: str = "UTC"  # HL7 v2 times without an offset are local times here
     group_by: str = "OBR-3"
+    accession_system: str | None = None  # FHIR group_by = "identifier": the identifier's system
     fields: tuple[str, ...] = ()  # the header the reader writes, unit columns included
     unit_headers: dict[str, str] = field(default_factory=dict)  # field -> its per-row unit column
 
@@ -110,9 +113,12 @@ def read_feed_mapping(
     if not isinstance(ignored, list) or not all(isinstance(c, str) for c in ignored):
         problems.append('ignored_codes must be a list of codes, e.g. ["24336-0"]')
         ignored = []
-    group_by = str(head.get("group_by", "OBR-3"))
-    if fmt == HL7V2 and group_by not in GROUP_KEYS[HL7V2]:
-        problems.append(f"group_by = {group_by!r}; expected one of {GROUP_KEYS[HL7V2]}")
+    group_by = str(head.get("group_by", GROUP_KEYS[fmt][0]))
+    if group_by not in GROUP_KEYS[fmt]:
+        problems.append(f"group_by = {group_by!r}; expected one of {GROUP_KEYS[fmt]} for {fmt}")
+    accession_system = head.get("accession_system")
+    if group_by == "identifier" and not accession_system:
+        problems.append('group_by = "identifier" needs [profile] accession_system (the identifier\'s system URI)')
     attributes = [a for a in RECORD_ATTRIBUTES if FIELDS_BY_NAME[a].kind is not Kind.CODE or a in code_tables]
     if by_sample_type and "sample_type" not in code_tables:
         problems.append("[loinc_sample_type] needs [codes.sample_type] to map the sample types it names")
@@ -131,6 +137,7 @@ def read_feed_mapping(
         local_code_system=str(local_system) if local_system else None,
         source_timezone=timezone,
         group_by=group_by,
+        accession_system=str(accession_system) if accession_system else None,
         fields=(*columns.values(), *unit_headers.values()),
         unit_headers=unit_headers,
     )
