@@ -193,51 +193,77 @@ def escaped_text(m: list[str]) -> list[str]:
     return [[s.replace("Heron ICU", "Heron \\T\\ Egret ICU") if s.startswith("PV1|") else s for s in m]]
 
 
-# (case, reason its record or message is quarantined with, or None when it loads)
+def sent_twice(m: list[str]) -> list[str]:
+    return [m, list(m)]  # the same message again in the same file
+
+
+def corrected_in_file(m: list[str]) -> list[str]:
+    later = list(m)
+    i = obx(later, "2744-1")
+    later[i] = set_field(set_field(later[i], 5, "7.28"), 11, "C")
+    return [m, later]  # the original, then its correction, in one file
+
+
+# (case, the accession loads?, quarantine reasons of its messages, duplicate rows, rows superseded in the file).
+# One record per order of each message: a second message of an accession is a second row, as a
+# second CSV row of a sample is.
 CASES = [
-    (unknown_code, "UNKNOWN_OBSERVATION_CODE"),
-    (unknown_unit, "UNIT_UNKNOWN"),
-    (conflict, "CONFLICTING_VALUES"),
-    (duplicate, None),
-    (preliminary_then_final, None),
-    (all_preliminary, "PRELIMINARY_RESULT"),
-    (one_wrong, None),
-    (no_pid, "SEGMENT_MISSING"),
-    (obx_before_obr, "SEGMENT_MISSING"),
-    (not_a_result, "MESSAGE_TYPE_UNSUPPORTED"),
-    (no_accession, "ACCESSION_MISSING"),
-    (local_time_skipped, "DST_NONEXISTENT"),
-    (escaped_text, None),
+    (unknown_code, 0, ["UNKNOWN_OBSERVATION_CODE"], 0, 0),
+    (unknown_unit, 0, ["UNIT_UNKNOWN"], 0, 0),
+    (conflict, 0, ["CONFLICTING_VALUES"], 0, 0),
+    (duplicate, 1, [], 0, 0),  # one OBX twice in a message: merged
+    (preliminary_then_final, 1, ["PRELIMINARY_RESULT"], 0, 0),  # the P message held back, the F one loads
+    (all_preliminary, 0, ["PRELIMINARY_RESULT"], 0, 0),
+    (one_wrong, 1, ["RESULT_WITHDRAWN"], 0, 0),  # a later W message is recorded; the loaded value stays
+    (no_pid, 0, ["SEGMENT_MISSING"], 0, 0),
+    (obx_before_obr, 0, ["SEGMENT_MISSING"], 0, 0),
+    (not_a_result, 0, ["MESSAGE_TYPE_UNSUPPORTED"], 0, 0),
+    (no_accession, 0, ["ACCESSION_MISSING"], 0, 0),
+    (local_time_skipped, 0, ["DST_NONEXISTENT"], 0, 0),
+    (sent_twice, 1, [], 1, 0),  # the loader's duplicate in the file
+    (corrected_in_file, 1, [], 0, 1),  # the loader's superseded in the file: the correction stands
+    (escaped_text, 1, [], 0, 0),
 ]
 
 
 def test_each_fault_in_one_file_reaches_its_own_outcome(con, tmp_path):
     msgs = list(messages())
-    for n, (edit, _reason) in enumerate(CASES, start=1):
-        msgs += edit(first(n))
+    rows_in = 3
+    for n, (edit, *_expected) in enumerate(CASES, start=1):
+        case = edit(first(n))
+        msgs += case
+        rows_in += len(case)
     # the file ends in the middle of an OBX: the last message is truncated
     cut = first(99)
     cut[-2] = cut[-2][:20]
     text = join(*msgs) + join(cut[:-1]).rstrip("\r")
     outcome = load(con, write(tmp_path, "cases.hl7", text))
 
-    quarantined = [reason for _edit, reason in CASES if reason]
-    assert counts(outcome) == (3 + len(CASES) + 1, 3 + len(CASES) - len(quarantined), len(quarantined) + 1, 0, 0)
+    loaded = 3 + sum(c[1] for c in CASES)
+    quarantined = sum(len(c[2]) for c in CASES) + 1
+    duplicates, superseded = sum(c[3] for c in CASES), sum(c[4] for c in CASES)
+    assert counts(outcome) == (rows_in + 1, loaded, quarantined, duplicates, superseded)
     rows = [
         (r[0], json.loads(r[1])) for r in con.execute("select reason_code, original_text from quarantine").fetchall()
     ]
-    for n, (edit, reason) in enumerate(CASES, start=1):
+    for n, (edit, held, reasons, _d, _s) in enumerate(CASES, start=1):
         accession, control = f"LAB09{n:05d}", f"C{n:05d}"
-        held = con.execute("select count(*) from records where sample_id = ?", [accession]).fetchall()[0][0]
+        count = con.execute("select count(*) from records where sample_id = ?", [accession]).fetchall()[0][0]
         mine = [r for r, text in rows if accession in text or control in text]
-        assert (held, mine) == ((0, [reason]) if reason else (1, [])), edit.__name__
+        assert (count, mine) == (held, reasons), edit.__name__
     assert [r for r, text in rows if "C00099" in text] == ["MESSAGE_TRUNCATED"]
-    assert con.execute("select ph from records where sample_id = 'LAB0900005'").fetchall() == [(7.38,)]
-    assert con.execute("select na_mmol_l from records where sample_id = 'LAB0900007'").fetchall() == [(None,)]
-    escaped = f"LAB09{len(CASES):05d}"
-    assert con.execute("select unit from records where sample_id = ?", [escaped]).fetchall() == [("Heron & Egret ICU",)]
-    notes = " | ".join(outcome.notes)
-    assert "duplicate observations merged: 1" in notes and "entered in error or cancelled: 1" in notes
+
+    def value(column: str, case: object) -> object:
+        number = next(n for n, c in enumerate(CASES, start=1) if c[0] is case)
+        return con.execute(f"select {column} from records where sample_id = ?", [f"LAB09{number:05d}"]).fetchall()[0][0]
+
+    assert value("ph", preliminary_then_final) == 7.38  # the final value, not the preliminary 7.30
+    assert value("na_mmol_l", one_wrong) == 139  # nothing removed by the withdrawal message
+    assert value("ph", corrected_in_file) == 7.28
+    assert value("unit", escaped_text) == "Heron & Egret ICU"
+    # the original of the correction is kept, as for a CSV row superseded in its file
+    assert con.execute("select ph from superseded_records").fetchall() == [(7.38,)]
+    assert "duplicate observations merged: 1" in " | ".join(outcome.notes)
 
 
 def test_a_corrected_result_in_a_later_file_is_a_correction(con, tmp_path):

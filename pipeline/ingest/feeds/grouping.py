@@ -2,7 +2,9 @@
 
 The feed readers (fhir.py, hl7v2.py) hand over one ``Observation`` per analyte result and
 a ``Fault`` for every line or message they cannot use; ``Grouper`` gathers the observations
-of one accession across the whole file and decides, per field, which result stands:
+of one group (a FHIR accession across the whole file; an HL7 order of one message, so a
+message sent again or corrected later in the file is another row for the loader's own
+duplicate and correction rules) and decides, per field, which result stands:
 
 - a final, corrected or amended result stands over a preliminary one; between two final
   results of the same observation (the same FHIR Observation.id, or HL7 OBX-3 and OBX-4 of

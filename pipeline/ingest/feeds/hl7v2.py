@@ -39,6 +39,7 @@ from pipeline.ingest.feeds.mapping import LOCAL, LOINC, FeedMapping
 from pipeline.ingest.feeds.timestamps import TimeProblem, hl7_to_utc
 
 LOINC_CODING_SYSTEM = "LN"  # HL7 table 0396
+MESSAGE_KEY = "\x1f"  # joins an accession and its message number into the group key
 MLLP_START, MLLP_END = "\x0b", "\x1c"  # hl7.mllp.streams START_BLOCK, END_BLOCK
 STATUS_CLASS = {
     "F": FINAL,
@@ -115,8 +116,13 @@ def _value(message: hl7.Message, obx: hl7.Segment) -> tuple[str | None, bool]:
     return _text(message, obx, 5), kind == "NM"
 
 
+def resolve(key: str, attributes: dict[str, str | None]) -> tuple[str, dict[str, str | None], set[str]]:
+    """The accession of a group key (accession and message number)."""
+    return key.split(MESSAGE_KEY, 1)[0], attributes, set()
+
+
 class Hl7Reader:
-    """Reads one file's messages into a Grouper."""
+    """Reads one file's messages into a Grouper: one group per order (OBR) of each message."""
 
     def __init__(self, mapping: FeedMapping, grouper: Grouper) -> None:
         self.mapping = mapping
@@ -224,7 +230,10 @@ class Hl7Reader:
             attributes["sample_type"] = _text(self.message, spm, 4) or attributes["sample_type"]
             attributes["collection_method"] = _text(self.message, spm, 7)
         for obx in (s for s in group if str(s[0]) == "OBX"):
-            self._observation(where, text, accession, attributes, obx)
+            # one record per order of each message: a message sent again, or a corrected one
+            # later in the file, is a second row of the accession for the loader's own
+            # duplicate and correction handling (as a CSV row is)
+            self._observation(where, text, f"{accession}{MESSAGE_KEY}{self.order}", attributes, obx)
 
     def _observation(
         self, where: str, text: str, accession: str, attributes: dict[str, str | None], obx: hl7.Segment

@@ -18,6 +18,7 @@ from pipeline.ingest.feeds import FHIR_NDJSON
 from pipeline.ingest.feeds.fhir import FhirReader
 from pipeline.ingest.feeds.grouping import Grouper
 from pipeline.ingest.feeds.hl7v2 import Hl7Reader
+from pipeline.ingest.feeds.hl7v2 import resolve as resolve_hl7
 from pipeline.ingest.read import BATCH_ROWS, BOM, ExportReader, RawExport, _decode, _read_bytes, _stat_size
 from pipeline.profile import Profile
 
@@ -40,7 +41,7 @@ class FeedExport(ExportReader):
                 self._rows = grouper.export([*self.notes, *notes], resolve=fhir.resolve)
             else:
                 notes = Hl7Reader(mapping, grouper).read(self.text)
-                self._rows = grouper.export([*self.notes, *notes])
+                self._rows = grouper.export([*self.notes, *notes], resolve=resolve_hl7)
             self.notes = self._rows.notes
             self.text = ""  # read once; the rows are kept for a second pass (unit hints)
         return self._rows
