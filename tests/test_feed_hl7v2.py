@@ -13,6 +13,7 @@ ended by CR. Every file must balance: rows in = loaded + quarantined + duplicate
 from __future__ import annotations
 
 import json
+import logging
 from pathlib import Path
 
 import duckdb
@@ -264,6 +265,16 @@ def test_each_fault_in_one_file_reaches_its_own_outcome(con, tmp_path):
     # the original of the correction is kept, as for a CSV row superseded in its file
     assert con.execute("select ph from superseded_records").fetchall() == [(7.38,)]
     assert "duplicate observations merged: 1" in " | ".join(outcome.notes)
+
+
+def test_text_before_the_first_msh_is_quarantined_and_never_logged(con, tmp_path, caplog):
+    # a patient identifier in stray text must not reach a log (hl7.split_file logs such lines)
+    text = "PID|1||SVH-999999^^^SVH^MR\r" + join(*messages())
+    with caplog.at_level(logging.DEBUG):
+        outcome = load(con, write(tmp_path, "stray.hl7", text))
+    assert counts(outcome) == (4, 3, 1, 0, 0)
+    assert con.execute("select reason_code from quarantine").fetchall() == [("SEGMENT_MISSING",)]
+    assert "SVH-999999" not in caplog.text
 
 
 def test_a_corrected_result_in_a_later_file_is_a_correction(con, tmp_path):

@@ -76,10 +76,15 @@ def _messages(text: str) -> tuple[list[tuple[str, str]], list[tuple[str, str, st
     messages: list[tuple[str, str]] = []
     number = 0
     for block in blocks:
-        block = block.replace("\r\n", "\r").replace("\n", "\r")
-        head, _sep, _rest = block.lstrip("\r ").partition("\r")
-        if head and not head.startswith(("MSH", "FHS", "BHS")):
-            faults.append((f"message {number + 1}", "SEGMENT_MISSING", "the message does not start with MSH"))
+        block = block.replace("\r\n", "\r").replace("\n", "\r").lstrip("\r ")
+        if not block.startswith(("MSH", "FHS", "BHS")):
+            # segments before any header belong to no message: one quarantine row for them, and
+            # only the text from the first MSH on goes to hl7.split_file (which would log them)
+            faults.append((f"message {number + 1}", "SEGMENT_MISSING", "segments before the first MSH"))
+            first = block.find("\rMSH")
+            block = block[first + 1 :] if first >= 0 else ""
+        if not block.strip():
+            continue
         for message in hl7.split_file(block):
             number += 1
             messages.append((f"message {number}", message))
