@@ -232,7 +232,7 @@ def _fhir_lines(row: dict, layout: _Layout, written: set[str]) -> Iterator[str]:
 
 
 def _escape(text: str | None) -> str:
-    """HL7 v2 escape sequences for the delimiters (HL7 v2.5.1 section 2.7.4)."""
+    """HL7 v2 escape sequences for the delimiters (HL7 v2.5.1 chapter 2, escape sequences in text fields)."""
     if text is None:
         return ""
     for char, seq in (("\\", "\\E\\"), ("|", "\\F\\"), ("^", "\\S\\"), ("&", "\\T\\"), ("~", "\\R\\")):
@@ -279,7 +279,7 @@ def _hl7_message(row: dict, layout: _Layout, number: int) -> str:
         f"SPM|1|||{e(row['_c_sample_type'])}^^{layout.local_system}|||"
         f"{e(row['_c_collection_method'])}^^{layout.local_system}"
     )
-    # MLLP framing (HL7 v2.5.1 Appendix C): <VT> message <FS><CR>
+    # MLLP framing <VT> message <FS><CR> (MLLP; the bytes of hl7.mllp START_BLOCK, END_BLOCK)
     return "\x0b" + "\r".join(segments) + "\r\x1c\r"
 
 

@@ -1,7 +1,7 @@
 """HL7 v2 ORU^R01 result files through the loader: every malformed-input case with its outcome.
 
 The fixture ``tests/fixtures/feeds/three_samples.hl7`` was written by hand from HL7 v2.5.1:
-the ORU^R01 structure of chapter 7 section 7.3.2 (MSH, PID, PV1, ORC, OBR, OBX..., SPM), the
+the ORU^R01 structure of chapter 7 section 7.3.1 (MSH, PID, PV1, ORC, OBR, OBX..., SPM), the
 segment definitions of chapter 2 (MSH-9 message type, MSH-10 control id), chapter 3 (PID-3,
 PID-7, PV1-3, PV1-19) and chapter 7 (OBR-3 filler order number, OBR-7 observation date/time,
 OBR-10 collector, OBR-22 results report time; OBX-2 value type NM/SN/ST/CWE, OBX-3 with coding
@@ -38,7 +38,7 @@ def con(tmp_path: Path) -> duckdb.DuckDBPyConnection:
 
 
 def messages() -> list[list[str]]:
-    """The fixture's messages as lists of segments (CR-separated, HL7 v2.5.1 section 2.5.1)."""
+    """The fixture's messages as lists of segments (CR-separated, HL7 v2.5.1 chapter 2 message construction rules)."""
     text = FIXTURE.read_bytes().decode("utf-8")  # bytes: read_text would turn CR into LF
     return [("MSH|" + m).rstrip("\r").split("\r") for m in text.split("MSH|")[1:]]
 
@@ -112,7 +112,7 @@ def test_three_samples_load_with_the_fields_the_standard_places(con):
 
 def test_mllp_framing_and_line_feeds_are_tolerated(con, tmp_path):
     load(con, FIXTURE)
-    # HL7 v2.5.1 Appendix C (MLLP): <VT> message <FS><CR>; segments ended by LF instead of CR
+    # MLLP framing <VT> message <FS><CR> (MLLP; the bytes of hl7.mllp START_BLOCK, END_BLOCK); segments ended by LF instead of CR
     framed = "".join("\x0b" + join(m, separator="\n") + "\x1c\r" for m in messages())
     outcome = load(con, write(tmp_path, "framed.hl7", framed), run="run-2")
     # the same three records: duplicates of what the CR file loaded, nothing new
@@ -190,7 +190,7 @@ def local_time_skipped(m: list[str]) -> list[str]:
 
 
 def escaped_text(m: list[str]) -> list[str]:
-    # \\T\\ is the escape sequence of the subcomponent separator & (HL7 v2.5.1 section 2.7.4)
+    # \\T\\ is the escape sequence of the subcomponent separator & (HL7 v2.5.1 chapter 2, escape sequences in text fields)
     return [[s.replace("Heron ICU", "Heron \\T\\ Egret ICU") if s.startswith("PV1|") else s for s in m]]
 
 

@@ -1,12 +1,14 @@
 """HL7 v2 result messages (ORU^R01) as observations for the grouping.
 
 A file holds messages one after another, each starting with MSH; MLLP framing characters
-(start block 0x0B, end block 0x1C then CR: HL7 v2.5.1 Appendix C, Minimal Lower Layer
-Protocol) are tolerated and stripped, and segments may end with CR (the standard's
-separator, chapter 2 section 2.5.1) or with LF / CRLF (files copied between systems).
+(start block 0x0B, end block 0x1C then CR, the Minimal Lower Layer Protocol; the same bytes
+as ``hl7.mllp`` START_BLOCK and END_BLOCK) are tolerated and stripped, and segments may end
+with CR (the standard's separator, chapter 2 message construction rules) or with LF / CRLF
+(files copied between systems). The PATIENT group (PID) is optional in ORU^R01, but a blood
+gas without its patient cannot be audited, so a message without PID is quarantined.
 Messages are split and parsed by the ``hl7`` package (``hl7.split_file``, ``hl7.parse``).
 
-What each field comes from (HL7 v2.5.1 chapter 7, section 7.3.2 ORU^R01 and the segment
+What each field comes from (HL7 v2.5.1 chapter 7, section 7.3.1 ORU^R01 and the segment
 definitions in chapter 3 (PID, PV1) and 7 (OBR, OBX, SPM)):
 
 ==================  ==============================================================
@@ -96,7 +98,7 @@ def _text(
 ) -> str | None:
     """One component of one field as text, None when absent or empty (the ``hl7`` accessor
     follows the first child where the tree is deeper, HL7 v2 "compatibility rules"); escape
-    sequences (\\F\\, \\S\\, ... HL7 v2.5.1 section 2.7.4) are resolved by ``hl7``."""
+    sequences (\\F\\, \\S\\, ... HL7 v2.5.1 chapter 2, escape sequences in text fields) are resolved by ``hl7``."""
     try:
         value = segment.extract_field(1, field, repetition, component, 1)
     except (IndexError, KeyError, HL7Exception):

@@ -3,7 +3,7 @@
 FHIR ``dateTime`` and ``instant`` carry their offset whenever they carry a time (FHIR R4
 data types, datatypes.html, dateTime: "If hours and minutes are specified, a time zone SHALL
 be populated"). HL7 v2 DTM is ``YYYY[MM[DD[HH[MM[SS[.S[S[S[S]]]]]]]]][+/-ZZZZ]`` (HL7 v2.5.1
-chapter 2A, section 2A.3.22 DTM); a time without an offset is the sender's local time, read
+chapter 2A, data type DTM); a time without an offset is the sender's local time, read
 in the profile's time zone. A local time the clocks skipped or passed twice is quarantined
 with the loader's own reasons (``DST_NONEXISTENT``, ``DST_AMBIGUOUS``).
 """
