@@ -112,7 +112,8 @@ def test_three_samples_load_with_the_fields_the_standard_places(con):
 
 def test_mllp_framing_and_line_feeds_are_tolerated(con, tmp_path):
     load(con, FIXTURE)
-    # MLLP framing <VT> message <FS><CR> (MLLP; the bytes of hl7.mllp START_BLOCK, END_BLOCK); segments ended by LF instead of CR
+    # MLLP framing <VT> message <FS><CR> (the bytes of hl7.mllp START_BLOCK, END_BLOCK);
+    # segments ended by LF instead of CR
     framed = "".join("\x0b" + join(m, separator="\n") + "\x1c\r" for m in messages())
     outcome = load(con, write(tmp_path, "framed.hl7", framed), run="run-2")
     # the same three records: duplicates of what the CR file loaded, nothing new
@@ -190,7 +191,8 @@ def local_time_skipped(m: list[str]) -> list[str]:
 
 
 def escaped_text(m: list[str]) -> list[str]:
-    # \\T\\ is the escape sequence of the subcomponent separator & (HL7 v2.5.1 chapter 2, escape sequences in text fields)
+    # \\T\\ is the escape sequence of the subcomponent separator &
+    # (HL7 v2.5.1 chapter 2, escape sequences in text fields)
     return [[s.replace("Heron ICU", "Heron \\T\\ Egret ICU") if s.startswith("PV1|") else s for s in m]]
 
 
