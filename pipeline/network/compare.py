@@ -1,0 +1,71 @@
+"""Compare two engines' outputs of the same lake: rows by key, values exactly or to a tolerance.
+
+Text, flags, codes and counts must be equal. Floating-point values may differ in the last bits
+(the engines add and multiply in different orders): equal when within ``TOLERANCE`` (absolute for
+values up to 1, relative above). Evidence is JSON whose numbers follow the same rule, compared
+parsed (key order is not meaningful in a JSON object).
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from typing import Any
+
+import polars as pl
+
+TOLERANCE = 1e-9
+KEYS: dict[str, tuple[str, ...]] = {
+    "derived": ("site", "sample_id"),
+    "flags": ("site", "sample_id", "rule_id"),
+    "audit_status": ("site", "sample_id"),
+    "analyser_qc": ("site", "analyser_id", "analyte", "block"),
+}
+IGNORED = {"run_id"}
+
+
+def close(a: float | None, b: float | None) -> bool:
+    if a is None or b is None:
+        return a is None and b is None
+    if math.isnan(a) or math.isnan(b):
+        return math.isnan(a) and math.isnan(b)
+    return abs(a - b) <= TOLERANCE * max(1.0, abs(a), abs(b))
+
+
+def same_json(a: Any, b: Any) -> bool:
+    if isinstance(a, float) or isinstance(b, float):
+        return isinstance(a, (int, float)) and isinstance(b, (int, float)) and close(float(a), float(b))
+    if isinstance(a, dict) and isinstance(b, dict):
+        return a.keys() == b.keys() and all(same_json(a[k], b[k]) for k in a)
+    if isinstance(a, list) and isinstance(b, list):
+        return len(a) == len(b) and all(same_json(x, y) for x, y in zip(a, b, strict=True))
+    return a == b
+
+
+def differences(table: str, reference: pl.DataFrame, other: pl.DataFrame, limit: int = 20) -> list[str]:
+    """What differs between two outputs of ``table`` (empty when they agree)."""
+    keys = list(KEYS[table])
+    problems: list[str] = []
+    if set(reference.columns) != set(other.columns):
+        return [f"{table}: columns differ: {sorted(set(reference.columns) ^ set(other.columns))}"]
+    if reference.height != other.height:
+        problems.append(f"{table}: {reference.height} rows against {other.height}")
+    joined = reference.join(other, on=keys, how="full", suffix="__other", coalesce=True, nulls_equal=True)
+    columns = [c for c in reference.columns if c not in keys and c not in IGNORED]
+    for row in joined.iter_rows(named=True):
+        for column in columns:
+            a, b = row[column], row[f"{column}__other"]
+            if _equal(column, reference.schema[column], a, b):
+                continue
+            problems.append(f"{table} {tuple(row[k] for k in keys)} {column}: {a!r} against {b!r}")
+            if len(problems) >= limit:
+                return problems
+    return problems
+
+
+def _equal(column: str, dtype: pl.DataType, a: Any, b: Any) -> bool:
+    if dtype.is_float():
+        return close(a, b)
+    if column == "evidence" and a is not None and b is not None:
+        return same_json(json.loads(a), json.loads(b))
+    return a == b
