@@ -612,5 +612,78 @@ def fields() -> None:
             click.echo(f"{f.name:<28} {f.kind.value:<9} {unit:<8} {f.description}{flag}")
 
 
+@main.command("publish-lake", epilog=RUN_EPILOG)
+@config_option
+@store_option
+@click.option(
+    "--to", "lake", type=click.Path(file_okay=False, path_type=Path), required=True, help="The network lake folder."
+)
+@click.option("--site-id", help="The site's folder name in the lake (default: from [site] name).")
+@handle_errors
+def publish_lake(config_path: Path, store: Path | None, lake: Path, site_id: str | None) -> None:
+    """Publish the site's pseudonymised records to a network lake (Parquet by site and month).
+
+    Raw identifiers stay at the site; sample and prescription numbers leave as keyed pseudonyms
+    (docs/operations.md, "Network operators").
+
+    \b
+    Example:
+      abg-audit publish-lake --config site.toml --to /mnt/network-lake
+    """
+    from pipeline.config import load_config
+    from pipeline.network.lake import SiteSettings, check_site_id, publish_lake
+    from pipeline.network.lake import site_id as make_site_id
+    from pipeline.pseudonym import load_key
+    from pipeline.store import open_store
+
+    config = load_config(config_path, store=store)
+    site = check_site_id(site_id) if site_id else make_site_id(config.site_name)
+    key = load_key(config.key_file)
+    con = open_store(config.store_path, read_only=True)
+    try:
+        manifest = publish_lake(con, SiteSettings.of(config, site), key, lake)
+    finally:
+        con.close()
+    rows = ", ".join(f"{table} {entry['rows']}" for table, entry in manifest["tables"].items())
+    click.echo(f"site {site}: {len(manifest['files'])} partition files ({rows}); manifest {lake}/manifests/{site}.json")
+
+
+@main.command(epilog=EXIT_CODES_HELP)
+@click.option(
+    "--lake", type=click.Path(file_okay=False, exists=True, path_type=Path), required=True, help="The network lake."
+)
+@click.option(
+    "--output", type=click.Path(file_okay=False, path_type=Path), help="Output folder (default: <lake>/network-output)."
+)
+@click.option("--engine", type=click.Choice(["duckdb", "spark"]), default="duckdb", show_default=True)
+@click.option("--master", default="local[*]", show_default=True, help="Spark master URL (spark engine only).")
+@click.option(
+    "--thresholds",
+    type=click.Path(dir_okay=False, path_type=Path),
+    help="A TOML file with the network's [thresholds] (as in a site configuration); default: the catalogue's.",
+)
+@handle_errors
+def network(lake: Path, output: Path | None, engine: str, master: str, thresholds: Path | None) -> None:
+    """Run the derive and rules stages over every site of a network lake.
+
+    Writes derived, flags, audit_status and analyser_qc (each with a site column) as Parquet
+    partitioned by site, and network_run.json. --engine duckdb is the reference; --engine spark
+    runs the same SQL files translated for Spark SQL (pip install -e '.[spark]', Java 17).
+
+    \b
+    Examples:
+      abg-audit network --lake /mnt/network-lake --engine duckdb
+      abg-audit network --lake /mnt/network-lake --engine spark --master 'local[*]'
+    """
+    from pipeline.network.run import run_network
+
+    output = output or lake / "network-output"
+    result = run_network(lake, output, engine=engine, master=master, thresholds=thresholds)
+    click.echo(f"{engine}: {len(result.sites)} sites; " + ", ".join(f"{t} {n}" for t, n in result.rows.items()))
+    if result.untranslated:
+        click.echo(f"not run on {engine} (no translation): {', '.join(result.untranslated)}", err=True)
+    click.echo(f"outputs in {output}")
+
+
 if __name__ == "__main__":
     main()

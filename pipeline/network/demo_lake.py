@@ -21,6 +21,7 @@ from pipeline.network.lake import SiteSettings, publish_lake
 from pipeline.pseudonym import add_pseudonym
 from pipeline.schema import PSEUDONYMISED
 from pipeline.store import open_scratch_store
+from synthetic_data import DemoData
 
 
 @dataclass(frozen=True)
@@ -45,6 +46,15 @@ PRESCRIPTION_COLUMNS = (
 ).split()
 
 
+def demo_unit_targets() -> list[tuple[str, str, float | None, float | None, bool]]:
+    """The demo units' types with the default targets, as SiteConfig.unit_target_rows gives them."""
+    from pipeline.config import SiteConfig
+    from synthetic_data.hospital import UNIT_TYPES
+
+    config = SiteConfig(None, "demo", Path("."), Path("."), None, (), unit_types=dict(UNIT_TYPES))
+    return config.unit_target_rows()
+
+
 def demo_key(site: str) -> bytes:
     """The demo site's pseudonym key (per site, as the network key policy's default). Demo only:
     a real site's key is random and secret (README, "The pseudonym key")."""
@@ -54,7 +64,6 @@ def demo_key(site: str) -> bytes:
 def build_demo_lake(lake: Path, *, sites: int = 5, rows_per_site: int = 2_000, seed: int = 101) -> list[dict]:
     """Write ``sites`` invented sites (``rows_per_site`` samples each) into ``lake``; return the manifests."""
     from synthetic_data import generate_demo
-    from synthetic_data.hospital import UNIT_TYPES
 
     if not 1 <= sites <= len(DEMO_SITES):
         raise ValueError(f"the demo network has 1 to {len(DEMO_SITES)} sites")
@@ -67,21 +76,25 @@ def build_demo_lake(lake: Path, *, sites: int = 5, rows_per_site: int = 2_000, s
             site_name=demo_site.name,
             barometric_pressure_mmhg=None,
             altitude_m=demo_site.altitude_m,
-            unit_targets=[(unit, kind, None, None, kind not in ("paediatric", "neonatal")) for unit, kind in
-                          sorted(UNIT_TYPES.items())],
+            unit_targets=demo_unit_targets(),
         )
-        records = _with_keys(demo.records, key)
-        prescriptions = demo.prescriptions.filter(pl.col("export_fault").is_null()).select(PRESCRIPTION_COLUMNS)
-        prescriptions = _with_keys(prescriptions, key)
         with tempfile.TemporaryDirectory(prefix="abg-demo-lake-") as spill:
             con = open_scratch_store(Path(spill) / "spill")
             try:
-                _insert(con, "records", records, demo_site.site)
-                _insert(con, "prescriptions", prescriptions, demo_site.site)
+                store_demo_site(con, demo, key, demo_site.site)
                 manifests.append(publish_lake(con, settings, key, lake))
             finally:
                 con.close()
     return manifests
+
+
+def store_demo_site(con: duckdb.DuckDBPyConnection, demo: DemoData, key: bytes, site: str) -> None:
+    """The generator's records and (fault-free) prescriptions into a store's tables, with keyed
+    pseudonyms made as ingestion makes them (the raw identifiers kept, as a site keeping them does)."""
+    records = _with_keys(demo.records, key)
+    prescriptions = demo.prescriptions.filter(pl.col("export_fault").is_null()).select(PRESCRIPTION_COLUMNS)
+    _insert(con, "records", records, site)
+    _insert(con, "prescriptions", _with_keys(prescriptions, key), site)
 
 
 def _with_keys(frame: pl.DataFrame, key: bytes) -> pl.DataFrame:
@@ -100,3 +113,22 @@ def _insert(con: duckdb.DuckDBPyConnection, table: str, frame: pl.DataFrame, sit
         )
     finally:
         con.unregister("demo_frame")
+
+
+def main(argv: list[str] | None = None) -> None:
+    """``python -m pipeline.network.demo_lake --to DIR [--sites 5] [--rows 2000] [--seed 101]``"""
+    import argparse
+
+    parser = argparse.ArgumentParser(description="Write a lake of invented hospitals (demo data only).")
+    parser.add_argument("--to", type=Path, required=True, help="lake folder")
+    parser.add_argument("--sites", type=int, default=5)
+    parser.add_argument("--rows", type=int, default=2_000, help="samples per site")
+    parser.add_argument("--seed", type=int, default=101)
+    args = parser.parse_args(argv)
+    for manifest in build_demo_lake(args.to, sites=args.sites, rows_per_site=args.rows, seed=args.seed):
+        rows = ", ".join(f"{table} {entry['rows']}" for table, entry in manifest["tables"].items())
+        print(f"{manifest['site']}: {rows}")
+
+
+if __name__ == "__main__":
+    main()

@@ -27,8 +27,15 @@ from pipeline.network import translate
 from pipeline.network.stages import Statement
 
 # Identifier columns qualified by the site in the network inputs (and unqualified in the outputs).
-QUALIFIED_COLUMNS = ("sample_id", "patient_key", "encounter_key", "operator_key", "analyser_id", "unit",
-                     "prescription_id")
+QUALIFIED_COLUMNS = (
+    "sample_id",
+    "patient_key",
+    "encounter_key",
+    "operator_key",
+    "analyser_id",
+    "unit",
+    "prescription_id",
+)
 SEPARATOR = "/"
 
 
@@ -112,14 +119,33 @@ class DuckDBEngine:
         for table, per_site in inputs.files.items():
             read = "read_parquet({}, union_by_name = true, hive_partitioning = false)"
             parts = [
-                f"select *, '{site}' as site from {read.format(sorted(paths))}" for site, paths in sorted(per_site.items())
+                f"select *, '{site}' as site from {read.format(sorted(paths))}"
+                for site, paths in sorted(per_site.items())
             ]
             self.con.execute(f"create or replace temp table {table}_lake as {' union all by name '.join(parts)}")
-        self._frame("network_sites", pl.DataFrame(inputs.sites, schema={
-            "site": pl.String, "site_pb_mmhg": pl.Float64, "site_altitude_m": pl.Float64}, orient="row"))
-        self._frame("network_unit_targets", pl.DataFrame(inputs.unit_targets, schema={
-            "site": pl.String, "unit": pl.String, "unit_type": pl.String, "target_low_pct": pl.Float64,
-            "target_high_pct": pl.Float64, "assessed": pl.Boolean}, orient="row"))
+        self._frame(
+            "network_sites",
+            pl.DataFrame(
+                inputs.sites,
+                schema={"site": pl.String, "site_pb_mmhg": pl.Float64, "site_altitude_m": pl.Float64},
+                orient="row",
+            ),
+        )
+        self._frame(
+            "network_unit_targets",
+            pl.DataFrame(
+                inputs.unit_targets,
+                schema={
+                    "site": pl.String,
+                    "unit": pl.String,
+                    "unit_type": pl.String,
+                    "target_low_pct": pl.Float64,
+                    "target_high_pct": pl.Float64,
+                    "assessed": pl.Boolean,
+                },
+                orient="row",
+            ),
+        )
         self._frame("rule_catalogue", catalogue_frame)
         for table in inputs.files:
             columns = [c for c in self.columns(f"{table}_lake") if c != "site"] + ["site"]
@@ -155,8 +181,14 @@ class DuckDBEngine:
         self.con.close()
 
 
-def spark_session(master: str = "local[*]", *, app: str = "abg-audit network", memory: str = "1g",
-                  shuffle_partitions: int = 4, extra: dict[str, str] | None = None) -> Any:
+def spark_session(
+    master: str = "local[*]",
+    *,
+    app: str = "abg-audit network",
+    memory: str = "1g",
+    shuffle_partitions: int = 4,
+    extra: dict[str, str] | None = None,
+) -> Any:
     """A Spark session for the network run: UTC, no UI; any master (local[n], spark://, yarn, k8s)."""
     from pyspark.sql import SparkSession
 
@@ -204,11 +236,14 @@ class SparkEngine:
         from pyspark.sql.types import NullType, StringType
 
         # Parquet has no type for an untyped NULL column (a rule's "null as severity"): text.
-        frame = frame.select(*[
-            F.col(f"`{f.name}`").cast(StringType()).alias(f.name) if isinstance(f.dataType, NullType)
-            else F.col(f"`{f.name}`")
-            for f in frame.schema.fields
-        ])
+        frame = frame.select(
+            *[
+                F.col(f"`{f.name}`").cast(StringType()).alias(f.name)
+                if isinstance(f.dataType, NullType)
+                else F.col(f"`{f.name}`")
+                for f in frame.schema.fields
+            ]
+        )
         self._written += 1
         path = str(self.work / f"relation-{self._written:05d}")
         frame.write.mode("overwrite").parquet(path)
@@ -243,10 +278,17 @@ class SparkEngine:
                 union = union.unionByName(frame, allowMissingColumns=True)
             self._view(f"{table}_lake", union, checkpoint=False)
         self._rows("network_sites", inputs.sites, "site string, site_pb_mmhg double, site_altitude_m double")
-        self._rows("network_unit_targets", inputs.unit_targets, "site string, unit string, unit_type string, "
-                   "target_low_pct double, target_high_pct double, assessed boolean")
-        self._rows("rule_catalogue", catalogue_frame.rows(), ", ".join(
-            f"{c} {'boolean' if t == pl.Boolean else 'string'}" for c, t in catalogue_frame.schema.items()))
+        self._rows(
+            "network_unit_targets",
+            inputs.unit_targets,
+            "site string, unit string, unit_type string, "
+            "target_low_pct double, target_high_pct double, assessed boolean",
+        )
+        self._rows(
+            "rule_catalogue",
+            catalogue_frame.rows(),
+            ", ".join(f"{c} {'boolean' if t == pl.Boolean else 'string'}" for c, t in catalogue_frame.schema.items()),
+        )
         for table in inputs.files:
             columns = [c for c in self.columns(f"{table}_lake") if c != "site"] + ["site"]
             self._view(table, self.spark.sql(network_input_sql(table, columns)))
@@ -312,7 +354,8 @@ def _create(engine: SparkEngine, tree: exp.Create) -> None:
     if query is None:  # create table (column definitions): an empty view of those columns
         columns = [
             exp.alias_(exp.Cast(this=exp.Null(), to=d.args["kind"]), d.name)
-            for d in tree.this.expressions if isinstance(d, exp.ColumnDef)
+            for d in tree.this.expressions
+            if isinstance(d, exp.ColumnDef)
         ]
         query = exp.select(*columns).where(exp.false())
     engine._view(name, engine.sql(query))
@@ -329,10 +372,12 @@ def _insert(engine: SparkEngine, tree: exp.Insert) -> None:
     current = engine.spark.table(name)
     from pyspark.sql import functions as F
 
-    aligned = new.select(*[
-        (F.col(c) if c in new.columns else F.lit(None)).cast(current.schema[c].dataType).alias(c)
-        for c in current.columns
-    ])
+    aligned = new.select(
+        *[
+            (F.col(c) if c in new.columns else F.lit(None)).cast(current.schema[c].dataType).alias(c)
+            for c in current.columns
+        ]
+    )
     engine._append(name, aligned)
 
 

@@ -8,9 +8,12 @@ settings the network run needs). Raw identifiers never leave the site: the ident
 prescription numbers (accession and order numbers, which the laboratory can trace to a patient)
 are replaced by keyed pseudonyms of their own domains, made with the site's key.
 
-Atomicity: every partition is written into a temporary folder inside the lake and renamed into
-place (a rename within one file system is atomic), so a reader sees a partition whole or not at
-all; the manifest is replaced last, and readers take only the files the manifest lists.
+Atomicity: every partition file is written into a staging folder inside the lake and renamed into
+its partition (a rename within one file system is atomic), under a name of its own publication
+(``part-<publish id>``); the manifest is replaced (rename) once every file is in place, and only
+then are the previous publication's files removed. Readers take the files a manifest lists, so
+they see the previous publication or the new one, each whole, never a mix; a publication that
+fails midway removes what it wrote and leaves the previous manifest and files as they were.
 """
 
 from __future__ import annotations
@@ -19,7 +22,6 @@ import hashlib
 import json
 import os
 import re
-import shutil
 import uuid
 from collections.abc import Iterator
 from dataclasses import dataclass
@@ -103,27 +105,32 @@ def publish_lake(con: duckdb.DuckDBPyConnection, settings: SiteSettings, key: by
     publish_id = uuid.uuid4().hex[:12]
     files: list[dict[str, Any]] = []
     store_rows: dict[str, int] = {}
-    for table, time_column in LAKE_TABLES.items():
-        if not _has_table(con, table):
-            continue
-        store_rows[table] = con.execute(f"select count(*) from {table}").fetchall()[0][0]
-        for month, frame in _months(con, table, time_column):
-            frame = _pseudonymised(frame, key)
-            files.append(_write_partition(lake, table, settings.site, month, publish_id, frame))
-    manifest = {
-        "schema_version": LAKE_SCHEMA_VERSION,
-        "site": settings.site,
-        "publish_id": publish_id,
-        "written_at": datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
-        "settings": settings.as_json(),
-        "tables": {table: {"rows": rows} for table, rows in store_rows.items()},
-        "files": files,
-    }
-    for table, rows in store_rows.items():
-        written = sum(f["rows"] for f in files if f["table"] == table)
-        if written != rows:  # a row lost between the store and the lake must stop the publication
-            raise StorageError(f"lake {table} of site {settings.site}: {written} rows written, {rows} in the store")
-    _replace_json(lake / "manifests" / f"{settings.site}.json", manifest)
+    try:
+        for table, time_column in LAKE_TABLES.items():
+            if not _has_table(con, table):
+                continue
+            store_rows[table] = con.execute(f"select count(*) from {table}").fetchall()[0][0]
+            for month, frame in _months(con, table, time_column):
+                frame = _pseudonymised(frame, key)
+                files.append(_write_partition(lake, table, settings.site, month, publish_id, frame))
+        for table, rows in store_rows.items():
+            written = sum(f["rows"] for f in files if f["table"] == table)
+            if written != rows:  # a row lost between the store and the lake must stop the publication
+                raise StorageError(f"lake {table} of site {settings.site}: {written} rows written, {rows} in the store")
+        manifest = {
+            "schema_version": LAKE_SCHEMA_VERSION,
+            "site": settings.site,
+            "publish_id": publish_id,
+            "written_at": datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
+            "settings": settings.as_json(),
+            "tables": {table: {"rows": rows} for table, rows in store_rows.items()},
+            "files": files,
+        }
+        _replace_json(lake / "manifests" / f"{settings.site}.json", manifest)
+    except BaseException:
+        for entry in files:  # this publication's files: the previous manifest never listed them
+            (lake / entry["path"]).unlink(missing_ok=True)
+        raise
     _remove_unlisted(lake, settings.site, {f["path"] for f in files})
     return manifest
 
@@ -158,31 +165,25 @@ def partition_folder(lake: Path, table: str, site: str, month: str) -> Path:
 
 
 def _write_partition(lake: Path, table: str, site: str, month: str, publish_id: str, frame: pl.DataFrame) -> dict:
-    """Write one partition into a temporary folder and rename it into place."""
-    final = partition_folder(lake, table, site, month)
-    staging = lake / ".staging" / f"{publish_id}-{table}-{site}-{month}"
-    staging.mkdir(parents=True, exist_ok=False)
+    """Write one partition file in the staging folder and rename it into its partition."""
+    staging = lake / ".staging"
+    staging.mkdir(exist_ok=True)
+    name = f"part-{publish_id}.parquet"
+    staged = staging / f"{publish_id}-{table}-{month}.parquet"
     try:
-        name = f"part-{publish_id}.parquet"
-        write_parquet(frame, staging / name)
-        final.parent.mkdir(parents=True, exist_ok=True)
-        retired = None
-        if final.exists():
-            retired = lake / ".staging" / f"retired-{publish_id}-{table}-{site}-{month}"
-            os.rename(final, retired)
-        os.rename(staging, final)
-        if retired is not None:
-            shutil.rmtree(retired)
-    except BaseException:
-        shutil.rmtree(staging, ignore_errors=True)
-        raise
-    path = final / name
+        write_parquet(frame, staged)
+        digest = hashlib.sha256(staged.read_bytes()).hexdigest()
+        final = partition_folder(lake, table, site, month)
+        final.mkdir(parents=True, exist_ok=True)
+        os.rename(staged, final / name)
+    finally:
+        staged.unlink(missing_ok=True)
     return {
         "table": table,
         "month": month,
-        "path": path.relative_to(lake).as_posix(),
+        "path": (final / name).relative_to(lake).as_posix(),
         "rows": frame.height,
-        "sha256": hashlib.sha256(path.read_bytes()).hexdigest(),
+        "sha256": digest,
     }
 
 
@@ -199,12 +200,16 @@ def _replace_json(path: Path, content: dict[str, Any]) -> None:
 
 
 def _remove_unlisted(lake: Path, site: str, listed: set[str]) -> None:
-    """Partitions of this site left by an earlier publication and no longer in its manifest."""
+    """Files of this site's partitions that the manifest no longer lists (an earlier publication's),
+    and partitions left empty."""
     for table in LAKE_TABLES:
         folder = lake / table / f"site={site}"
         for partition in sorted(folder.glob("month=*")) if folder.exists() else []:
-            if not any(p.startswith(partition.relative_to(lake).as_posix() + "/") for p in listed):
-                shutil.rmtree(partition)
+            for file in partition.iterdir():
+                if file.relative_to(lake).as_posix() not in listed:
+                    file.unlink()
+            if not any(partition.iterdir()):
+                partition.rmdir()
 
 
 def read_manifests(lake: Path) -> list[dict[str, Any]]:

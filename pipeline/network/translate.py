@@ -114,9 +114,7 @@ def to_duckdb(sql: str) -> str:
 def _spark_idioms(tree: exp.Expression) -> exp.Expression:
     """Two passes: scalar rewrites first (they may sit inside a JSON object), then the JSON values,
     outermost first, so an object nested in another becomes a struct inside it rather than text."""
-    array_aliases = {
-        a.alias for a in tree.find_all(exp.Alias) if isinstance(a.this, (exp.ArrayFilter, exp.Array))
-    }
+    array_aliases = {a.alias for a in tree.find_all(exp.Alias) if isinstance(a.this, (exp.ArrayFilter, exp.Array))}
 
     def scalars(node: exp.Expression) -> exp.Expression:
         if isinstance(node, exp.Round) and _digits(node) is not None:
@@ -133,8 +131,9 @@ def _spark_idioms(tree: exp.Expression) -> exp.Expression:
     def json_values(node: exp.Expression) -> exp.Expression:
         if _is_object_aggregate(node):
             key, value = _pair(node)
-            entries = exp.Anonymous(this="collect_list", expressions=[exp.Anonymous(
-                this="struct", expressions=[key, _as_struct(value)])])
+            entries = exp.Anonymous(
+                this="collect_list", expressions=[exp.Anonymous(this="struct", expressions=[key, _as_struct(value)])]
+            )
             return _to_json(exp.Anonymous(this="map_from_entries", expressions=[entries]))
         if isinstance(node, exp.JSONObject):
             return _to_json(_as_struct(node))
@@ -153,8 +152,12 @@ def _median_absolute_deviation(tree: exp.Expression) -> exp.Expression:
         select = call.find_ancestor(exp.Select)
         source = select.args.get("from_") or select.args.get("from") if select is not None else None
         groups = select.args.get("group") if select is not None else None
-        if select is None or source is None or groups is None or select.args.get("joins") or not isinstance(
-            source.this, exp.Table
+        if (
+            select is None
+            or source is None
+            or groups is None
+            or select.args.get("joins")
+            or not isinstance(source.this, exp.Table)
         ):
             raise Untranslatable("mad() outside a grouped SELECT over one table has no Spark translation here")
         value = call.expressions[0]
@@ -315,9 +318,11 @@ def _branches(case: exp.Case) -> list[exp.Expression]:
 def _float_precisions(fmt: exp.Expression) -> list[int | None]:
     """For each conversion of a literal format: N of %.Nf, else None. A non-literal format (a CASE
     choosing between formats) gives the precisions when all its literal branches agree."""
-    formats = [fmt.this] if isinstance(fmt, exp.Literal) and fmt.is_string else [
-        lit.this for lit in fmt.find_all(exp.Literal) if lit.is_string and "%" in lit.this
-    ]
+    formats = (
+        [fmt.this]
+        if isinstance(fmt, exp.Literal) and fmt.is_string
+        else [lit.this for lit in fmt.find_all(exp.Literal) if lit.is_string and "%" in lit.this]
+    )
     pattern = re.compile(r"%%|%(?:\.(\d+))?([a-zA-Z])")
     per_format = []
     for text in formats:
