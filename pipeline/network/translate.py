@@ -278,9 +278,11 @@ def _literal_text(node: exp.Expression) -> str | None:
 # value. Checked against DuckDB's own round() and printf() on 300 000 values full of ties
 # (tests/test_network_translate.py).
 _ROUND_TEMPLATE = """
+CASE WHEN ABS({hi}) >= CAST(4503599627370496.0 AS DOUBLE) THEN {x} ELSE
 CAST(CASE WHEN {hi} - FLOOR({hi}) = 0.5
      THEN CASE WHEN {lo} > 0 THEN CEIL({hi}) WHEN {lo} < 0 THEN FLOOR({hi}) ELSE {tie} END
      ELSE ROUND({hi}) END AS DOUBLE) / {p}
+END
 """
 _TIES = {
     "away": "CASE WHEN {hi} > 0 THEN CEIL({hi}) ELSE FLOOR({hi}) END",
@@ -300,7 +302,8 @@ def exact_round(value: exp.Expression, digits: int, *, ties: str) -> exp.Express
     pl = f"({p} - {ph})"
     hi = f"({x} * {p})"
     lo = f"(((({xh} * {ph}) - {hi}) + ({xh} * {pl}) + ({xl} * {ph})) + ({xl} * {pl}))"
-    text = _ROUND_TEMPLATE.format(hi=hi, lo=lo, p=p, tie=_TIES[ties].format(hi=hi))
+    # from 2^52 on, x * 10^n has no fraction bits left: x is already as rounded as a double can be
+    text = _ROUND_TEMPLATE.format(x=x, hi=hi, lo=lo, p=p, tie=_TIES[ties].format(hi=hi))
     tree = sqlglot.parse_one(text, read="spark")
 
     def put(node: exp.Expression) -> exp.Expression:
