@@ -73,6 +73,17 @@ def model_problem(resource: dict[str, Any]) -> str | None:
     return None
 
 
+def _lines(text: str) -> Iterator[str]:
+    """The lines of NDJSON text one at a time (LF ends a line, CR before it is dropped);
+    neither a list of every line nor a StringIO (four bytes a character) of a big export."""
+    start = 0
+    while start < len(text):
+        end = text.find("\n", start)
+        end = len(text) if end < 0 else end
+        yield text[start:end].rstrip("\r")
+        start = end + 1
+
+
 def resources(text: str) -> Iterator[tuple[int, str, Any, str | None, str]]:
     """(order, where, resource or None, problem) for every resource of a Bundle file or
     every non-blank line of an NDJSON file. Numbers are kept as written (text)."""
@@ -88,7 +99,7 @@ def resources(text: str) -> Iterator[tuple[int, str, Any, str | None, str]]:
                 problem = None if isinstance(resource, dict) else "entry without a resource"
                 yield number, f"Bundle entry {number}", resource, problem, json.dumps(entry)
             return
-    for number, line in enumerate(text.splitlines(), start=1):
+    for number, line in enumerate(_lines(text), start=1):
         if not line.strip():
             continue
         try:
