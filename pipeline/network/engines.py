@@ -81,13 +81,15 @@ SCOPE_SQL = {
     "scope_samples": "select sample_id from records",
     "scope_runs": "select run_id from records where false",
     "scope_settings": "select true as rebuild",
+    # the site's run ledger, which the audit layer reads for its own bookkeeping: none in a lake
+    "runs": "select run_id, cast(null as timestamp) as analysed_at from records where false",
 }
 
 
 def output_sql(table: str, columns: list[str]) -> str:
     """An output relation with its site and its identifiers as the site knows them."""
     site = f"substring(sample_id, 1, instr(sample_id, '{SEPARATOR}') - 1)"
-    key = "analyser_id" if table == "analyser_qc" else "sample_id"
+    key = "analyser_id" if table == "analyser_qc" else "unit" if table.startswith("audit_unit_period") else "sample_id"
     site = site.replace("sample_id", key)
     parts = [f"{site} as site"]
     for column in columns:
@@ -190,7 +192,13 @@ def spark_session(
     extra: dict[str, str] | None = None,
 ) -> Any:
     """A Spark session for the network run: UTC, no UI; any master (local[n], spark://, yarn, k8s)."""
-    from pyspark.sql import SparkSession
+    import warnings
+
+    with warnings.catch_warnings():
+        # pyspark 4.3 warns on import that it does not fully support pandas 3; the network run uses
+        # no pandas conversion (outputs go through Arrow), so the warning is noise in an operator's log
+        warnings.filterwarnings("ignore", message="PySpark does not yet fully support pandas", category=FutureWarning)
+        from pyspark.sql import SparkSession
 
     builder = (
         SparkSession.builder.master(master)
@@ -339,6 +347,7 @@ def _dispatch(engine: SparkEngine, tree: exp.Expression) -> None:
         exp.Create: _create,
         exp.Insert: _insert,
         exp.Delete: _delete,
+        exp.Drop: _drop,
     }
     handler = handlers.get(type(tree))
     if handler is None:
@@ -359,6 +368,16 @@ def _create(engine: SparkEngine, tree: exp.Create) -> None:
         ]
         query = exp.select(*columns).where(exp.false())
     engine._view(name, engine.sql(query))
+
+
+def _drop(engine: SparkEngine, tree: exp.Drop) -> None:
+    for table in tree.args.get("tables") or [tree.this]:
+        name = _table_name(table)
+        if name in engine.parts:
+            del engine.parts[name]
+            engine.spark.catalog.dropTempView(name)
+        elif not tree.args.get("exists"):
+            raise KeyError(f"drop of {name}, which the run never made")
 
 
 def _insert(engine: SparkEngine, tree: exp.Insert) -> None:
@@ -393,6 +412,11 @@ def _delete(engine: SparkEngine, tree: exp.Delete) -> None:
         query = exp.select(exp.Column(this=exp.Star(), table=exp.to_identifier(alias))).from_(source)
         for other in using:
             query = query.join(other, on=condition, join_type="left anti")
+    elif condition.find(exp.Exists, exp.Subquery, exp.Select):
+        # a subquery condition (sample_id in (select ...), exists (...)) on non-NULL keys is true or
+        # false, never NULL; Spark allows such a subquery only as a predicate of its own
+        keep = exp.not_(exp.paren(condition))
+        query = exp.select(exp.Column(this=exp.Star(), table=exp.to_identifier(alias))).from_(source).where(keep)
     else:
         keep = exp.not_(exp.func("coalesce", exp.paren(condition), exp.false()))
         query = exp.select(exp.Column(this=exp.Star(), table=exp.to_identifier(alias))).from_(source).where(keep)

@@ -74,6 +74,7 @@ def run_network(
     thresholds: Path | None = None,
     engine_object: Any = None,
     verify: bool = True,
+    period: str = "month",
 ) -> NetworkResult:
     """Run derive and rules over every site of ``lake``; write the outputs into ``output``."""
     manifests = read_manifests(lake)
@@ -89,7 +90,7 @@ def run_network(
         started = time.monotonic()
         runner.load(read_lake(lake, manifests), catalogue_frame(catalogue))
         result.seconds["load"] = time.monotonic() - started
-        for statement in stage_statements(catalogue, run_id):
+        for statement in stage_statements(catalogue, run_id, period):
             started = time.monotonic()
             runner.run(statement)
             stage = statement.source.split("#")[0]

@@ -24,8 +24,19 @@ from pipeline.sql_files import read_sql
 
 # Parameters that are site settings: a column of the network records with the same name.
 SITE_COLUMN_PARAMETERS = ("site_pb_mmhg", "site_altitude_m")
-# The relations the two stages leave; the network run writes these.
-STAGE_OUTPUTS = ("derived", "flags", "audit_status", "analyser_qc")
+# The relations the stages leave; the network run writes these.
+STAGE_OUTPUTS = (
+    "derived",
+    "flags",
+    "audit_status",
+    "analyser_qc",
+    # the audit stage's aggregate layer (sql/audit/02_audit_layer_update.sql), before suppression
+    "audit_unit_period_counts",
+    "audit_unit_period_flags",
+    "audit_unit_period_patients",
+    "audit_unit_period_age_bands",
+    "audit_unit_period_episodes",
+)
 
 
 @dataclass(frozen=True)
@@ -78,8 +89,8 @@ def flag_statement(rule_id: str) -> str:
     )
 
 
-def stage_statements(catalogue: Catalogue, run_id: str) -> list[Statement]:
-    """Derive (after the scope) and rules, in the order the site runs them."""
+def stage_statements(catalogue: Catalogue, run_id: str, period: str = "month") -> list[Statement]:
+    """Derive (after the scope), rules and the audit's aggregate layer, in the order the site runs them."""
     statements = _file_statements("derive/05_prescription_link.sql")
     statements += _file_statements("derive/10_derived.sql", dict(catalogue.derive))
     statements += _file_statements("rules/00_rule_input.sql")
@@ -100,4 +111,9 @@ def stage_statements(catalogue: Catalogue, run_id: str) -> list[Statement]:
         }
         statements.append(Statement(f"sql/rules/{rule.id}.sql", flag_statement(rule.id), params))
     statements += _file_statements("rules/90_audit_status.sql", {"run_id": run_id})
+    # The audit stage's aggregate layer, rebuilt whole (pipeline.audit: reset, then update). Its
+    # settings fingerprint ($layer_sha256) only matters to a site's incremental runs.
+    audit = {"period": period, "layer_sha256": f"network {period}"}
+    statements += _file_statements("audit/01_audit_layer_reset.sql", audit)
+    statements += _file_statements("audit/02_audit_layer_update.sql", audit)
     return statements

@@ -111,12 +111,38 @@ def to_duckdb(sql: str) -> str:
     return network_rewrite(parse(sql)).sql(dialect="duckdb")
 
 
+def _without_data(tree: exp.Expression) -> exp.Expression:
+    """create table t as select ... with no data: the query's columns, no rows (Spark has no such clause)."""
+    properties = tree.args.get("properties") if isinstance(tree, exp.Create) else None
+    if properties is None:
+        return tree
+    kept = [p for p in properties.expressions if not isinstance(p, exp.WithDataProperty)]
+    if len(kept) == len(properties.expressions):
+        return tree
+    if any(p.args.get("no") is False for p in properties.expressions if isinstance(p, exp.WithDataProperty)):
+        return tree
+    tree.set("properties", exp.Properties(expressions=kept) if kept else None)
+    query = tree.expression
+    tree.set(
+        "expression",
+        exp.select("*")
+        .from_(exp.Subquery(this=query, alias=exp.TableAlias(this=exp.to_identifier("without_data"))))
+        .where(exp.false()),
+    )
+    return tree
+
+
 def _spark_idioms(tree: exp.Expression) -> exp.Expression:
     """Two passes: scalar rewrites first (they may sit inside a JSON object), then the JSON values,
     outermost first, so an object nested in another becomes a struct inside it rather than text."""
     array_aliases = {a.alias for a in tree.find_all(exp.Alias) if isinstance(a.this, (exp.ArrayFilter, exp.Array))}
 
     def scalars(node: exp.Expression) -> exp.Expression:
+        if isinstance(node, exp.Exists) and not node.find_ancestor(exp.Where, exp.Join, exp.Having):
+            # exists (...) as a value: Spark takes EXISTS only as a filter or join condition
+            probe = exp.Subquery(this=node.this.copy().limit(1), alias=exp.TableAlias(this=exp.to_identifier("probe")))
+            count = exp.GT(this=exp.Count(this=exp.Star()), expression=exp.Literal.number(0))
+            return exp.Subquery(this=exp.select(count).from_(probe))
         if isinstance(node, exp.Round) and _digits(node) is not None:
             return exact_round(node.this, _digits(node), ties="away")
         if isinstance(node, exp.TimeToUnix) and isinstance(node.this, exp.Sub):
@@ -139,7 +165,8 @@ def _spark_idioms(tree: exp.Expression) -> exp.Expression:
             return _to_json(_as_struct(node))
         return node
 
-    return _median_absolute_deviation(tree).transform(scalars).transform(json_values)
+    tree = _without_data(_median_absolute_deviation(tree))
+    return tree.transform(scalars).transform(json_values)
 
 
 def _median_absolute_deviation(tree: exp.Expression) -> exp.Expression:
