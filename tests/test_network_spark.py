@@ -73,3 +73,20 @@ def test_every_site_is_there_with_its_faults(outputs: dict[str, dict[str, pl.Dat
     per_site = flags.filter(pl.col("kind") == "data_quality").group_by("site").len()
     assert per_site.height == SITES and per_site.get_column("len").min() > 0
     assert {"suspected_venous_sample", "decimal_slip", "wrong_blood_in_tube"} <= set(flags.get_column("rule_id"))
+
+
+def test_printf_and_round_on_spark_as_duckdb(spark: Any) -> None:
+    # oracle: DuckDB's printf (C printf, ties to even on the exact binary value, "-0" for a negative
+    # value that rounds to zero) and round() (ties away from zero); Spark runs their translation
+    import duckdb
+
+    from pipeline.network.translate import to_spark
+
+    values = [32.55, 2.675, 0.125, -2.5, -0.3, -0.04, 72.5, 130.5, 7.405, 0.15, 1e-9, -123.455]
+    sql = "select printf('%.0f|%.1f|%.2f', x, x, x) as text, round(x, 1) as r1, round(x, 2) as r2 from t"
+    rows = ", ".join(f"({v!r}::double)" for v in values)
+    reference = duckdb.sql(f"with t(x) as (values {rows}) {sql}").fetchall()
+    spark.createDataFrame([(v,) for v in values], "x double").createOrReplaceTempView("t")
+    got = [tuple(r) for r in spark.sql(to_spark(sql, {})).collect()]
+    assert [r[0] for r in got] == [r[0] for r in reference]
+    assert [r[1:] for r in got] == [r[1:] for r in reference]

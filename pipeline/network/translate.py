@@ -331,6 +331,9 @@ def exact_round(value: exp.Expression, digits: int, *, ties: str) -> exp.Express
     lo = f"(((({xh} * {ph}) - {hi}) + ({xh} * {pl}) + ({xl} * {ph})) + ({xl} * {pl}))"
     # from 2^52 on, x * 10^n has no fraction bits left: x is already as rounded as a double can be
     text = _ROUND_TEMPLATE.format(x=x, hi=hi, lo=lo, p=p, tie=_TIES[ties].format(hi=hi))
+    # a negative value that rounds to zero is -0 (printf writes "-0"); Spark's ROUND, FLOOR and CEIL
+    # return decimals or integers, which have no negative zero, so the sign is put back
+    text = f"CASE WHEN {x} < 0 THEN -ABS({text}) ELSE {text} END"
     tree = sqlglot.parse_one(text, read="spark")
 
     def put(node: exp.Expression) -> exp.Expression:
