@@ -356,7 +356,7 @@ def csv_relation(path: str, header: list[str], profile: Profile) -> tuple[str, d
 
 def duckdb_reads(profile: Profile) -> bool:
     """Whether DuckDB can read this profile's CSV exports itself (see the module docstring)."""
-    return profile.encoding in ("utf-8", "latin-1") and len(profile.quote_char) == 1 and (
+    return profile.format == "csv" and profile.encoding in ("utf-8", "latin-1") and len(profile.quote_char) == 1 and (
         profile.quote_char != profile.delimiter
     )
 
