@@ -22,6 +22,7 @@ from pipeline.ingest.feeds.fhir import model_problem
 from pipeline.ingest.load import FileOutcome, ingest_file
 from pipeline.profile import load_profile
 from pipeline.store import open_store
+from tests.feed_outcomes import counts
 
 ROOT = Path(__file__).resolve().parent.parent
 FIXTURE = ROOT / "tests" / "fixtures" / "feeds" / "three_samples.ndjson"
@@ -51,16 +52,6 @@ def load(con: duckdb.DuckDBPyConnection, path: Path, run: str = "run-1") -> File
     outcome = ingest_file(con, path, PROFILE, run, KEY)
     assert outcome.balanced, outcome
     return outcome
-
-
-def counts(outcome: FileOutcome) -> tuple[int, int, int, int, int]:
-    return (
-        outcome.rows_in,
-        outcome.rows_loaded,
-        outcome.rows_quarantined,
-        outcome.rows_duplicate,
-        outcome.rows_superseded_in_file,
-    )
 
 
 def reasons(con: duckdb.DuckDBPyConnection) -> list[str]:
