@@ -192,22 +192,27 @@ def _rules_sql_text() -> str:
     return "\n".join(p.read_text(encoding="utf-8") for p in sorted(paths)).lower() + "\nsample_id"
 
 
-def evaluate_rules(con: duckdb.DuckDBPyConnection, catalogue: Catalogue, run_id: str) -> dict[str, int]:
-    """Replace flags and audit status of the samples in ``scope_samples``; return flag counts per rule."""
-    store_catalogue(con, catalogue)
-    run_sql(con, "rules/00_rule_input.sql", sql_names=rule_input_columns(con))
-    # The delta checks of three rules share one pass over each patient's results.
-    run_sql(con, "rules/05_delta_neighbours.sql", **catalogue.rule("wrong_blood_in_tube").parameters)
-    con.execute(read_sql("rules/10_flags_table.sql"))
-    con.execute("delete from flags where sample_id in (select sample_id from scope_samples)")
-    counts: dict[str, int] = {}
+@dataclass(frozen=True)
+class RuleStatement:
+    """What one rule runs: its SQL (one or more statements) and the values of its named parameters."""
+
+    rule: Rule
+    sql: str
+    params: dict[str, Any]
+
+
+def rule_statements(catalogue: Catalogue, run_id: str) -> list[RuleStatement]:
+    """Every rule's SQL in catalogue order, as the site's rules stage and the network run
+    (pipeline/network/stages.py) execute it: an analyser check's file as written; a record-level
+    rule's SELECT wrapped in the insert of its rows into ``flags``."""
+    statements = []
     for rule in catalogue.rules:
+        text = read_sql(f"rules/{rule.id}.sql")
         if rule.kind == "analyser_qc":
-            run_sql(con, f"rules/{rule.id}.sql", **rule.parameters)
-            counts[rule.id] = con.execute("select count(*) from analyser_qc where signal").fetchall()[0][0]
+            statements.append(RuleStatement(rule, text, dict(rule.parameters)))
             continue
-        select = read_sql(f"rules/{rule.id}.sql").strip().rstrip(";")
-        statement = (
+        select = text.strip().rstrip(";")
+        sql = (
             "insert into flags (sample_id, rule_id, kind, severity, message, evidence, run_id) "
             "select sample_id, $rule_id, $rule_kind, coalesce(severity, $default_severity), message, "
             f"evidence::varchar, $run_id from ({select})"
@@ -219,8 +224,27 @@ def evaluate_rules(con: duckdb.DuckDBPyConnection, catalogue: Catalogue, run_id:
             "default_severity": rule.severity,
             "run_id": run_id,
         }
-        used = con.extract_statements(statement)[0].named_parameters
-        con.execute(statement, {k: v for k, v in params.items() if k in used})
+        statements.append(RuleStatement(rule, sql, params))
+    return statements
+
+
+def evaluate_rules(con: duckdb.DuckDBPyConnection, catalogue: Catalogue, run_id: str) -> dict[str, int]:
+    """Replace flags and audit status of the samples in ``scope_samples``; return flag counts per rule."""
+    store_catalogue(con, catalogue)
+    run_sql(con, "rules/00_rule_input.sql", sql_names=rule_input_columns(con))
+    # The delta checks of three rules share one pass over each patient's results.
+    run_sql(con, "rules/05_delta_neighbours.sql", **catalogue.rule("wrong_blood_in_tube").parameters)
+    con.execute(read_sql("rules/10_flags_table.sql"))
+    con.execute("delete from flags where sample_id in (select sample_id from scope_samples)")
+    counts: dict[str, int] = {}
+    for item in rule_statements(catalogue, run_id):
+        for statement in con.extract_statements(item.sql):
+            used = statement.named_parameters
+            con.execute(statement.query, {k: v for k, v in item.params.items() if k in used})
+        rule = item.rule
+        if rule.kind == "analyser_qc":
+            counts[rule.id] = con.execute("select count(*) from analyser_qc where signal").fetchall()[0][0]
+            continue
         counts[rule.id] = con.execute(
             "select count(*) from flags where rule_id = ? and run_id = ?", [rule.id, run_id]
         ).fetchall()[0][0]

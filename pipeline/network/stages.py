@@ -3,8 +3,8 @@
 The site's stages (``pipeline/derive.py``, ``pipeline/rules.py``) execute their ``sql/`` files on the
 store; the network run executes the same files, in the same order, with the same parameters, on a
 lake loaded into DuckDB or Spark. This module lists them; ``pipeline/network/translate.py`` turns
-each into the target engine's SQL. The rule statement (the rule's SELECT wrapped in the insert into
-``flags``) is built as ``pipeline.rules.evaluate_rules`` builds it.
+each into the target engine's SQL. The rules' statements (a record-level rule's SELECT wrapped in the
+insert into ``flags``) come from ``pipeline.rules.rule_statements``, which the site's rules stage runs.
 
 Differences from a site run, and why:
   * every lake row is in scope (``scope_samples`` is every record, ``scope_settings.rebuild`` is
@@ -19,7 +19,7 @@ from __future__ import annotations
 from collections.abc import Callable
 from dataclasses import dataclass, field
 
-from pipeline.rules import Catalogue
+from pipeline.rules import Catalogue, rule_statements
 from pipeline.sql_files import read_sql
 
 # Parameters that are site settings: a column of the network records with the same name.
@@ -66,27 +66,22 @@ def column_lists(columns_of: Callable[[str], list[str]]) -> dict[str, str]:
 
 
 def _file_statements(relative_path: str, params: dict[str, object] | None = None) -> list[Statement]:
-    import duckdb
-
     text = read_sql(relative_path)
     if "{record_columns}" in text:  # one statement, split once its column lists are known
         return [Statement(f"sql/{relative_path}#1", text, dict(params or {}), column_lists=True)]
+    return _split(f"sql/{relative_path}", text, params)
+
+
+def _split(source: str, text: str, params: dict[str, object] | None) -> list[Statement]:
+    """The statements of ``text``, numbered after their source."""
+    import duckdb
+
     con = duckdb.connect()
     try:
         queries = [s.query for s in con.extract_statements(text)]
     finally:
         con.close()
-    return [Statement(f"sql/{relative_path}#{n}", q, dict(params or {})) for n, q in enumerate(queries, start=1)]
-
-
-def flag_statement(rule_id: str) -> str:
-    """The insert of one record-level rule's flags, as ``pipeline.rules.evaluate_rules`` runs it."""
-    select = read_sql(f"rules/{rule_id}.sql").strip().rstrip(";")
-    return (
-        "insert into flags (sample_id, rule_id, kind, severity, message, evidence, run_id) "
-        "select sample_id, $rule_id, $rule_kind, coalesce(severity, $default_severity), message, "
-        f"evidence::varchar, $run_id from ({select})"
-    )
+    return [Statement(f"{source}#{n}", q, dict(params or {})) for n, q in enumerate(queries, start=1)]
 
 
 def stage_statements(catalogue: Catalogue, run_id: str, period: str = "month") -> list[Statement]:
@@ -98,18 +93,8 @@ def stage_statements(catalogue: Catalogue, run_id: str, period: str = "month") -
         "rules/05_delta_neighbours.sql", dict(catalogue.rule("wrong_blood_in_tube").parameters)
     )
     statements += _file_statements("rules/10_flags_table.sql")
-    for rule in catalogue.rules:
-        if rule.kind == "analyser_qc":
-            statements += _file_statements(f"rules/{rule.id}.sql", dict(rule.parameters))
-            continue
-        params = {
-            **rule.parameters,
-            "rule_id": rule.id,
-            "rule_kind": rule.kind,
-            "default_severity": rule.severity,
-            "run_id": run_id,
-        }
-        statements.append(Statement(f"sql/rules/{rule.id}.sql", flag_statement(rule.id), params))
+    for item in rule_statements(catalogue, run_id):
+        statements += _split(f"sql/rules/{item.rule.id}.sql", item.sql, item.params)
     statements += _file_statements("rules/90_audit_status.sql", {"run_id": run_id})
     # The audit stage's aggregate layer, rebuilt whole (pipeline.audit: reset, then update). Its
     # settings fingerprint ($layer_sha256) only matters to a site's incremental runs.
