@@ -270,6 +270,7 @@ def build_audit(
     *,
     incremental: bool = False,
     threshold: int | None = None,
+    build_layer: bool = True,
 ) -> bool:
     """Rebuild every audit table in one transaction (the new tables replace the old at commit).
 
@@ -277,7 +278,9 @@ def build_audit(
     for ``scope_samples`` only, when it is current: same period setting and layer SQL, and
     every earlier analysed run folded in. Otherwise, and by default, the layer is rebuilt from
     every record. ``threshold`` replaces the site's small-cell threshold (the internal
-    audience, pipeline/audience.py). Returns True when the layer was updated incrementally.
+    audience, pipeline/audience.py). With ``build_layer`` false the layer tables are taken as they
+    are (the network run computes them on its engine and brings each site's back,
+    pipeline/network/publish.py). Returns True when the layer was updated incrementally.
     """
     missing = [t for t in _NEEDED if t not in _existing_tables(con)]
     if missing:
@@ -296,7 +299,7 @@ def build_audit(
         updated = incremental and _layer_current(con, sha256)
         # A second audience of the same run finds the layer holding this run already: its
         # facts are those the first build folded in, so there is nothing to recompute.
-        if not (updated and _layer_current(con, sha256, with_scope=True)):
+        if build_layer and not (updated and _layer_current(con, sha256, with_scope=True)):
             run_sql(con, _LAYER_SCOPE if updated else _LAYER_RESET)
             run_sql(con, _LAYER_UPDATE, period=config.audit.period, layer_sha256=sha256)
         for path in _WORK_FILES:
