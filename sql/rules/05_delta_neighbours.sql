@@ -9,8 +9,9 @@
 -- Stable analyte groups: haemoglobin; sodium and chloride (one group: they move together).
 -- Glucose is labile: it never suggests another patient's blood and only shows a dilution by a
 -- glucose infusion. Potassium (haemolysis, treatment) is too labile to be compared at all.
--- Grain of delta_values: one row per (sample in scope, analyte with a value and a result of
--- that analyte before or after it within $window_hours).
+-- Grain of delta_values: one row per (sample in scope with some analyte beyond its reference
+-- change value from a neighbour within $window_hours, analyte with a value and a result of that
+-- analyte before or after it within $window_hours).
 create or replace temp table delta_values as
 with patients as (
     select distinct r.patient_key
@@ -30,7 +31,7 @@ analytes as (
 -- One pass over each patient's samples in time order (a sort of the records, not of one row per
 -- analyte): the neighbours one and two samples away on each side. A neighbour without the
 -- analyte leaves that side empty for it.
-neighbours as (
+adjacent as (
     select
         r.sample_id,
         r.hb_g_dl as hb, r.na_mmol_l as na, r.cl_mmol_l as cl, r.glucose_mmol_l as glucose,
@@ -50,6 +51,25 @@ neighbours as (
     semi join patients as p on p.patient_key = r.patient_key
     where r.collected_at is not null
     window w as (partition by r.patient_key order by r.collected_at, r.sample_id)
+),
+-- Only a sample with some analyte beyond its reference change value from a neighbour within the
+-- window can show a pattern or a change (every limit below is that value plus a time allowance
+-- of zero or more, and the dilution test compares with the nearer neighbour's value alone), so
+-- only those samples are compared analyte by analyte: about one in three.
+neighbours as (
+    select * from adjacent
+    where (hours_since_prev <= $window_hours
+           and (abs(hb - hb_prev) > delta_check_limit(hb_prev, $hb_cva_pct, $hb_cvi_pct, 0.0, 0.0)
+                or abs(na - na_prev) > delta_check_limit(na_prev, $na_cva_pct, $na_cvi_pct, 0.0, 0.0)
+                or abs(cl - cl_prev) > delta_check_limit(cl_prev, $cl_cva_pct, $cl_cvi_pct, 0.0, 0.0)
+                or abs(glucose - glucose_prev)
+                   > delta_check_limit(glucose_prev, $glucose_cva_pct, $glucose_cvi_pct, 0.0, 0.0)))
+       or (hours_to_next <= $window_hours
+           and (abs(hb - hb_next) > delta_check_limit(hb_next, $hb_cva_pct, $hb_cvi_pct, 0.0, 0.0)
+                or abs(na - na_next) > delta_check_limit(na_next, $na_cva_pct, $na_cvi_pct, 0.0, 0.0)
+                or abs(cl - cl_next) > delta_check_limit(cl_next, $cl_cva_pct, $cl_cvi_pct, 0.0, 0.0)
+                or abs(glucose - glucose_next)
+                   > delta_check_limit(glucose_next, $glucose_cva_pct, $glucose_cvi_pct, 0.0, 0.0)))
 ),
 -- the samples judged: those in scope (a rebuild judges every one without the join)
 judged as (
