@@ -658,16 +658,19 @@ def publish_lake(config_path: Path, store: Path | None, lake: Path, site_id: str
 @click.option("--engine", type=click.Choice(["duckdb", "spark"]), default="duckdb", show_default=True)
 @click.option("--master", default="local[*]", show_default=True, help="Spark master URL (spark engine only).")
 @click.option(
-    "--thresholds",
+    "--settings",
     type=click.Path(dir_okay=False, path_type=Path),
-    help="A TOML file with the network's [thresholds] (as in a site configuration); default: the catalogue's.",
+    help="A TOML file with the network's [thresholds] and [audit] (as in a site configuration) and "
+    "[privacy] small_cell_threshold, the same for every site; default: the catalogue's and the defaults.",
 )
 @handle_errors
-def network(lake: Path, output: Path | None, engine: str, master: str, thresholds: Path | None) -> None:
-    """Run the derive and rules stages over every site of a network lake.
+def network(lake: Path, output: Path | None, engine: str, master: str, settings: Path | None) -> None:
+    """Run the derive, rules and audit stages over every site of a network lake.
 
-    Writes derived, flags, audit_status and analyser_qc (each with a site column) as Parquet
-    partitioned by site, and network_run.json. --engine duckdb is the reference; --engine spark
+    Writes derived, flags, audit_status, analyser_qc and the audit's unit x period counts (each
+    with a site column) as Parquet partitioned by site; under published/, each site's audit
+    tables and report as the site publishes them, every site's tables with a site column, and
+    network_report.html; and network_run.json. --engine duckdb is the reference; --engine spark
     runs the same SQL files translated for Spark SQL (pip install -e '.[spark]', Java 17).
 
     \b
@@ -678,11 +681,11 @@ def network(lake: Path, output: Path | None, engine: str, master: str, threshold
     from pipeline.network.run import run_network
 
     output = output or lake / "network-output"
-    result = run_network(lake, output, engine=engine, master=master, thresholds=thresholds)
+    result = run_network(lake, output, engine=engine, master=master, settings=settings)
     click.echo(f"{engine}: {len(result.sites)} sites; " + ", ".join(f"{t} {n}" for t, n in result.rows.items()))
     if result.untranslated:
         click.echo(f"not run on {engine} (no translation): {', '.join(result.untranslated)}", err=True)
-    click.echo(f"outputs in {output}")
+    click.echo(f"outputs in {output}; network report {output / 'published' / 'network_report.html'}")
 
 
 if __name__ == "__main__":

@@ -4,6 +4,7 @@ site exactly what its own nightly stages give it."""
 
 from __future__ import annotations
 
+from collections.abc import Iterator
 from pathlib import Path
 
 import duckdb
@@ -11,15 +12,17 @@ import polars as pl
 import pytest
 import sqlglot
 
+from pipeline.audit import PUBLISHED_TABLES, build_audit
 from pipeline.config import SiteConfig
 from pipeline.derive import derive
+from pipeline.errors import ConfigError
 from pipeline.network import translate
-from pipeline.network.compare import differences
+from pipeline.network.compare import differences, published_differences
 from pipeline.network.demo_lake import demo_key, demo_unit_targets, store_demo_site
 from pipeline.network.engines import DuckDBEngine, read_lake
 from pipeline.network.lake import SiteSettings, publish_lake, read_manifests
 from pipeline.network.macros import expand_macros, load_macros
-from pipeline.network.run import run_network
+from pipeline.network.run import load_settings, run_network
 from pipeline.network.stages import STAGE_OUTPUTS, stage_statements
 from pipeline.pseudonym import pseudonym
 from pipeline.rules import catalogue_frame, evaluate_rules, load_catalogue
@@ -140,29 +143,103 @@ def build_site_lake(lake: Path, rows: int = 900, seed: int = 31) -> tuple[duckdb
     return con, key
 
 
-def test_network_run_gives_the_site_what_its_own_stages_give(tmp_path: Path) -> None:
-    # "identical to what each site sees": the site's nightly stages (pipeline.derive, pipeline.rules)
-    # on its store against the network run on DuckDB over the published lake
-    lake = tmp_path / "lake"
+@pytest.fixture(scope="module")
+def site_and_network(
+    tmp_path_factory: pytest.TempPathFactory,
+) -> Iterator[tuple[duckdb.DuckDBPyConnection, bytes, Path]]:
+    """One site's own nightly stages and audit on its store, and the network run on DuckDB over the
+    lake the site published from that store."""
+    root = tmp_path_factory.mktemp("one-site")
+    lake = root / "lake"
     con, key = build_site_lake(lake)
     config = SiteConfig(
-        None, "Invented one site", Path("."), Path("."), None, (), altitude_m=120.0, unit_types=dict(UNIT_TYPES)
+        None,
+        "Invented one site",
+        Path("."),
+        root / "site-output",
+        None,
+        (),
+        altitude_m=120.0,
+        unit_types=dict(UNIT_TYPES),
     )
     catalogue = load_catalogue()
     run_sql(con, "derive/00_scope.sql", rebuild=True, run_id="site-run")
     derive(con, catalogue, config)
     evaluate_rules(con, catalogue, "site-run")
-    run_sql(con, "audit/01_audit_layer_reset.sql")  # as pipeline.audit rebuilds the layer
-    run_sql(con, "audit/02_audit_layer_update.sql", period="month", layer_sha256="site")
-    run_network(lake, tmp_path / "out", engine="duckdb")
+    build_audit(con, config, catalogue, "site-run")  # rebuilds the aggregate layer, then the tables
+    run_network(lake, root / "out", engine="duckdb")
+    yield con, key, root / "out"
+    con.close()
+
+
+def test_network_run_gives_the_site_what_its_own_stages_give(
+    site_and_network: tuple[duckdb.DuckDBPyConnection, bytes, Path],
+) -> None:
+    # "identical to what each site sees": the site's nightly stages (pipeline.derive, pipeline.rules,
+    # pipeline.audit's layer) on its store against the network run on DuckDB over the published lake
+    con, key, out = site_and_network
     for table in STAGE_OUTPUTS:
-        network = pl.read_parquet(tmp_path / "out" / table / "**" / "*.parquet", hive_partitioning=True)
+        network = pl.read_parquet(out / table / "**" / "*.parquet", hive_partitioning=True)
         network = network.with_columns(pl.col("site").cast(pl.String))
         site = con.sql(f"select * from {table}").pl()
         site = as_published(site, key).with_columns(pl.lit(SITE).alias("site")).select(network.columns)
         assert site.height > 0, table
         assert differences(table, site, network) == [], table
-    con.close()
+
+
+# The file reconciliation is about the site's exports, which the lake does not hold (empty there).
+SITE_ONLY = {"audit_run_reconciliation"}
+
+
+@pytest.mark.parametrize("table", [t for t in PUBLISHED_TABLES if t not in SITE_ONLY])
+def test_network_publishes_what_the_site_publishes(
+    site_and_network: tuple[duckdb.DuckDBPyConnection, bytes, Path], table: str
+) -> None:
+    # oracle: the site's own audit stage (pipeline.audit.build_audit on its store, the layer built
+    # there from its records); the network builds the same tables from the layer its engine made
+    con, _, out = site_and_network
+    site = con.sql(f"select * from {table}").pl()
+    published = pl.read_parquet(out / "published" / "sites" / SITE / "tables" / f"{table}.parquet")
+    assert published_differences(table, site, published) == []
+    combined = pl.read_parquet(out / "published" / "tables" / f"{table}.parquet")
+    assert combined.columns[0] == "site" and set(combined["site"]) <= {SITE}
+    assert published_differences(table, site, combined.drop("site")) == []
+    if table in ("audit_rates", "audit_volume", "audit_control_chart", "audit_funnel"):
+        assert site.height > 0
+
+
+def test_network_outputs_carry_the_caution_and_no_reconciliation_rows(
+    site_and_network: tuple[duckdb.DuckDBPyConnection, bytes, Path],
+) -> None:
+    _, _, out = site_and_network
+    published = out / "published"
+    network_report = (published / "network_report.html").read_text(encoding="utf-8")
+    site_report = (published / "sites" / SITE / "audit_report.html").read_text(encoding="utf-8")
+    for html in (network_report, site_report):
+        assert html.count("an audit aid, not a diagnostic device") >= 2  # top and foot
+        assert "thresholds follow local policy and licensed clinical judgement" in html
+    assert f'href="sites/{SITE}/audit_report.html"' in network_report
+    assert 'id="answers-oxygenation"' in network_report and 'id="flag-rates"' in network_report
+    assert pl.read_parquet(published / "sites" / SITE / "tables" / "audit_run_reconciliation.parquet").height == 0
+    # the worklist is row level: restricted, never beside the published tables
+    assert (published / "sites" / SITE / "restricted" / "review_worklist.parquet").exists()
+    assert not list(published.glob("**/tables/review_worklist*"))
+
+
+def test_network_settings_file(tmp_path: Path) -> None:
+    path = tmp_path / "network.toml"
+    path.write_text(
+        "[thresholds.decimal_slip]\n[audit]\nperiod = 'week'\n[privacy]\nsmall_cell_threshold = 6\n",
+        encoding="utf-8",
+    )
+    settings = load_settings(path)
+    assert (settings.audit.period, settings.small_cell_threshold) == ("week", 6)
+    path.write_text("[privacy]\nkey_file = 'k'\n", encoding="utf-8")
+    with pytest.raises(ConfigError, match="small_cell_threshold"):
+        load_settings(path)
+    path.write_text("[site]\nname = 'x'\n", encoding="utf-8")
+    with pytest.raises(ConfigError, match="unknown sections"):
+        load_settings(path)
 
 
 def as_published(frame: pl.DataFrame, key: bytes) -> pl.DataFrame:

@@ -81,3 +81,35 @@ def _equal(column: str, dtype: pl.DataType, a: Any, b: Any) -> bool:
     if column == "evidence" and a is not None and b is not None:
         return same_json(json.loads(a), json.loads(b))
     return a == b
+
+
+def published_differences(table: str, reference: pl.DataFrame, other: pl.DataFrame, limit: int = 20) -> list[str]:
+    """What differs between two engines' (or a site's and the network's) published ``table``: the rows
+    as a whole, in no particular order (published tables have no single key), numbers to ``TOLERANCE``.
+    Rows are put in order by every column (floats last, where the last bits may differ) and compared."""
+    if set(reference.columns) != set(other.columns):
+        return [f"{table}: columns differ: {sorted(set(reference.columns) ^ set(other.columns))}"]
+    if reference.height != other.height:
+        return [f"{table}: {reference.height} rows against {other.height}"]
+    floats = [c for c in reference.columns if reference.schema[c].is_float()]
+    order = [c for c in reference.columns if c not in floats] + floats
+    a = reference.sort(order, nulls_last=True)
+    b = other.select(reference.columns).cast(dict(reference.schema), strict=False).sort(order, nulls_last=True)
+    problems: list[str] = []
+    for column in reference.columns:
+        left, right = a[column], b[column]
+        if column in floats:
+            scale = pl.max_horizontal(pl.lit(1.0), pl.col("a").abs(), pl.col("b").abs())
+            same = pl.DataFrame({"a": left, "b": right}).select(
+                ((pl.col("a") - pl.col("b")).abs() <= TOLERANCE * scale)
+                | (pl.col("a").is_null() & pl.col("b").is_null())
+                | (pl.col("a").is_nan() & pl.col("b").is_nan())
+            )
+            differing = (~same.to_series().fill_null(False)).arg_true().to_list()
+        else:
+            differing = left.ne_missing(right).arg_true().to_list()
+        for row in differing[:limit]:
+            problems.append(f"{table} row {row} {column}: {left[row]!r} against {right[row]!r}")
+        if len(problems) >= limit:
+            break
+    return problems[:limit]

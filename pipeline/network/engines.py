@@ -172,6 +172,10 @@ class DuckDBEngine:
     def output(self, table: str) -> pl.DataFrame:
         return self.con.sql(output_sql(table, self.columns(table))).pl()
 
+    def empty(self, table: str) -> pl.DataFrame:
+        """The columns of an output as written (no site: it is the partition), no rows."""
+        return self.con.sql(f"{output_sql(table, self.columns(table))} limit 0").pl().drop("site")
+
     def write(self, table: str, folder: Path) -> None:
         folder.mkdir(parents=True, exist_ok=True)
         self.con.execute(
@@ -325,6 +329,13 @@ class SparkEngine:
         if table not in self.views:
             raise KeyError(f"the Spark run made no {table} (untranslated: {self.untranslated})")
         return pl.from_arrow(self.spark.sql(output_sql(table, self.columns(table))).toArrow())
+
+    def empty(self, table: str) -> pl.DataFrame:
+        """The columns of an output as written (no site: it is the partition), no rows."""
+        if table not in self.views:
+            raise KeyError(f"the Spark run made no {table} (untranslated: {self.untranslated})")
+        frame = self.spark.sql(output_sql(table, self.columns(table))).limit(0)
+        return pl.from_arrow(frame.toArrow()).drop("site")
 
     def write(self, table: str, folder: Path) -> None:
         if table not in self.views:
