@@ -38,6 +38,7 @@ LAYER_TABLES = (
     "audit_unit_period_patients",
     "audit_unit_period_episodes",
     "audit_unit_period_age_bands",
+    "audit_episode",
     "audit_layer_runs",
     "audit_layer_state",
 )

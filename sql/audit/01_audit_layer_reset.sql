@@ -8,6 +8,7 @@ drop table if exists audit_unit_period_counts;
 drop table if exists audit_unit_period_flags;
 drop table if exists audit_unit_period_patients;
 drop table if exists audit_unit_period_episodes;
+drop table if exists audit_episode;
 drop table if exists audit_unit_period_age_bands;
 drop table if exists audit_layer_runs;
 drop table if exists audit_layer_state;

@@ -25,12 +25,13 @@
 --   audit_unit_period_age_bands per (unit, period, adult age band): the oxygenation and
 --                               prescribing families that are also published by age band
 --                               (audit_age_band_rates), so units are compared band by band.
---   audit_unit_period_episodes  per (unit, period): episodes (an encounter, or a patient-day
---                               where no encounter is exported: derived.episode_key) counted
---                               once, in the unit and period of their first included adult
---                               arterial sample with a target that applies; rebuilt from
---                               audit_sample_fact every run (an episode's later samples
---                               change its counts, and a grouping of the facts is cheap).
+--   audit_episode               one row per episode (an encounter, or a patient-day where no
+--                               encounter is exported: derived.episode_key) with an included
+--                               adult arterial sample with a target that applies: the unit
+--                               and period of its first such sample and its outcomes. An
+--                               episode is recomputed from all its facts when one of its
+--                               samples is in scope (a later sample changes what it counts).
+--   audit_unit_period_episodes  per (unit, period): the episodes of audit_episode placed there.
 -- Prescribing families (rx_*) count included adult arterial samples with a target that
 -- applies (oxygen_assessed) and supplemental oxygen documented (on_oxygen), by the
 -- prescription linked to them in the derive stage (derived.prescription_status); the
@@ -214,6 +215,15 @@ changed as (
 )
 select distinct unit, period_start from changed;
 
+-- The episodes with a sample in scope, under the key the sample has now or had before (on an
+-- empty layer: every episode).
+create or replace temp table audit_episode_touched as
+select episode_key from audit_fact_now where episode_key is not null
+union
+select episode_key from audit_sample_fact
+semi join audit_layer_scope using (sample_id)
+where episode_key is not null;
+
 delete from audit_sample_fact where sample_id in (select sample_id from audit_layer_scope);
 insert into audit_sample_fact select * from audit_fact_now;
 delete from audit_sample_flag where sample_id in (select sample_id from audit_layer_scope);
@@ -314,9 +324,9 @@ delete from audit_unit_period_age_bands as c
 where exists (select 1 from audit_touched as t where t.unit = c.unit and t.period_start = c.period_start);
 insert into audit_unit_period_age_bands select * from audit_age_bands_fresh;
 
--- Episodes, from every fact (see the header): each counted in the unit and period of its first
--- assessed sample (ties: the lowest sample_id), with its first and any-sample outcomes.
-create or replace table audit_unit_period_episodes as
+-- Episodes with a sample in scope, from all their facts: each placed in the unit and period of
+-- its first assessed sample (ties: the lowest sample_id), with its first and any-sample outcomes.
+create or replace temp table audit_episode_now as
 with assessed as (
     select
         episode_key,
@@ -329,40 +339,63 @@ with assessed as (
         above_target_on_oxygen,
         out_of_target_on_oxygen
     from audit_sample_fact
-    where oxygen_assessed and episode_key is not null
-),
-episodes as (
-    select
-        episode_key,
-        arg_min(unit, (collected_at, sample_id)) as unit,
-        arg_min(period_start, (collected_at, sample_id)) as period_start,
-        arg_min(hypoxaemic, (collected_at, sample_id)) as first_hypoxaemic,
-        bool_or(hypoxaemic) as any_hypoxaemic,
-        bool_or(on_oxygen) as any_on_oxygen,
-        bool_or(above_target_on_oxygen) as any_above_target,
-        bool_or(out_of_target_on_oxygen) as any_out_of_target
-    from assessed
-    group by episode_key
+    semi join audit_episode_touched using (episode_key)
+    where oxygen_assessed
 )
 select
-    unit,
-    period_start,
+    episode_key,
+    arg_min(unit, (collected_at, sample_id)) as unit,
+    arg_min(period_start, (collected_at, sample_id)) as period_start,
+    arg_min(hypoxaemic, (collected_at, sample_id)) as first_hypoxaemic,
+    bool_or(hypoxaemic) as any_hypoxaemic,
+    bool_or(on_oxygen) as any_on_oxygen,
+    bool_or(above_target_on_oxygen) as any_above_target,
+    bool_or(out_of_target_on_oxygen) as any_out_of_target
+from assessed
+group by episode_key;
+
+create table if not exists audit_episode as select * from audit_episode_now with no data;
+
+-- The (unit, period) pairs of those episodes, where they were placed before and are now.
+create or replace temp table audit_episode_pairs as
+select unit, period_start from audit_episode
+semi join audit_episode_touched using (episode_key)
+union
+select unit, period_start from audit_episode_now;
+
+delete from audit_episode where episode_key in (select episode_key from audit_episode_touched);
+insert into audit_episode select * from audit_episode_now;
+
+create or replace temp view audit_episodes_fresh as
+select
+    e.unit,
+    e.period_start,
     count(*) as episodes,
-    count(*) filter (where first_hypoxaemic) as episodes_first_hypoxaemic,
-    count(*) filter (where any_hypoxaemic) as episodes_any_hypoxaemic,
-    count(*) filter (where any_on_oxygen) as episodes_on_oxygen,
-    count(*) filter (where any_on_oxygen and any_above_target) as episodes_any_above_target,
-    count(*) filter (where any_on_oxygen and any_out_of_target) as episodes_any_out_of_target
-from episodes
-group by unit, period_start;
+    count(*) filter (where e.first_hypoxaemic) as episodes_first_hypoxaemic,
+    count(*) filter (where e.any_hypoxaemic) as episodes_any_hypoxaemic,
+    count(*) filter (where e.any_on_oxygen) as episodes_on_oxygen,
+    count(*) filter (where e.any_on_oxygen and e.any_above_target) as episodes_any_above_target,
+    count(*) filter (where e.any_on_oxygen and e.any_out_of_target) as episodes_any_out_of_target
+from audit_episode as e
+semi join audit_episode_pairs as t on t.unit = e.unit and t.period_start = e.period_start
+group by e.unit, e.period_start;
+
+create table if not exists audit_unit_period_episodes as select * from audit_episodes_fresh with no data;
+delete from audit_unit_period_episodes as c
+where exists (select 1 from audit_episode_pairs as t where t.unit = c.unit and t.period_start = c.period_start);
+insert into audit_unit_period_episodes select * from audit_episodes_fresh;
 
 drop view audit_counts_fresh;
 drop view audit_flags_fresh;
 drop view audit_patients_fresh;
 drop view audit_age_bands_fresh;
+drop view audit_episodes_fresh;
 drop table audit_fact_now;
 drop table audit_flag_now;
 drop table audit_touched;
+drop table audit_episode_touched;
+drop table audit_episode_now;
+drop table audit_episode_pairs;
 drop table audit_layer_scope;
 
 -- Which runs' analyses the layer holds, and the settings it was built with.
