@@ -183,6 +183,10 @@ where f.kind in ('data_quality', 'documentation');
 create table if not exists audit_sample_fact as select * from audit_fact_now with no data;
 create table if not exists audit_sample_flag as select * from audit_flag_now with no data;
 
+-- The facts of the samples in scope as the layer holds them (one scan of the layer's facts).
+create or replace temp table audit_fact_before as
+select * from audit_sample_fact semi join audit_layer_scope using (sample_id);
+
 -- The (unit, period) pairs whose facts changed: the pair a changed fact is in now and the
 -- pair its previous version was in. An empty layer (a reset) held nothing before: every pair
 -- of the facts now, without comparing each fact with nothing.
@@ -191,7 +195,7 @@ with layer as (
     select exists (select 1 from audit_sample_fact) as held
 ),
 fact_before as (
-    select * from audit_sample_fact semi join audit_layer_scope using (sample_id)
+    select * from audit_fact_before
 ),
 flag_before as (
     select * from audit_sample_flag semi join audit_layer_scope using (sample_id)
@@ -220,9 +224,7 @@ select distinct unit, period_start from changed;
 create or replace temp table audit_episode_touched as
 select episode_key from audit_fact_now where episode_key is not null
 union
-select episode_key from audit_sample_fact
-semi join audit_layer_scope using (sample_id)
-where episode_key is not null;
+select episode_key from audit_fact_before where episode_key is not null;
 
 delete from audit_sample_fact where sample_id in (select sample_id from audit_layer_scope);
 insert into audit_sample_fact select * from audit_fact_now;
@@ -393,6 +395,7 @@ drop view audit_episodes_fresh;
 drop table audit_fact_now;
 drop table audit_flag_now;
 drop table audit_touched;
+drop table audit_fact_before;
 drop table audit_episode_touched;
 drop table audit_episode_now;
 drop table audit_episode_pairs;
