@@ -174,8 +174,6 @@ def publish_site(
             "values (?, 'network', ?, ?, 'succeeded', ?, ?)",
             [run["run_id"], run["started_at"], run["finished_at"], __version__, run["summary"]],
         )
-        if folder.exists():
-            shutil.rmtree(folder)
         build_audit(con, config, catalogue, run["run_id"], build_layer=False)
         write_outputs(con, config, run["run_id"], log, audience=publication(config))
         tables = {name: con.sql(f"select * from {name}").pl() for name in PUBLISHED_TABLES}
@@ -318,6 +316,8 @@ def publish_network(
 ) -> list[SitePublication]:
     """Every site's publication, the network's tables with a site column, and the network report."""
     folder = output / PUBLISHED_DIR
+    if folder.exists():  # the previous run's, sites that have left the lake included
+        shutil.rmtree(folder)
     publications = [publish_site(m["site"], m, lake, output, empty, catalogue, network, run, log) for m in manifests]
     write_network_tables(publications, network, run["run_id"], folder)
     html = render_network_report(publications, network, run, folder)
