@@ -191,7 +191,9 @@ def spark_session(
     master: str = "local[*]",
     *,
     app: str = "abg-audit network",
-    memory: str = "1g",
+    # local mode: the driver is all of Spark; with 1g a broadcast join of the 200 k-row demo lake ran out
+    # of memory (Java takes the heap as it needs it, up to this)
+    memory: str = "4g",
     shuffle_partitions: int = 4,
     extra: dict[str, str] | None = None,
 ) -> Any:
