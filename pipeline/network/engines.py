@@ -124,7 +124,8 @@ class DuckDBEngine:
                 f"select *, '{site}' as site from {read.format(sorted(paths))}"
                 for site, paths in sorted(per_site.items())
             ]
-            self.con.execute(f"create or replace temp table {table}_lake as {' union all by name '.join(parts)}")
+            # a view: the lake is read once, into the qualified table below, not held twice
+            self.con.execute(f"create or replace temp view {table}_lake as {' union all by name '.join(parts)}")
         self._frame(
             "network_sites",
             pl.DataFrame(
