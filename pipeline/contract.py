@@ -48,6 +48,7 @@ its configuration's ``[contract]`` table (``settings_with``).
 from __future__ import annotations
 
 import os
+import sys
 import time
 import tomllib
 import warnings
@@ -409,9 +410,27 @@ def _import_gx() -> tuple[Any, Any, Any]:
         # great-expectations imports pyspark when the [spark] extra is installed, and pyspark
         # warns about the pandas version on import: nothing the contract uses.
         warnings.filterwarnings("ignore", message=r"PySpark does not yet fully support pandas", category=FutureWarning)
-        import great_expectations as gx
-        import great_expectations.expectations as gxe
-        from great_expectations.data_context.types.base import ProgressBarsConfig
+        # pyspark.sql.connect, which great-expectations tries to import, ends the process with
+        # exit status 0 when __main__ has neither __spec__ nor __file__ and the interpreter is
+        # not interactive (it takes that for its own doctest run): `python -c ...`, pytest-xdist
+        # workers. Looking interactive during the import makes it raise ImportError instead,
+        # which great-expectations expects when Spark Connect's dependencies are missing.
+        main = sys.modules.get("__main__")
+        looks_like_doctest = (
+            main is not None
+            and getattr(main, "__spec__", None) is None
+            and not hasattr(main, "__file__")
+            and not hasattr(sys, "ps1")
+        )
+        if looks_like_doctest:
+            sys.ps1 = ">>> "
+        try:
+            import great_expectations as gx
+            import great_expectations.expectations as gxe
+            from great_expectations.data_context.types.base import ProgressBarsConfig
+        finally:
+            if looks_like_doctest:
+                del sys.ps1
     return gx, gxe, ProgressBarsConfig
 
 

@@ -110,3 +110,16 @@ def test_printf_and_round_on_spark_as_duckdb(spark: Any) -> None:
     got = [tuple(r) for r in spark.sql(to_spark(sql, {})).collect()]
     assert [r[0] for r in got] == [r[0] for r in reference]
     assert [r[1:] for r in got] == [r[1:] for r in reference]
+
+
+def test_contract_imports_great_expectations_with_pyspark_installed_under_python_c() -> None:
+    # With the [spark] extra installed, great-expectations' import reaches pyspark.sql.connect,
+    # which exits the process with status 0 when __main__ has no __file__ (as under `python -c`
+    # and pytest-xdist workers) and Spark Connect's dependencies are missing (pyspark 4.x,
+    # pyspark/sql/connect/utils.py check_dependencies). The contract's import must survive it.
+    import subprocess
+    import sys
+
+    code = "from pipeline.contract import _import_gx; _import_gx(); print('contract ready')"
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=False)
+    assert done.returncode == 0 and "contract ready" in done.stdout, done.stderr[-2000:]

@@ -274,3 +274,17 @@ def test_install_macros_is_what_the_network_duckdb_engine_uses() -> None:
     install_macros(reference)
     query = "select function_name from duckdb_functions() where function_type = 'macro' and not internal order by 1"
     assert engine.con.sql(query).fetchall() == reference.sql(query).fetchall()
+
+
+def test_network_duckdb_engine_spills_into_the_run_work_folder(tmp_path: Path) -> None:
+    # An in-memory DuckDB spills to ./.tmp unless told otherwise (DuckDB's documented default
+    # temp_directory); the network run's rows are pseudonymised but still belong in its own
+    # owner-only work folder, which the run removes.
+    from pipeline.network.run import make_engine
+
+    engine = make_engine("duckdb", master="local[*]", work=tmp_path)
+    try:
+        setting = engine.con.execute("select current_setting('temp_directory')").fetchone()[0]
+    finally:
+        engine.close()
+    assert Path(setting) == tmp_path / "duckdb-spill"

@@ -105,7 +105,7 @@ def output_sql(table: str, columns: list[str]) -> str:
 class DuckDBEngine:
     name = "duckdb"
 
-    def __init__(self, memory_limit: str = "2GB", threads: int | None = None) -> None:
+    def __init__(self, memory_limit: str = "2GB", threads: int | None = None, spill: Path | None = None) -> None:
         from pipeline.sql_files import install_macros
 
         self.con = duckdb.connect()
@@ -113,6 +113,10 @@ class DuckDBEngine:
         self.con.execute("set autoinstall_known_extensions = false")
         self.con.execute("set autoload_known_extensions = false")
         self.con.execute(f"set memory_limit = '{memory_limit}'")
+        if spill is not None:
+            # An in-memory database spills to ./.tmp by default; the run's own (owner-only)
+            # work folder keeps pseudonymised rows out of the operator's working directory.
+            self.con.execute("set temp_directory = ?", [str(spill)])
         if threads:
             self.con.execute(f"set threads = {int(threads)}")
         install_macros(self.con)

@@ -70,7 +70,7 @@ def load_settings(path: Path | None) -> NetworkSettings:
 
 def make_engine(engine: str, *, master: str, work: Path, spark_conf: dict[str, str] | None = None) -> Any:
     if engine == "duckdb":
-        return DuckDBEngine()
+        return DuckDBEngine(spill=work / "duckdb-spill")
     if engine == "spark":
         try:
             import pyspark  # noqa: F401 - only to name the missing extra
