@@ -117,9 +117,12 @@ def test_contract_imports_great_expectations_with_pyspark_installed_under_python
     # which exits the process with status 0 when __main__ has no __file__ (as under `python -c`
     # and pytest-xdist workers) and Spark Connect's dependencies are missing (pyspark 4.x,
     # pyspark/sql/connect/utils.py check_dependencies). The contract's import must survive it.
+    import importlib.util
     import subprocess
     import sys
 
+    # without pyspark the import cannot reach the exit this test is about: fail, never pass vacuously
+    assert importlib.util.find_spec("pyspark") is not None, "the Spark step installs the [spark] extra"
     code = "from pipeline.contract import _import_gx; _import_gx(); print('contract ready')"
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=False)
     assert done.returncode == 0 and "contract ready" in done.stdout, done.stderr[-2000:]

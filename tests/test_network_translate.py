@@ -277,9 +277,9 @@ def test_install_macros_is_what_the_network_duckdb_engine_uses() -> None:
 
 
 def test_network_duckdb_engine_spills_into_the_run_work_folder(tmp_path: Path) -> None:
-    # An in-memory DuckDB spills to ./.tmp unless told otherwise (DuckDB's documented default
-    # temp_directory); the network run's rows are pseudonymised but still belong in its own
-    # owner-only work folder, which the run removes.
+    # An in-memory DuckDB spills to ./.tmp unless told otherwise (observed with DuckDB 2.0.1:
+    # current_setting('temp_directory') of a fresh in-memory connection); the network run's rows
+    # are pseudonymised but still belong in its own owner-only work folder, which the run removes.
     from pipeline.network.run import make_engine
 
     engine = make_engine("duckdb", master="local[*]", work=tmp_path)
