@@ -85,6 +85,22 @@ def domain_key(key: bytes, domain: str | None) -> bytes:
     return hmac.new(key, f"abg-audit pseudonym domain {domain}".encode(), hashlib.sha256).digest()
 
 
+# SHA-256's block size in bytes: an HMAC key is padded (or first hashed) to it (RFC 2104).
+_SHA256_BLOCK = 64
+
+
+def hmac_pads(key: bytes, domain: str | None = None) -> tuple[bytes, bytes]:
+    """The inner and outer padded keys of HMAC-SHA256 for one domain (RFC 2104, section 2):
+    the parameters of the SQL macro ``keyed_pseudonym`` (``sql/macros/50_pseudonym.sql``),
+    which computes ``pseudonym`` for a whole file's identifiers in DuckDB. As secret as the
+    key: pass them as query parameters, never into SQL text or a log."""
+    padded = domain_key(key, domain)
+    if len(padded) > _SHA256_BLOCK:
+        padded = hashlib.sha256(padded).digest()
+    padded = padded.ljust(_SHA256_BLOCK, b"\0")
+    return bytes(b ^ 0x36 for b in padded), bytes(b ^ 0x5C for b in padded)
+
+
 def pseudonym(key: bytes, identifier: str, domain: str | None = None) -> str:
     return _pseudonym(hmac.new(domain_key(key, domain), digestmod=hashlib.sha256), identifier)
 

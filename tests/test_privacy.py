@@ -342,3 +342,43 @@ def test_site_that_keeps_no_identifier_stores_no_encounter_operator_or_prescript
     assert CANARY not in stream.getvalue()
     assert leaks_in_files(root, config.store_path) == []
     assert leaks_in_store(config.store_path) == {("quarantine", "original_text")}
+
+
+# Identifiers with the edges a bulk hash could get wrong: white space Python's str.strip() removes
+# (including U+001C..U+001F, which are not Unicode White_Space), non-ASCII text, inner spaces, one
+# character, an identifier that is only white space.
+_IDENTIFIER_EDGES = [
+    "MRN0001", " MRN0001 ", "\tMRN0001\n", "\x1cMRN0001\x1f", "\u3000MRN\u00a00001\u2029", "Zoë-Ångström",
+    "患者-42", "a", "x" * 300, " \x1d ", "MRN 0001", "\u200bMRN0001",
+]
+
+
+@pytest.mark.parametrize(
+    "key",
+    [b"0123456789abcdef0123456789abcdef", b"k" * 64, ("long-key-" * 20).encode()],
+    ids=["32-byte key", "block-sized key", "key longer than a block"],
+)
+def test_bulk_pseudonyms_in_sql_equal_python_hmac(key):
+    """The SQL macro that pseudonymises a file's identifiers in bulk gives, for every domain,
+    exactly the HMAC-SHA256 that Python's standard library gives (oracle: the hmac module,
+    RFC 2104), including keys longer than SHA-256's block, which HMAC hashes first."""
+    import hashlib
+    import hmac
+
+    from pipeline.pseudonym import PSEUDONYM_CHARS, domain_key, hmac_pads
+    from pipeline.schema import PSEUDONYMISED
+    from pipeline.sql_files import install_macros
+
+    con = duckdb.connect()
+    install_macros(con)
+    for _column, (_output, domain) in PSEUDONYMISED.items():
+        inner, outer = hmac_pads(key, domain)
+        got = [
+            con.execute("select keyed_pseudonym(?, ?, ?, ?)", [ident, inner, outer, PSEUDONYM_CHARS]).fetchall()[0][0]
+            for ident in _IDENTIFIER_EDGES
+        ]
+        expected = [
+            hmac.new(domain_key(key, domain), ident.strip().encode("utf-8"), hashlib.sha256).hexdigest()[:PSEUDONYM_CHARS]
+            for ident in _IDENTIFIER_EDGES
+        ]
+        assert got == expected, domain

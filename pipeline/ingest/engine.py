@@ -53,6 +53,7 @@ WHITE_SPACE = (
     + "\u2028\u2029\u202f\u205f\u3000"
 )
 _WS_CLASS = "[" + "".join(f"\\x{{{ord(c):x}}}" for c in WHITE_SPACE) + "]"
+_NOT_WS_CLASS = "[^" + _WS_CLASS[1:]
 # Local times are converted with offsets known for these years; a time outside them is
 # left to the Python parser (such a date is a fault anyway, and the contract reports it).
 _TZ_FIRST_YEAR = 1970
@@ -323,11 +324,10 @@ def parse_relation(
     nonblank = {plan.unit_sources[c]: cell.nonblank for c, cell in units.items()}
     bits = [f"(case when {nonblank[s]} then {1 << i} else 0 end)" for i, s in enumerate(unit_sources)]
     out.append(f"({' + '.join(bits) or '0'})::bigint as __nonblank")
-    first = refs[headers[0]]
-    blank_cells = " and ".join(
-        f"({refs[h]} is null or regexp_full_match(({refs[h]})::varchar, '{_WS_CLASS}*'))" for h in headers
-    )
-    where = f"where not (({first} is null or regexp_full_match(({first})::varchar, '{_WS_CLASS}*')) and {blank_cells})"
+    # A record has some cell with a character that is not white space. As a chain of ORs
+    # DuckDB stops at the first such cell, usually the first column; the same test written
+    # as "not (every cell blank)" tested every cell of every row (1.6 s of 6.8 s at 1 M rows).
+    where = "where " + " or ".join(f"regexp_matches(({refs[h]})::varchar, '{_NOT_WS_CLASS}')" for h in headers)
     source = relation
     if inner:
         source = f"(select *, {', '.join(offsets)} from (select *, {', '.join(inner)} from {relation}))"

@@ -41,7 +41,7 @@ from pipeline.ingest.parse import (
 )
 from pipeline.ingest.read import ROW, ExportReader, ParquetExport, RawExport, open_export
 from pipeline.profile import Profile
-from pipeline.pseudonym import add_pseudonym
+from pipeline.pseudonym import PSEUDONYM_CHARS, hmac_pads
 from pipeline.schema import POLARS_TYPES, PSEUDONYMISED, SAMPLES, TARGET_RANGE_PCT, UNIT_CHOICES, Kind, RecordSpec
 from pipeline.sql_files import read_sql, run_sql
 from pipeline.testhooks import pause_point
@@ -254,38 +254,23 @@ def _stage_file(
     return staged
 
 
-# Distinct identifiers hashed at a time: bounds memory whatever the number of patients.
-PSEUDONYM_BATCH = 100_000
-
-
 def _make_pseudonyms(con: duckdb.DuckDBPyConnection, key: bytes, record: RecordSpec) -> None:
     """``stage_keys_<name>`` (identifier, pseudonym) for each identifier column of the
-    samples' catalogue: every distinct identifier of the file hashed once
-    (``pipeline.pseudonym``), a batch at a time; empty for identifiers the kind does not hold."""
+    samples' catalogue: every distinct identifier of the file hashed once, by DuckDB
+    (``keyed_pseudonym``, the HMAC of ``pipeline.pseudonym``); empty for identifiers the kind
+    does not hold."""
     for column, (_output, domain) in PSEUDONYMISED.items():
         name = f"stage_keys_{column.removesuffix('_id')}"
-        con.execute(f"create or replace temp table {name} (identifier varchar, pseudonym varchar)")
         if column not in record.fields_by_name:
+            con.execute(f"create or replace temp table {name} (identifier varchar, pseudonym varchar)")
             continue
-        # Temp tables belong to this connection, so batches are read back one by one.
+        inner, outer = hmac_pads(key, domain)
         con.execute(
-            f"create or replace temp table {name}_ids as "
-            f"select distinct {column} as identifier from stage_units where {column} is not null"
+            f"create or replace temp table {name} as "
+            f"select identifier, keyed_pseudonym(identifier, $inner, $outer, {PSEUDONYM_CHARS}) as pseudonym "
+            f"from (select distinct {column} as identifier from stage_units where {column} is not null)",
+            {"inner": inner, "outer": outer},
         )
-        total = con.execute(f"select count(*) from {name}_ids").fetchall()[0][0]
-        try:
-            for start in range(0, total, PSEUDONYM_BATCH):
-                batch = con.sql(
-                    f"select identifier from {name}_ids where rowid >= {start} and rowid < {start + PSEUDONYM_BATCH}"
-                ).pl()
-                keyed = add_pseudonym(batch, key, "identifier", "pseudonym", domain)
-                con.register(f"{name}_frame", keyed.to_arrow())
-                try:
-                    con.execute(f"insert into {name} select identifier, pseudonym from {name}_frame")
-                finally:
-                    con.unregister(f"{name}_frame")
-        finally:
-            con.execute(f"drop table if exists {name}_ids")
 
 
 def _stage_in_sql(
