@@ -162,6 +162,22 @@ def tail_export(workdir: Path, rows: int, of_rows: int, seed: int = 7) -> Path:
     return target
 
 
+def patients_export(workdir: Path, rows: int, of_rows: int, seed: int = 7) -> Path:
+    """Every sample of about ``rows / of_rows`` of the patients of the ``of_rows``-row export,
+    patients picked by a hash of their MRN: a small site with the big export's whole history
+    (so the same reporting window, units and periods) and whole patient histories, in file
+    order. About ``rows`` rows; the exact count depends on the patients picked."""
+    import polars as pl
+
+    target = workdir / "exports" / f"us_style_patients_{rows}_of_{of_rows}_seed{seed}.csv"
+    if not target.exists():
+        share = max(of_rows // rows, 1)
+        picked = pl.col("MRN").hash(seed) % share == 0
+        frame = pl.scan_csv(us_export(workdir, of_rows, seed), infer_schema=False).filter(picked).collect()
+        frame.write_csv(target, null_value="")
+    return target
+
+
 def nightly_export(workdir: Path, rows: int, source: Path) -> Path:
     """``rows`` new samples of patients in ``source``, on the day after its last collection day.
 

@@ -1,14 +1,25 @@
 """Nightly-run benchmark: adding a small file to a small store and to a big one.
 
-Builds two stores once (cached under --workdir, reused by later runs), each by a full
+Builds three stores once (cached under --workdir, reused by later runs), each by a full
 run: one of --big records (default 5 M: the demo export and earlier copies of it, about
-three years of a network's results) and one of --small records (default 50 k: the last
-days of the same export). Then, for each store, --repeat times: copy the store, and run
-the nightly job on an input folder that holds the export already loaded plus a nightly
-file of --nightly new samples (default 2 k: new accession numbers for patients of those
-last days, collected on the next day). Each run is a fresh process.
+three years of a network's results) and two of about --small records (default 50 k):
 
-Prints both run times side by side. Target: the big store's run within 1.5x of the small
+  latest days    the last --small rows of the same export: about one month, so the
+                 report's 12-month window holds one period;
+  same history   every sample of a share of the export's patients (by a hash of the MRN):
+                 the big store's three years, units and periods with --small / --big
+                 of its patients, so the report's window is as full as the big store's.
+
+The first compares store size and history together; the second store size alone: its
+report window covers the same periods, units and questions as the big store's.
+
+Then, for each store, --repeat times: copy the store, and run the nightly job on an input
+folder that holds the export already loaded plus a nightly file of --nightly new samples
+(default 2 k: new accession numbers for patients of the latest days, collected on the next
+day; the same file for every store, so most of its patients are new to the same-history
+store). Each run is a fresh process.
+
+Prints the run times side by side. Target: the big store's run within 1.5x of a small
 store's. --breakdown adds the time of each stage and of the slowest SQL statements.
 """
 
@@ -28,6 +39,7 @@ from common import (
     machine_line,
     measure,
     nightly_export,
+    patients_export,
     print_table,
     private_folder,
     remove_store,
@@ -96,39 +108,59 @@ def main(argv: list[str] | None = None) -> int:
         return 2
     workdir: Path = args.workdir
     big_export = us_export(workdir, args.big, args.seed)
-    small_export = tail_export(workdir, args.small, args.big, args.seed)
-    nightly = nightly_export(workdir, args.nightly, small_export)
-    stores = {args.small: built_store(workdir, small_export), args.big: built_store(workdir, big_export)}
+    latest_export = tail_export(workdir, args.small, args.big, args.seed)
+    history_export = patients_export(workdir, args.small, args.big, args.seed)
+    nightly = nightly_export(workdir, args.nightly, latest_export)
+    names = {"latest": "small store, latest days", "history": "small store, same history", "big": "big store"}
+    stores = {
+        "latest": built_store(workdir, latest_export),
+        "history": built_store(workdir, history_export),
+        "big": built_store(workdir, big_export),
+    }
     runs = private_folder(workdir / "incremental" / "runs")
 
-    rounds: dict[int, list[Measurement]] = {args.small: [], args.big: []}
+    rounds: dict[str, list[Measurement]] = {name: [] for name in stores}
     for number in range(1, args.repeat + 1):
         print(f"round {number}/{args.repeat} ...", flush=True)
-        for size, (store, inputs) in stores.items():
+        for name, (store, inputs) in stores.items():
             (inputs / "nightly.csv").unlink(missing_ok=True)
             _link(nightly, inputs / "nightly.csv")
-            folder = private_folder(runs / f"store_{size}")
+            folder = private_folder(runs / f"store_{name}")
             copy = folder / "store.duckdb"
             copy_store(store, copy)
             config = write_site_config(folder, copy, inputs)
-            label = f"nightly +{args.nightly:,} on {size:,}"
-            rounds[size].append(measure("full_run", label, config=config, breakdown=args.breakdown))
+            held = _records(store)
+            label = f"nightly +{args.nightly:,} on {held:,} ({names[name]})"
+            rounds[name].append(measure("full_run", label, config=config, breakdown=args.breakdown))
             remove_store(copy)
 
-    small, big = combine(rounds[args.small]), combine(rounds[args.big])
+    latest, history, big = (combine(rounds[name]) for name in ("latest", "history", "big"))
     print()
     print(f"incremental benchmark: a nightly file of {args.nightly:,} new samples; {machine_line()}")
     print(f"median of {args.repeat} interleaved run(s), each on a fresh copy of the store, in a fresh process")
-    print_table(small, [big], rows_label="records/s")
-    for m in (small, big):
+    print_table(latest, [history, big], rows_label="records/s")
+    for m in (latest, history, big):
         print(f"  {m.label}: {m.detail['loaded']:,} loaded, {m.detail['scope']:,} samples re-derived and checked")
-    print(verdict("big store vs small store", big.seconds / small.seconds, 1.5))
+    print(verdict("big store vs small store, latest days", big.seconds / latest.seconds, 1.5))
+    print(verdict("big store vs small store, same history", big.seconds / history.seconds, 1.5))
     if args.breakdown:
-        _print_breakdown(rounds[args.small][-1], rounds[args.big][-1])
+        _print_breakdown(rounds["history"][-1], rounds["big"][-1])
     return 0
 
 
+def _records(store: Path) -> int:
+    """Records the built store holds (read-only, before the run's copy is made)."""
+    import duckdb
+
+    con = duckdb.connect(str(store), read_only=True)
+    try:
+        return int(con.execute("select count(*) from records").fetchall()[0][0])
+    finally:
+        con.close()
+
+
 def _print_breakdown(small: Measurement, big: Measurement) -> None:
+    """Stages and slowest statements of the last run on the same-history small store and the big one."""
     print("\nstages (last run, seconds: small store, big store)")
     for name in small.detail["stages"]:
         print(f"  {name:<34}{small.detail['stages'][name]:>9.2f}{big.detail['stages'].get(name, 0.0):>9.2f}")

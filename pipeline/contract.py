@@ -366,7 +366,7 @@ class _Validator:
     """The great-expectations context, batch definition and suite, built once."""
 
     def __init__(self, checks: tuple[Check, ...]) -> None:
-        gx, expectations, progress_bars = _import_gx()
+        gx, expectations, progress_bars = import_great_expectations()
         self.checks = {c.check_id: c for c in checks}
         self.context = gx.get_context(mode="ephemeral")
         self.context.enable_analytics(False)
@@ -399,7 +399,10 @@ class _Validator:
         )
 
 
-def _import_gx() -> tuple[Any, Any, Any]:
+def import_great_expectations() -> tuple[Any, Any, Any]:
+    """great-expectations, imported once per process (several seconds; the nightly job pays it
+    once, whatever the number of files): its package, its expectations and its progress-bar
+    settings."""
     os.environ["GX_ANALYTICS_ENABLED"] = "False"
     with warnings.catch_warnings():
         # GX-internal noise: great_expectations imports the deprecated stdlib modules
