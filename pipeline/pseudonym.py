@@ -91,7 +91,7 @@ _SHA256_BLOCK = 64
 
 def hmac_pads(key: bytes, domain: str | None = None) -> tuple[bytes, bytes]:
     """The inner and outer padded keys of HMAC-SHA256 for one domain (RFC 2104, section 2):
-    the parameters of the SQL macro ``keyed_pseudonym`` (``sql/macros/50_pseudonym.sql``),
+    the parameters of the SQL macro ``keyed_pseudonym`` (``sql/ingest/14_keyed_pseudonym.sql``),
     which computes ``pseudonym`` for a whole file's identifiers in DuckDB. As secret as the
     key: pass them as query parameters, never into SQL text or a log."""
     padded = domain_key(key, domain)

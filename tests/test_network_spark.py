@@ -123,6 +123,9 @@ def test_contract_imports_great_expectations_with_pyspark_installed_under_python
 
     # without pyspark the import cannot reach the exit this test is about: fail, never pass vacuously
     assert importlib.util.find_spec("pyspark") is not None, "the Spark step installs the [spark] extra"
-    code = "from pipeline.contract import import_great_expectations; import_great_expectations(); print('contract ready')"
+    code = (
+        "from pipeline.contract import import_great_expectations; import_great_expectations(); "
+        "print('contract ready')"
+    )
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=False)
     assert done.returncode == 0 and "contract ready" in done.stdout, done.stderr[-2000:]

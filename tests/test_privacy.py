@@ -367,18 +367,19 @@ def test_bulk_pseudonyms_in_sql_equal_python_hmac(key):
 
     from pipeline.pseudonym import PSEUDONYM_CHARS, domain_key, hmac_pads
     from pipeline.schema import PSEUDONYMISED
-    from pipeline.sql_files import install_macros
+    from pipeline.sql_files import run_sql
 
     con = duckdb.connect()
-    install_macros(con)
+    run_sql(con, "ingest/14_keyed_pseudonym.sql")
     for _column, (_output, domain) in PSEUDONYMISED.items():
         inner, outer = hmac_pads(key, domain)
         got = [
             con.execute("select keyed_pseudonym(?, ?, ?, ?)", [ident, inner, outer, PSEUDONYM_CHARS]).fetchall()[0][0]
             for ident in _IDENTIFIER_EDGES
         ]
+        keyed = domain_key(key, domain)
         expected = [
-            hmac.new(domain_key(key, domain), ident.strip().encode("utf-8"), hashlib.sha256).hexdigest()[:PSEUDONYM_CHARS]
+            hmac.new(keyed, ident.strip().encode("utf-8"), hashlib.sha256).hexdigest()[:PSEUDONYM_CHARS]
             for ident in _IDENTIFIER_EDGES
         ]
         assert got == expected, domain

@@ -257,8 +257,9 @@ def _stage_file(
 def _make_pseudonyms(con: duckdb.DuckDBPyConnection, key: bytes, record: RecordSpec) -> None:
     """``stage_keys_<name>`` (identifier, pseudonym) for each identifier column of the
     samples' catalogue: every distinct identifier of the file hashed once, by DuckDB
-    (``keyed_pseudonym``, the HMAC of ``pipeline.pseudonym``); empty for identifiers the kind
-    does not hold."""
+    (``keyed_pseudonym`` in ``sql/ingest/14_keyed_pseudonym.sql``, the HMAC of
+    ``pipeline.pseudonym``); empty for identifiers the kind does not hold."""
+    run_sql(con, "ingest/14_keyed_pseudonym.sql")
     for column, (_output, domain) in PSEUDONYMISED.items():
         name = f"stage_keys_{column.removesuffix('_id')}"
         if column not in record.fields_by_name:

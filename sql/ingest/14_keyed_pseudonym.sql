@@ -1,5 +1,8 @@
--- Keyed pseudonyms in bulk: the HMAC-SHA256 of pipeline/pseudonym.py computed by DuckDB, so a
--- file's distinct identifiers are hashed in parallel rather than one by one in Python.
+-- Stage 1b's keyed pseudonyms in bulk: the HMAC-SHA256 of pipeline/pseudonym.py computed by
+-- DuckDB, so a file's distinct identifiers are hashed in parallel rather than one by one in
+-- Python. Installed by the loader before 15_keys_and_hash.sql (pipeline/ingest/load.py). It
+-- lives here, not in sql/macros/: it is no formula of the trade, and the analysis does not
+-- depend on it (a change to it must not make every store check every sample again).
 --
 -- keyed_pseudonym(identifier, inner_pad, outer_pad, chars)
 --   Formula: HMAC(K, m) = SHA-256((K' xor opad) || SHA-256((K' xor ipad) || m)), as hex, its first
