@@ -117,6 +117,7 @@ def main(argv: list[str] | None = None) -> int:
         "history": built_store(workdir, history_export),
         "big": built_store(workdir, big_export),
     }
+    held = {name: _records(store) for name, (store, _inputs) in stores.items()}
     runs = private_folder(workdir / "incremental" / "runs")
 
     rounds: dict[str, list[Measurement]] = {name: [] for name in stores}
@@ -129,8 +130,7 @@ def main(argv: list[str] | None = None) -> int:
             copy = folder / "store.duckdb"
             copy_store(store, copy)
             config = write_site_config(folder, copy, inputs)
-            held = _records(store)
-            label = f"nightly +{args.nightly:,} on {held:,} ({names[name]})"
+            label = f"nightly +{args.nightly:,} on {held[name]:,} ({names[name]})"
             rounds[name].append(measure("full_run", label, config=config, breakdown=args.breakdown))
             remove_store(copy)
 

@@ -130,7 +130,7 @@ def main(argv: list[str] | None = None) -> int:
         )
         print(
             f"great-expectations import, once per process (not in the ingest + contract time): "
-            f"{detail.get('library_import_seconds', 0.0):.2f} s"
+            f"{detail['library_import_seconds']:.2f} s"
         )
         for m in ours[:2]:
             print(verdict(f"{m.label} vs bare load", m.seconds / baseline.seconds, 2.0))

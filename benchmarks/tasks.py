@@ -56,10 +56,10 @@ def ingest(csv: str, db: str, profile: str, key: str, contract: bool = True) -> 
     from pipeline.profile import load_profile
     from pipeline.store import open_store
 
+    library_seconds = 0.0
     if not contract:
         _without_contract()
-    library_seconds = 0.0
-    if contract:
+    else:
         # Imported once per process, like the nightly job does before its first file: timed
         # apart, so the figure is the file's own cost (a run of 291 files pays it once).
         from pipeline.contract import import_great_expectations

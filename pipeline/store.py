@@ -56,19 +56,25 @@ def open_scratch_store(spill: Path) -> duckdb.DuckDBPyConnection:
     return con
 
 
-def _prepare(con: duckdb.DuckDBPyConnection, spill: Path | None) -> None:
-    """UTC sessions, offline settings, the memory budget, macros; with ``spill`` (a writable
-    store) the spill folder and the tables."""
+def session_settings(con: duckdb.DuckDBPyConnection, memory_limit: str, spill: Path | None) -> None:
+    """Settings every DuckDB connection of ours runs with (the store's and the network run's
+    engine): UTC sessions, offline (no extension installed or loaded on its own), the memory
+    budget and, with ``spill``, an owner-only spill folder."""
     con.execute("set TimeZone = 'UTC'")
     con.execute("set autoinstall_known_extensions = false")
     con.execute("set autoload_known_extensions = false")
-    con.execute(f"set memory_limit = '{MEMORY_LIMIT}'")
+    con.execute(f"set memory_limit = '{memory_limit}'")
     if spill is not None:
-        # Spill files hold identifiers too: DuckDB creates them long after the umask above
-        # is restored, so their folder is made owner-only here.
+        # Spill files hold identifiers (or pseudonymised rows) too: DuckDB creates them long
+        # after any umask of the caller is restored, so their folder is made owner-only here.
         spill.mkdir(mode=0o700, exist_ok=True)
         spill.chmod(0o700)
         con.execute("set temp_directory = ?", [str(spill)])
+
+
+def _prepare(con: duckdb.DuckDBPyConnection, spill: Path | None) -> None:
+    """Session settings, macros; with ``spill`` (a writable store) the spill folder and the tables."""
+    session_settings(con, MEMORY_LIMIT, spill)
     install_macros(con)
     if spill is not None:
         for ddl in sorted((SQL_DIR / "schema").glob("*.sql")):

@@ -288,3 +288,4 @@ def test_network_duckdb_engine_spills_into_the_run_work_folder(tmp_path: Path) -
     finally:
         engine.close()
     assert Path(setting) == tmp_path / "duckdb-spill"
+    assert (tmp_path / "duckdb-spill").stat().st_mode & 0o777 == 0o700  # owner-only, as the store's spill folder

@@ -107,16 +107,12 @@ class DuckDBEngine:
 
     def __init__(self, memory_limit: str = "2GB", threads: int | None = None, spill: Path | None = None) -> None:
         from pipeline.sql_files import install_macros
+        from pipeline.store import session_settings
 
         self.con = duckdb.connect()
-        self.con.execute("set TimeZone = 'UTC'")
-        self.con.execute("set autoinstall_known_extensions = false")
-        self.con.execute("set autoload_known_extensions = false")
-        self.con.execute(f"set memory_limit = '{memory_limit}'")
-        if spill is not None:
-            # An in-memory database spills to ./.tmp by default; the run's own (owner-only)
-            # work folder keeps pseudonymised rows out of the operator's working directory.
-            self.con.execute("set temp_directory = ?", [str(spill)])
+        # An in-memory database spills to ./.tmp by default; the run's own work folder keeps
+        # pseudonymised rows out of the operator's working directory.
+        session_settings(self.con, memory_limit, spill)
         if threads:
             self.con.execute(f"set threads = {int(threads)}")
         install_macros(self.con)
