@@ -224,7 +224,8 @@ class RecordSpec:
             "key": self.key_field,
             "record_kind": self.record_kind,
             # merged_duplicates.sample_id holds the key of a sample and nothing for other kinds
-            "sample_id": self.key_field if self.key_field == "sample_id" else "null",
+            # (a staged row's key is its record_id, 30_classify.sql)
+            "staged_sample_id": "record_id" if self.key_field == "sample_id" else "null",
         }
 
     @cached_property

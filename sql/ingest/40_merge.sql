@@ -13,6 +13,7 @@
 create or replace temp table stage_held as
 select
     k.source_row,
+    k.record_id,
     k.{key},
     coalesce(r.content_hash = k.content_hash, false) as same_values,
     r.version as held_version
@@ -39,8 +40,12 @@ select
     $source_file as superseded_by_file,
     kept_row as superseded_by_row,
     $run_id as superseded_in_run
-from stage_set_aside
-where outcome = 'superseded_in_file';
+from (
+    select c.*, s.kept_row
+    from stage_converted as c
+    join stage_set_aside as s using (source_row)
+    where s.outcome = 'superseded_in_file'
+);
 
 insert into {superseded_table} by name
 select r.*, $source_file as superseded_by_file, h.source_row as superseded_by_row, $run_id as superseded_in_run
@@ -75,10 +80,10 @@ where reason_code is null
   and source_row not in (select source_row from stage_held);
 
 insert into merged_duplicates (sample_id, record_id, record_kind, file_sha256, source_row, duplicate_of, run_id)
-select {sample_id}, {key}, '{record_kind}', $file_sha256, source_row, 'row in the same file', $run_id
+select {staged_sample_id}, record_id, '{record_kind}', $file_sha256, source_row, 'row in the same file', $run_id
 from stage_set_aside
 where outcome = 'duplicate'
 union all
-select {sample_id}, {key}, '{record_kind}', $file_sha256, source_row, 'record already held', $run_id
+select {staged_sample_id}, record_id, '{record_kind}', $file_sha256, source_row, 'record already held', $run_id
 from stage_held
 where same_values;
