@@ -14,10 +14,11 @@
 -- analyte before or after it within $window_hours).
 create or replace temp table delta_values as
 with patients as (
-    select distinct r.patient_key
-    from records as r
-    semi join scope_samples as s on s.sample_id = r.sample_id
-    where r.patient_key is not null
+    -- the patients of the samples in scope, from rule_input (00_rule_input.sql: one row per
+    -- sample in scope), which is small in a nightly run where records is not
+    select distinct patient_key
+    from rule_input
+    where patient_key is not null
 ),
 analytes as (
     select * from (
