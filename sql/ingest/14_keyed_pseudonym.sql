@@ -15,6 +15,8 @@
 --   Units:   text -> lower-case hex text
 --   Source:  RFC 2104 (Krawczyk, Bellare, Canetti 1997), section 2; SHA-256 as in FIPS 180-4
 --   Status:  verified against Python's hmac module (tests/test_privacy.py)
+-- The CASE trims only identifiers that start or end with white space: trim() with this set
+-- of 29 characters on every identifier cost 3.6 s against 0.6 s for 2.5 M identifiers.
 CREATE OR REPLACE TEMP MACRO keyed_pseudonym(identifier, inner_pad, outer_pad, chars) AS
     left(sha256(outer_pad || unhex(sha256(inner_pad || encode(
         CASE
