@@ -1,8 +1,11 @@
 """The incoming-batch contract: a great-expectations suite on every export file.
 
-Each file's batch is checked right after unit conversion: the temp table
-``stage_converted``, every row of the file, including rows quarantined later (their
-unreadable cells are missing). Which rows each check sees (``validate_stage``):
+Each file's batch is checked right after unit conversion: the temp view ``stage_rows``
+(``sql/ingest/12_stage_rows.sql``), every row of the file, including rows quarantined later
+(their unreadable cells are missing). No check reads an identifier other than the sample
+id, so the batch is read without the pseudonym joins of ``stage_converted``.
+
+Which rows each check sees (``validate_stage``):
 
 * the structural checks (every contract column present, column types) are run by
   great-expectations on a bounded sample, the file's first ``SAMPLE_ROWS`` rows: a column's
@@ -97,6 +100,8 @@ ALLOWED_CODES: dict[str, tuple[tuple[str, ...], str]] = {
     "result_status": (RESULT_STATUSES, WARNING),
 }
 REQUIRED_COLUMNS: tuple[str, ...] = ("sample_id", "collected_at")
+# The staged batch of one file that the contract reads (a temp view of the loader).
+BATCH_RELATION = "stage_rows"
 # Columns handed to great-expectations: only those a check reads. Identifiers other than the
 # sample id are never handed over, and the sample id only as present / absent.
 CONTRACT_COLUMNS: tuple[str, ...] = (
@@ -373,7 +378,7 @@ class _Validator:
         self.context.variables.progress_bars = progress_bars(globally=False)
         self.batch_definition = (
             self.context.data_sources.add_pandas("incoming_batches")
-            .add_dataframe_asset("stage_converted")
+            .add_dataframe_asset(BATCH_RELATION)
             .add_batch_definition_whole_dataframe("whole_file")
         )
         self.suite = suite = self.context.suites.add(gx.ExpectationSuite(name=SUITE_NAME))
@@ -653,7 +658,7 @@ def validate_stage(
     settings: ContractSettings | None = None,
     now: datetime | None = None,
 ) -> ContractOutcome:
-    """Check the batch in the temp table ``stage_converted`` (one file, after unit conversion).
+    """Check the batch in the temp view ``stage_rows`` (one file, after unit conversion).
 
     great-expectations runs the structural checks (columns present, their types) on the
     file's first ``SAMPLE_ROWS`` rows; every value check is counted over all rows in SQL
@@ -662,14 +667,14 @@ def validate_stage(
     settings = settings or load_settings()
     checks = contract_checks(settings)
     now = now or datetime.now(UTC).replace(tzinfo=None)
-    stage_columns = con.sql("select * from stage_converted limit 0").columns
+    stage_columns = con.sql(f"select * from {BATCH_RELATION} limit 0").columns
     wanted = [c for c in CONTRACT_COLUMNS if c in stage_columns]
-    sample = con.sql(f"select {', '.join(wanted)} from stage_converted order by source_row limit {SAMPLE_ROWS}").pl()
+    sample = con.sql(f"select {', '.join(wanted)} from {BATCH_RELATION} order by source_row limit {SAMPLE_ROWS}").pl()
     outcome = validate_frame(
         sample, path.name, now=now, validator=_structural_validator_for(settings), settings=settings
     )
     latest = now + timedelta(minutes=settings.future_tolerance_minutes)
-    query, counted = aggregate_sql(checks, set(wanted), latest, "stage_converted")
+    query, counted = aggregate_sql(checks, set(wanted), latest, BATCH_RELATION)
     counts = con.execute(query).fetchall()[0]
     rows = int(counts[0])
     by_id = {c.check_id: c for c in checks}

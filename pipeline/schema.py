@@ -209,7 +209,7 @@ class RecordSpec:
     table: str
     superseded_table: str
     convert_sql: str  # stage 1 (units, hard limits, row checks) -> stage_units
-    keys_sql: str  # stage 1b (pseudonyms, content hash) -> stage_converted
+    keys_sql: str  # stage 1b (pseudonyms, content hash) -> the view stage_converted
     value_notes: bool  # keep qualified values and text results in record_value_notes
     unit_sanity_sql: str | None  # file-level unit medians (pipeline.ingest.load.UNIT_SANITY)
     batch_contract: bool  # run the great-expectations batch contract (pipeline/contract.py)

@@ -22,6 +22,7 @@ import polars as pl
 import pytest
 
 from pipeline.contract import (
+    BATCH_RELATION,
     CONTRACT_COLUMNS,
     CONTRACT_FAILED,
     ContractOutcome,
@@ -308,7 +309,7 @@ def stage_outcome(frame: pl.DataFrame) -> ContractOutcome:
     try:
         staged = frame.with_row_index("source_row", offset=1)
         con.register("frame", staged.to_arrow())
-        con.execute("create temp table stage_converted as select * from frame")
+        con.execute(f"create temp table {BATCH_RELATION} as select * from frame")
         return validate_stage(con, Path("export.csv"), "r1", "abc", now=NOW)
     finally:
         con.close()
@@ -378,7 +379,7 @@ def validate_stage_with(frame: pl.DataFrame, settings) -> ContractOutcome:
     con = duckdb.connect()
     try:
         con.register("frame", frame.with_row_index("source_row", offset=1).to_arrow())
-        con.execute("create temp table stage_converted as select * from frame")
+        con.execute(f"create temp table {BATCH_RELATION} as select * from frame")
         return validate_stage(con, Path("export.csv"), "r1", "abc", now=NOW, settings=settings)
     finally:
         con.close()

@@ -47,9 +47,11 @@ from pipeline.sql_files import read_sql, run_sql
 from pipeline.testhooks import pause_point
 
 UNIT_FIELDS = SAMPLES.unit_fields
+_STAGE_VIEWS = ("stage_converted", "stage_rows")  # over stage_units (sql/ingest/12_*, 15_*)
 _STAGE_TABLES = (
     "stage_units",
-    "stage_converted",
+    "stage_row_keys",
+    "stage_repeated_rows",
     "stage_repeats",
     "stage_set_aside",
     "stage_held",
@@ -205,7 +207,8 @@ def _raw_median(
 
 @dataclass
 class StagedFile:
-    """What staging one file left behind besides the temp table ``stage_converted``."""
+    """What staging one file left behind besides the temp views ``stage_rows`` and
+    ``stage_converted``."""
 
     rows_in: int
     malformed: list[tuple[int, str, str]]
@@ -236,8 +239,10 @@ def _stage_file(
     keep_patient_id: bool,
     unit_params: dict[str, str | float],
 ) -> StagedFile:
-    """Parse and convert the whole file into the temp table ``stage_converted`` (canonical
-    units, hard limits, pseudonyms, content hash per row) and register ``stage_notes``.
+    """Parse and convert the whole file into the temp table ``stage_units`` (canonical
+    units, hard limits), with the views ``stage_rows`` (the rows that count) and
+    ``stage_converted`` (pseudonyms, content hash per row) over it, and register
+    ``stage_notes``.
 
     DuckDB reads and types the file (``engine``); the Python reader and parser read only
     what DuckDB cannot (see ``engine``). Raises FileRejected for a fault of the whole file.
@@ -250,6 +255,7 @@ def _stage_file(
     tally.check(reader.path)
     con.register("stage_notes", notes.to_arrow())
     _make_pseudonyms(con, key, profile.record)
+    run_sql(con, "ingest/12_stage_rows.sql")
     run_sql(con, profile.record.keys_sql, keep_identifiers=keep_patient_id)
     return staged
 
@@ -524,6 +530,8 @@ def ingest_file(
             result.notes.append(f"columns not mapped (ignored): {len(plan.extra_columns)}")
         result.rows_in = staged.rows_in
         _check_units(con, path, profile, reader, plan)
+        # Classifying reads the file's stage only; outside the transaction its tables can spill.
+        run_sql(con, "ingest/30_classify.sql")
         con.execute("begin transaction")
         in_transaction = True
         if replacing is not None:
@@ -532,7 +540,6 @@ def ingest_file(
             contract = validate_stage(con, path, run_id, result.sha256, settings=contract_settings)
             keep_results(con, contract)
             contract.raise_if_rejected()
-        run_sql(con, "ingest/30_classify.sql")
         run_sql(con, "ingest/40_merge.sql", sql_names=record.sql_names, **names)
         if record.value_notes:
             run_sql(con, "ingest/40_merge_value_notes.sql", **names)
@@ -590,9 +597,11 @@ def ingest_file(
                 con.unregister(view)
             except duckdb.Error:
                 pass
-        for table in _STAGE_TABLES:  # a big file's stage would hold memory into the later stages
+        # A big file's stage would hold memory into the later stages.
+        stage = [("view", name) for name in _STAGE_VIEWS] + [("table", name) for name in _STAGE_TABLES]
+        for kind, name in stage:
             try:
-                con.execute(f"drop table if exists {table}")
+                con.execute(f"drop {kind} if exists {name}")
             except duckdb.Error:
                 pass
     return result

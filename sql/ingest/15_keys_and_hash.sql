@@ -1,27 +1,30 @@
--- Stage 1b: pseudonyms and the content hash of every row of stage_units (10_convert.sql),
--- into the temp table stage_converted that the later stages read.
--- Input: stage_units; stage_keys_patient, stage_keys_encounter, stage_keys_operator
+-- Stage 1b: pseudonyms and the content hash of every row of stage_rows (12_stage_rows.sql),
+-- as the temp view stage_converted that the later stages read.
+-- A view, not a table: a copy of every column of a big file cost more than the joins it
+-- saved (at 5 M rows the copy and the insert from it took 39 s, one insert through this
+-- view 20 s), and DuckDB pushes a reader's join or semi join (the few repeated, held or
+-- set-aside rows) below the key joins, so such a reader pays for its own rows only.
+-- Input: stage_rows; stage_keys_patient, stage_keys_encounter, stage_keys_operator
 -- (identifier -> pseudonym, each distinct identifier of the file once, made by
 -- pipeline/pseudonym.py). Parameter: $keep_identifiers = the site keeps raw identifiers
--- ([store] keep_patient_id); when false they are NULL from here on, the hash included.
+-- ([store] keep_patient_id); when false they are NULL here, the hash included.
 -- Grain: one row per data record.
-create or replace temp table stage_converted as
+set variable keep_identifiers = $keep_identifiers;
+
+create or replace temp view stage_converted as
 with keyed as (
     select
-        -- rows DuckDB read are numbered by their place in stage_units (file order)
-        coalesce(u.source_row, u.rowid + 1) as source_row,
-        u.* exclude (source_row, __usual, __cells, __nonblank, patient_id, encounter_id, operator_id),
-        case when $keep_identifiers then u.patient_id end as patient_id,
+        u.* exclude (patient_id, encounter_id, operator_id),
+        case when getvariable('keep_identifiers') then u.patient_id end as patient_id,
         p.pseudonym as patient_key,
-        case when $keep_identifiers then u.encounter_id end as encounter_id,
+        case when getvariable('keep_identifiers') then u.encounter_id end as encounter_id,
         e.pseudonym as encounter_key,
-        case when $keep_identifiers then u.operator_id end as operator_id,
+        case when getvariable('keep_identifiers') then u.operator_id end as operator_id,
         o.pseudonym as operator_key
-    from stage_units as u
+    from stage_rows as u
     left join stage_keys_patient as p on p.identifier = u.patient_id
     left join stage_keys_encounter as e on e.identifier = u.encounter_id
     left join stage_keys_operator as o on o.identifier = u.operator_id
-    where u.__usual is distinct from false  -- rows with an unusual cell: their Python-parsed copy counts
 )
 select
     *,

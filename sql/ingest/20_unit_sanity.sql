@@ -6,7 +6,7 @@ select field, count(v) as n, median(v) as median_value
 from (
     unpivot (
         select paco2_mmhg, pao2_mmhg, fio2, temperature_c, hb_g_dl
-        from stage_converted
+        from stage_rows
         where parse_reason is null
     )
     on columns(*) into name field value v

@@ -3,5 +3,5 @@
 -- above 1, a fault of the file rather than of its rows.
 -- Grain: one row per checked field.
 select 'fio2' as field, count(fio2) as n, median(fio2) as median_value
-from stage_converted
+from stage_rows
 where parse_reason is null;

@@ -42,7 +42,7 @@ select
     $run_id as superseded_in_run
 from (
     select c.*, s.kept_row
-    from stage_converted as c
+    from stage_repeated_rows as c
     join stage_set_aside as s using (source_row)
     where s.outcome = 'superseded_in_file'
 );

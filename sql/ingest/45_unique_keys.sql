@@ -6,4 +6,4 @@
 -- is well).
 select count(*) - count(distinct r.{key}) as extra_rows
 from {table} as r
-semi join (select record_id from stage_converted where reason_code is null) as f on f.record_id = r.{key};
+semi join (select record_id from stage_row_keys where reason_code is null) as f on f.record_id = r.{key};

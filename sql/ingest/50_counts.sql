@@ -2,7 +2,7 @@
 -- Rows not set aside in stage 2 are kept; kept rows are new, corrections of a held
 -- record, or duplicates of one (stage_held).
 with parsed as (
-    select count(*) as rows_parsed from stage_converted
+    select count(*) as rows_parsed from stage_row_keys
 ),
 set_aside as (
     select
