@@ -129,6 +129,107 @@ class TimedConnection:
         return getattr(self._con, name)
 
 
+def _stage_select(csv: str, profile: str, db: str, *, all_usual: bool = False) -> tuple[Any, str, dict[str, Any]]:
+    """A fresh store (macros, hard limits) and the stage 1 SELECT of ``ingest_file`` over ``csv``:
+    DuckDB's parse of every cell (``engine.parse_relation``) under the kind's convert SQL.
+    ``all_usual``: every cell counts as usual, i.e. without the tests that send a cell to the
+    Python parser unless SQL types it exactly as that parser would."""
+    from pipeline.ingest import engine
+    from pipeline.ingest.load import _convert_sql
+    from pipeline.ingest.parse import plan_columns
+    from pipeline.ingest.read import open_export
+    from pipeline.profile import load_profile
+    from pipeline.store import open_store
+
+    loaded = load_profile(Path(profile))
+    reader = open_export(Path(csv), loaded)
+    plan = plan_columns(Path(csv), reader.header, loaded)
+    relation, refs, types = engine.csv_relation(csv, reader.header, loaded)
+    select, _ = engine.parse_relation(relation, refs, types, plan, loaded, row=None, keep_cells=True)
+    if all_usual:
+        end = select.index(" as __usual")
+        start = select.rindex(",\n    ", 0, end) + len(",\n    ")
+        select = select[:start] + "true" + select[end:]
+    con = open_store(Path(db))
+    units = {f"unit_{name}": loaded.unit_of(name) for name in loaded.record.unit_fields}
+    con.execute(f"create or replace temp view stage_input as {select}")
+    convert, params = _convert_sql(con, loaded.record, units)
+    return con, convert, params
+
+
+@task
+def read_as_text(csv: str, db: str, profile: str) -> dict[str, Any]:
+    """Reading alone: every cell of the file as text in the profile's dialect, aggregated, nothing stored."""
+    from pipeline.ingest import engine
+    from pipeline.ingest.read import open_export
+    from pipeline.profile import load_profile
+    from pipeline.store import open_store
+
+    loaded = load_profile(Path(profile))
+    header = open_export(Path(csv), loaded).header
+    relation, refs, _ = engine.csv_relation(csv, header, loaded)
+    con = open_store(Path(db))
+    started = time.perf_counter()
+    rows = con.execute(f"select count(*), {', '.join(f'max({r})' for r in refs.values())} from {relation}").fetchall()
+    seconds = time.perf_counter() - started
+    con.close()
+    return {"seconds": seconds, "rows": rows[0][0]}
+
+
+@task
+def parse_and_convert(csv: str, db: str, profile: str, store: bool = False, all_usual: bool = False) -> dict[str, Any]:
+    """The stage 1 SELECT of ``ingest_file`` (parse every cell, units, hard limits): aggregated
+    (nothing stored) or, with ``store``, into the temp table ``stage_units`` as ``ingest_file``
+    builds it."""
+    con, convert, params = _stage_select(csv, profile, db, all_usual=all_usual)
+    started = time.perf_counter()
+    if store:
+        con.execute(f"create or replace temp table stage_units as {convert}", params)
+        rows = con.execute("select count(*) from stage_units").fetchall()[0][0]
+    else:
+        columns = [c[0] for c in con.execute(f"describe {convert}", params).fetchall() if c[0] != "__cells"]
+        rows = con.execute(f"select count(*), {', '.join(f'max({c})' for c in columns)} from ({convert})",
+                           params).fetchall()[0][0]
+    seconds = time.perf_counter() - started
+    con.close()
+    return {"seconds": seconds, "rows": rows}
+
+
+@task
+def write_records(source: str, db: str, uncompressed: bool = False) -> dict[str, Any]:
+    """The compressed write of a file's records: every row of ``records`` in the store ``source``
+    (loaded by ``ingest_file``), held in memory, inserted in one transaction into an empty table
+    of the same columns in a fresh store. ``uncompressed``: the identifier and pseudonym columns
+    declared ``USING COMPRESSION uncompressed``. Also reports the table's size on disk."""
+    from pipeline.schema import PSEUDONYMISED
+    from pipeline.store import MEMORY_LIMIT
+
+    plain = {"sample_id", *PSEUDONYMISED, *(key for key, _ in PSEUDONYMISED.values())}
+    con = duckdb.connect(db)
+    con.execute(f"set memory_limit = '{MEMORY_LIMIT}'")
+    con.execute("attach ? as source (read_only)", [source])
+    con.execute("create temp table held as select * from source.records")
+    con.execute("detach source")
+    columns = con.execute("describe held").fetchall()
+    declared = ", ".join(
+        f'"{name}" {kind}' + (" using compression uncompressed" if uncompressed and name in plain else "")
+        for name, kind, *_ in columns
+    )
+    con.execute(f"create table written ({declared})")
+    con.execute("checkpoint")
+    started = time.perf_counter()
+    con.execute("begin transaction")
+    con.execute("insert into written select * from held")
+    con.execute("commit")
+    seconds = time.perf_counter() - started
+    con.execute("checkpoint")
+    blocks = con.execute("select count(distinct block_id) from pragma_storage_info('written')").fetchall()[0][0]
+    block_size = con.execute("select block_size from pragma_database_size()").fetchall()[0][0]
+    rows = con.execute("select count(*) from written").fetchall()[0][0]
+    con.close()
+    return {"seconds": seconds, "rows": rows, "detail": {"table_bytes": blocks * block_size}}
+
+
 def _peak_rss() -> int:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
 
