@@ -440,7 +440,11 @@ def funnel_chart(panels: list[tuple[str, str, pl.DataFrame, pl.DataFrame, str | 
                 .map_elements(funnel_band, return_dtype=pl.String)
                 .fill_null(FUNNEL_BANDS[0])
                 .alias("band"),
-                pl.col("unit").str.slice(0, 22).alias("label"),
+                # a long unit name is cut with an ellipsis, so the label does not read as a whole name
+                pl.when(pl.col("unit").str.len_chars() > 22)
+                .then(pl.col("unit").str.slice(0, 21) + "\u2026")
+                .otherwise(pl.col("unit"))
+                .alias("label"),
             )
         )
     data = pl.concat(frames, how="diagonal_relaxed")
@@ -1042,7 +1046,7 @@ def funnel_charts(question: dict[str, Any], funnel: pl.DataFrame, curve: pl.Data
     """Per measure and unit type, each unit's whole-window rate against its denominator."""
     panels: list[tuple[str, str, pl.DataFrame, pl.DataFrame, str | None]] = []
     outliers: list[dict[str, Any]] = []
-    alone: set[str] = set()
+    alone: dict[str, list[str]] = {}  # unit type -> the measures it has one unit with data for
     for m in question["measures"]:
         points = funnel.filter(pl.col("measure") == m["measure"])
         lines = curve.filter(pl.col("measure") == m["measure"])
@@ -1057,7 +1061,7 @@ def funnel_charts(question: dict[str, Any], funnel: pl.DataFrame, curve: pl.Data
             subtitle = f"{place} · {LEVEL_WORDS.get(m['level'], m['level'])} · {_overdispersion_words(group)}"
             if group.height < 2 and typed:
                 # one unit of its type: nothing to compare it with (its rate is in the answers table)
-                alone.add(_type_words(unit_type))
+                alone.setdefault(_type_words(unit_type), []).append(m["title"])
                 continue
             panels.append((m["title"], subtitle, group, group_lines, None))
             for row in group.filter(pl.col("position").str.contains("99.8").fill_null(False)).to_dicts():
@@ -1065,8 +1069,17 @@ def funnel_charts(question: dict[str, Any], funnel: pl.DataFrame, curve: pl.Data
     return {
         "svg": svg_markup(funnel_chart(panels), f"{prefix}f") if panels else None,
         "outliers": outliers,
-        "alone": sorted(alone),
+        "alone": _alone_words(alone, len(question["measures"])),
     }
+
+
+def _alone_words(alone: dict[str, list[str]], measures: int) -> list[str]:
+    """Each unit type not drawn, with the measures it is not drawn for unless that is all of them: a type
+    can have two units with data for one measure and one unit for another."""
+    return [
+        f"{unit_type} units" if len(titles) == measures else f"{unit_type} units for {', '.join(titles).lower()}"
+        for unit_type, titles in sorted(alone.items())
+    ]
 
 
 def _period_frame(rates: pl.DataFrame) -> list[dict[str, Any]]:

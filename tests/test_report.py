@@ -677,3 +677,36 @@ def test_first_night_without_a_complete_period(tmp_path):
     assert "No complete period with data yet." in html and "no complete period yet" in html
     volume = pl.read_parquet(config.output_folder / TABLES_DIR / "audit_volume.parquet")
     assert volume.select("samples", "samples_usable").rows() == [(0, 0)]
+
+
+def test_a_unit_type_not_drawn_for_one_measure_is_named_with_that_measure_only():
+    # A fresh-user reading found "Not drawn: critical care" above a funnel that did draw the
+    # critical-care units (two of them had data for that measure, one for another).
+    from pipeline.report import funnel_charts
+
+    def unit(measure: str, unit_type: str, name: str) -> dict[str, Any]:
+        return {"measure": measure, "unit_type": unit_type, "unit": name, "rate": None, "denominator": 40,
+                "position": None}
+
+    question = {"measures": [{"measure": "hypox", "title": "Hypoxaemia", "level": "sample"},
+                             {"measure": "hyperox", "title": "Hyperoxaemia on oxygen", "level": "sample"}]}
+    funnel = pl.DataFrame([
+        unit("hypox", "critical_care", "Unit A"),
+        unit("hypox", "critical_care", "Unit B"),
+        unit("hyperox", "critical_care", "Unit A"),
+        unit("hypox", "emergency", "Unit E"),
+        unit("hyperox", "emergency", "Unit E"),
+    ], schema_overrides={"rate": pl.Float64, "position": pl.String})
+    curve = pl.DataFrame(schema={"measure": pl.String, "unit_type": pl.String, "volume": pl.Int64})
+
+    drawn = funnel_charts(question, funnel, curve, "t")
+
+    assert drawn["alone"] == ["critical care units for hyperoxaemia on oxygen", "emergency units"]
+    assert drawn["svg"] is not None  # the two critical-care units of the first measure are drawn
+
+
+def test_the_rule_catalogue_says_what_from_memory_means_where_references_use_it(oxygen_site):
+    # A fresh-user reading met "from memory" beside rule sources with no word on what it means.
+    rules = block(oxygen_site["html"], "rules")
+    assert "from memory" in rules.split("Rule Title")[1]  # some reference in the catalogue uses it
+    assert "“from memory” marks a value or citation given as recalled and not yet confirmed" in rules
