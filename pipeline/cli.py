@@ -22,8 +22,8 @@ from pipeline.pseudonym import KEY_FORMAT_HELP
 
 EXIT_CODES_HELP = """\b
 Exit codes (BSD sysexits):
-  0   every file loaded or already loaded
-  65  data error: at least one file was rejected (the others loaded)
+  0   every file loaded or already loaded; report: outputs written; check-profile: no file would be rejected
+  65  data error: at least one file was rejected (the others loaded); check-profile: a file would be rejected
   66  no input: an input file or folder does not exist
   70  internal error (a bug; please report it with the log)
   74  I/O error: the store or output cannot be written, or too little free disk space
@@ -32,6 +32,11 @@ Exit codes (BSD sysexits):
 
 DEBUG_ENV = "ABG_AUDIT_DEBUG"
 RUN_EPILOG = f"{KEY_FORMAT_HELP}\n\n{EXIT_CODES_HELP}"
+# detection-report loads nothing: its 0 and 1 are about the targets, the rest as for every command
+DETECTION_EXIT_CODES_HELP = "\n".join(
+    [*EXIT_CODES_HELP.splitlines()[:2], "  0   every detection target met", "  1   a detection target missed"]
+    + [line for line in EXIT_CODES_HELP.splitlines()[2:] if not line.lstrip().startswith(("0 ", "65 "))]
+)
 
 
 def _silence_closed_pipe() -> None:
@@ -502,7 +507,7 @@ def reload(
     sys.exit(result.exit_code)
 
 
-@main.command("detection-report")
+@main.command("detection-report", epilog=DETECTION_EXIT_CODES_HELP)
 @config_option
 @click.option(
     "--truth",

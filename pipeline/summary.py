@@ -6,6 +6,7 @@ import click
 
 from pipeline.config import SiteConfig
 from pipeline.run import RunResult
+from pipeline.schema import PRESCRIPTIONS, SAMPLES
 
 
 def print_run_summary(result: RunResult, config: SiteConfig) -> None:
@@ -27,9 +28,22 @@ def print_run_summary(result: RunResult, config: SiteConfig) -> None:
         f" + duplicates {result.total('rows_duplicate')} + superseded in file {result.total('rows_superseded_in_file')}"
         f"  [{'balanced' if rows_in == parts else 'NOT BALANCED'}]"
     )
-    corrections = result.total("corrections")
-    if corrections:
-        click.echo(f"  corrections: {corrections} samples replaced an earlier version (kept in superseded_records)")
+    for record in (SAMPLES, PRESCRIPTIONS):
+        corrections = sum(f.corrections for f in result.files if f.kind == record.kind)
+        if corrections:
+            click.echo(
+                f"  corrections: {corrections} {record.kind} replaced an earlier version "
+                f"(kept in {record.superseded_table})"
+            )
+    # The folder the outputs were written to, as the closing lines say it (log lines scroll away).
+    from pipeline.audience import internal
+    from pipeline.report import REPORT_NAME, RESTRICTED_DIR
+
+    folder, edition = config.output_folder, internal(config)
+    click.echo(
+        f"  outputs: {folder / REPORT_NAME} and the tables beside it; row-level files in {folder / RESTRICTED_DIR}"
+        + (f"; the internal edition in {edition.folder}" if edition else "")
+    )
     for f in rejected:
         click.echo(f"  rejected {f.path.name} ({f.reason_code}): {f.message}")
     for missing in result.missing_inputs:

@@ -222,3 +222,34 @@ def test_install_test_deps_does_nothing_when_chromium_is_there_and_says_so_witho
     refused = subprocess.run([script], env={"PATH": str(nothing)}, capture_output=True, text=True)
     assert refused.returncode == 1
     assert "chromium is not installed and there is no apt-get here" in refused.stderr
+
+
+def test_the_run_summary_counts_corrections_per_kind_and_names_where_each_is_kept(tmp_path, capsys):
+    # A fresh-user run found the corrections line saying "samples" for corrected prescriptions too.
+    from pipeline.ingest.load import FileOutcome
+    from pipeline.run import RunResult
+    from pipeline.summary import print_run_summary
+
+    result = RunResult(run_id="r1")
+    result.files = [
+        FileOutcome(path=tmp_path / "a.csv", profile="p", kind="samples", corrections=3),
+        FileOutcome(path=tmp_path / "b.csv", profile="p", kind="samples", corrections=2),
+        FileOutcome(path=tmp_path / "c.csv", profile="q", kind="prescriptions", corrections=4),
+    ]
+    config = load_config(make_site(tmp_path / "site"))
+    print_run_summary(result, config)
+    out = capsys.readouterr().out
+    # and the closing lines say where the report is (log lines scroll away)
+    assert f"outputs: {config.output_folder / 'audit_report.html'}" in out
+    lines = [line.strip() for line in out.splitlines() if "corrections" in line]
+    assert lines == [
+        "corrections: 5 samples replaced an earlier version (kept in superseded_records)",
+        "corrections: 4 prescriptions replaced an earlier version (kept in superseded_prescriptions)",
+    ]
+
+
+def test_detection_report_help_gives_its_own_exit_codes():
+    # A fresh-user reading found no exit codes under detection-report --help.
+    text = CliRunner().invoke(main, ["detection-report", "--help"]).output
+    assert "1   a detection target missed" in text and "0   every detection target met" in text
+    assert "every file loaded" not in text  # it loads nothing
