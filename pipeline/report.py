@@ -1077,9 +1077,15 @@ def _alone_words(alone: dict[str, list[str]], measures: int) -> list[str]:
     """Each unit type not drawn, with the measures it is not drawn for unless that is all of them: a type
     can have two units with data for one measure and one unit for another."""
     return [
-        f"{unit_type} units" if len(titles) == measures else f"{unit_type} units for {', '.join(titles).lower()}"
+        f"{unit_type} units" if len(titles) == measures else f"{unit_type} units for {', '.join(map(_in_text, titles))}"
         for unit_type, titles in sorted(alone.items())
     ]
+
+
+def _in_text(title: str) -> str:
+    """A title inside a sentence: its capital dropped unless its first word is an abbreviation (FiO2, A-a, P/F)."""
+    rest = title.split(" ", 1)[0].rstrip(":,")[1:]
+    return title[0].lower() + title[1:] if rest.isalpha() and rest.islower() else title
 
 
 def _period_frame(rates: pl.DataFrame) -> list[dict[str, Any]]:

@@ -689,19 +689,23 @@ def test_a_unit_type_not_drawn_for_one_measure_is_named_with_that_measure_only()
                 "position": None}
 
     question = {"measures": [{"measure": "hypox", "title": "Hypoxaemia", "level": "sample"},
-                             {"measure": "hyperox", "title": "Hyperoxaemia on oxygen", "level": "sample"}]}
+                             {"measure": "hyperox", "title": "Hyperoxaemia on oxygen", "level": "sample"},
+                             {"measure": "fio2", "title": "FiO2 documented", "level": "sample"}]}
     funnel = pl.DataFrame([
         unit("hypox", "critical_care", "Unit A"),
         unit("hypox", "critical_care", "Unit B"),
         unit("hyperox", "critical_care", "Unit A"),
         unit("hypox", "emergency", "Unit E"),
         unit("hyperox", "emergency", "Unit E"),
+        unit("fio2", "critical_care", "Unit B"),
+        unit("fio2", "emergency", "Unit E"),
     ], schema_overrides={"rate": pl.Float64, "position": pl.String})
     curve = pl.DataFrame(schema={"measure": pl.String, "unit_type": pl.String, "volume": pl.Int64})
 
     drawn = funnel_charts(question, funnel, curve, "t")
 
-    assert drawn["alone"] == ["critical care units for hyperoxaemia on oxygen", "emergency units"]
+    # titles keep the capitals of an abbreviation inside the sentence
+    assert drawn["alone"] == ["critical care units for hyperoxaemia on oxygen, FiO2 documented", "emergency units"]
     assert drawn["svg"] is not None  # the two critical-care units of the first measure are drawn
 
 
