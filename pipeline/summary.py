@@ -4,7 +4,9 @@ from __future__ import annotations
 
 import click
 
+from pipeline.audience import internal
 from pipeline.config import SiteConfig
+from pipeline.report import REPORT_NAME, RESTRICTED_DIR
 from pipeline.run import RunResult
 from pipeline.schema import PRESCRIPTIONS, SAMPLES
 
@@ -35,10 +37,7 @@ def print_run_summary(result: RunResult, config: SiteConfig) -> None:
                 f"  corrections: {corrections} {record.kind} replaced an earlier version "
                 f"(kept in {record.superseded_table})"
             )
-    # The folder the outputs were written to, as the closing lines say it (log lines scroll away).
-    from pipeline.audience import internal
-    from pipeline.report import REPORT_NAME, RESTRICTED_DIR
-
+    # Where the outputs are: the log line naming their folder has scrolled away by now.
     folder, edition = config.output_folder, internal(config)
     click.echo(
         f"  outputs: {folder / REPORT_NAME} and the tables beside it; row-level files in {folder / RESTRICTED_DIR}"
