@@ -129,45 +129,47 @@ class TimedConnection:
         return getattr(self._con, name)
 
 
+def _csv_relation(csv: str, profile: str) -> tuple[Any, list[str], tuple[str, dict[str, str], dict[str, str]]]:
+    """The profile, the file's header and DuckDB's read of the file as ``ingest_file`` makes it
+    (``engine.csv_relation``: the profile's dialect, every column as text)."""
+    from pipeline.ingest import engine
+    from pipeline.ingest.read import open_export
+    from pipeline.profile import load_profile
+
+    loaded = load_profile(Path(profile))
+    header = open_export(Path(csv), loaded).header
+    return loaded, header, engine.csv_relation(csv, header, loaded)
+
+
 def _stage_select(csv: str, profile: str, db: str, *, all_usual: bool = False) -> tuple[Any, str, dict[str, Any]]:
     """A fresh store (macros, hard limits) and the stage 1 SELECT of ``ingest_file`` over ``csv``:
     DuckDB's parse of every cell (``engine.parse_relation``) under the kind's convert SQL.
     ``all_usual``: every cell counts as usual, i.e. without the tests that send a cell to the
     Python parser unless SQL types it exactly as that parser would."""
     from pipeline.ingest import engine
-    from pipeline.ingest.load import _convert_sql
+    from pipeline.ingest.load import _convert_sql, stage_parameters
     from pipeline.ingest.parse import plan_columns
-    from pipeline.ingest.read import open_export
-    from pipeline.profile import load_profile
     from pipeline.store import open_store
 
-    loaded = load_profile(Path(profile))
-    reader = open_export(Path(csv), loaded)
-    plan = plan_columns(Path(csv), reader.header, loaded)
-    relation, refs, types = engine.csv_relation(csv, reader.header, loaded)
+    loaded, header, (relation, refs, types) = _csv_relation(csv, profile)
+    plan = plan_columns(Path(csv), header, loaded)
     select, _ = engine.parse_relation(relation, refs, types, plan, loaded, row=None, keep_cells=True)
     if all_usual:
         end = select.index(" as __usual")
         start = select.rindex(",\n    ", 0, end) + len(",\n    ")
         select = select[:start] + "true" + select[end:]
     con = open_store(Path(db))
-    units = {f"unit_{name}": loaded.unit_of(name) for name in loaded.record.unit_fields}
     con.execute(f"create or replace temp view stage_input as {select}")
-    convert, params = _convert_sql(con, loaded.record, units)
+    convert, params = _convert_sql(con, loaded.record, stage_parameters(loaded))
     return con, convert, params
 
 
 @task
 def read_as_text(csv: str, db: str, profile: str) -> dict[str, Any]:
     """Reading alone: every cell of the file as text in the profile's dialect, aggregated, nothing stored."""
-    from pipeline.ingest import engine
-    from pipeline.ingest.read import open_export
-    from pipeline.profile import load_profile
     from pipeline.store import open_store
 
-    loaded = load_profile(Path(profile))
-    header = open_export(Path(csv), loaded).header
-    relation, refs, _ = engine.csv_relation(csv, header, loaded)
+    _, _, (relation, refs, _) = _csv_relation(csv, profile)
     con = open_store(Path(db))
     started = time.perf_counter()
     rows = con.execute(f"select count(*), {', '.join(f'max({r})' for r in refs.values())} from {relation}").fetchall()

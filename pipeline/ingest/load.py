@@ -222,6 +222,13 @@ class StagedFile:
 PARSER = "sql"
 
 
+def stage_parameters(profile: Profile) -> dict[str, str | float]:
+    """The named parameters of the kind's stage 1 SQL: the unit the profile declares for each
+    field ($unit_<field>) and the plausible target range of a prescription."""
+    params: dict[str, str | float] = {f"unit_{name}": profile.unit_of(name) for name in profile.record.unit_fields}
+    return params | {"target_min_pct": TARGET_RANGE_PCT[0], "target_max_pct": TARGET_RANGE_PCT[1]}
+
+
 def _convert_sql(con: duckdb.DuckDBPyConnection, record: RecordSpec, unit_params: dict[str, str | float]) -> tuple[
     str, dict[str, str | float]
 ]:
@@ -514,8 +521,7 @@ def ingest_file(
         result.outcome, result.reason_code, result.message = "rejected", err.reason_code, str(err)
         return result
 
-    unit_params: dict[str, str | float] = {f"unit_{name}": profile.unit_of(name) for name in record.unit_fields}
-    unit_params |= {"target_min_pct": TARGET_RANGE_PCT[0], "target_max_pct": TARGET_RANGE_PCT[1]}
+    unit_params = stage_parameters(profile)
     names = {"run_id": run_id, "source_file": str(path), "file_sha256": result.sha256}
     contract: ContractOutcome | None = None
     in_transaction = False
